@@ -1,0 +1,48 @@
+"""ament_python package definition; also a plain pip-installable package."""
+from glob import glob
+import os
+
+from setuptools import find_packages, setup
+
+PACKAGE = 'constraint_ctrl'
+
+setup(
+    name=PACKAGE,
+    version='0.1.0',
+    description='Runtime constraint-based robot control: task functions, a QP per tick, a watchdog.',
+    packages=find_packages(include=[PACKAGE, PACKAGE + '.*']),
+    data_files=[
+        ('share/ament_index/resource_index/packages', ['resource/' + PACKAGE]),
+        ('share/' + PACKAGE, ['package.xml']),
+        (os.path.join('share', PACKAGE, 'launch'), glob('launch/*.launch.py')),
+        (os.path.join('share', PACKAGE, 'config'), glob('config/*.yaml')),
+        (os.path.join('share', PACKAGE, 'config', 'robots'), glob('config/robots/*.urdf')),
+        (os.path.join('share', PACKAGE, 'config', 'skills'), glob('config/skills/*.yaml')),
+    ],
+    python_requires='>=3.10',
+    install_requires=[
+        'setuptools',
+        'numpy>=1.24',
+        'scipy>=1.10',
+        'casadi>=3.6',
+        'quadprog>=0.1.11',
+        'pyyaml>=6',
+        'cyclonedds>=0.10.5',
+        'rosbags>=0.10',
+        'matplotlib>=3.7',
+        'tqdm>=4.60',
+    ],
+    extras_require={
+        'test': ['pytest>=7', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6'],
+    },
+    tests_require=['pytest'],
+    zip_safe=False,
+    maintainer='constraint_ctrl developers',
+    maintainer_email='dev@example.com',
+    license='Apache-2.0',
+    entry_points={
+        'console_scripts': [
+            'constraint-ctrl = constraint_ctrl.cli:main',
+        ],
+    },
+)
