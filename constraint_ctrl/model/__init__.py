@@ -1,0 +1,5 @@
+"""Robot model: URDF parsing and symbolic (CasADi) forward kinematics."""
+from .kinematics import RobotModel
+from .urdf import JointSpec, RobotDescription, parse_urdf
+
+__all__ = ['JointSpec', 'RobotDescription', 'RobotModel', 'parse_urdf']
