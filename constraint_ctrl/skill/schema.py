@@ -108,6 +108,15 @@ class RegularisationSpec:
 
 
 @dataclass(frozen=True, slots=True)
+class OfflineSpec:
+    """Conditions for the offline tools (check, simulate); ignored by the controller node."""
+
+    start: Mapping[str, float] = field(default_factory=dict)   # joint name -> position
+    inputs: Mapping[str, float] = field(default_factory=dict)  # input name -> constant value
+    scene: Path | None = None                                  # resolved scene file, if any
+
+
+@dataclass(frozen=True, slots=True)
 class SkillSpec:
     """A whole skill file, validated for structure; formulas are compiled later."""
 
@@ -124,6 +133,7 @@ class SkillSpec:
     events: tuple[EventSpec, ...] = ()
     limits: LimitsSpec = field(default_factory=LimitsSpec)
     regularisation: RegularisationSpec = field(default_factory=RegularisationSpec)
+    offline: OfflineSpec = field(default_factory=OfflineSpec)
     locations: Mapping[str, int] = field(default_factory=dict)  # field path -> 1-based line
 
     def line_of(self, field_path: str) -> int | None:
