@@ -1,0 +1,141 @@
+"""`constraint-ctrl`: one command line for the offline tools and the nodes.
+
+Subcommands import what they need lazily, so `check` never loads a middleware and a missing
+optional dependency only affects the subcommand that needs it. Errors of this package are
+printed as one line (file:line: field: message) with exit code 2, never as a traceback.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from .errors import ConstraintCtrlError
+
+
+def _check(args: argparse.Namespace) -> int:
+    from .tools.check import check_file
+    status = 0
+    for path in args.skills:
+        report = check_file(Path(path))
+        print('\n'.join(report.lines()))
+        if not report.clean:
+            status = 1
+    return status
+
+
+def _simulate(args: argparse.Namespace) -> int:
+    from .tools.simulate import simulate_file
+    summary, written = simulate_file(Path(args.skill), args.duration, Path(args.out),
+                                     dt=args.tick, progress=not args.quiet)
+    cons = summary['constraints']
+    assert isinstance(cons, dict)
+    print(f"simulated {summary['skill']} for {args.duration} s "
+          f"({summary['ticks']} ticks of {args.tick} s)")
+    for name, row in cons.items():
+        print(f"  {name:24s} final error {row['final_error']:.3g}  max slack "
+              f"{row['max_slack']:.3g}")
+    for ev in summary['events']:  # type: ignore[union-attr]
+        print(f"  event {ev['event']} at {ev['time_s']:.3f} s")
+    print('outputs: ' + ', '.join(str(p) for p in written))
+    statuses = summary['solve_status_counts']
+    assert isinstance(statuses, dict)
+    return 0 if set(statuses) <= {'ok'} else 1
+
+
+def _bench(args: argparse.Namespace) -> int:
+    from .tools.bench import run
+    extra = {}
+    if not args.core_only:
+        extra = _bench_sections(args)
+    report = run(Path(args.json) if args.json else None, quick=args.quick,
+                 scaling=not args.no_scaling, extra=extra)
+    print(json.dumps(report, indent=2))
+    return 0
+
+
+def _bench_sections(args: argparse.Namespace) -> dict:
+    sections = {}
+    try:
+        from .safety.bench import bench_watchdog
+        sections['watchdog'] = lambda: bench_watchdog(ticks=3000 if args.quick else 20000)
+    except ImportError:  # pragma: no cover - during development only
+        pass
+    try:
+        from .tools.bench_node import bench_end_to_end
+        sections['end_to_end'] = lambda: bench_end_to_end(
+            duration=args.e2e_seconds, rate_hz=args.e2e_rate)
+    except ImportError:  # pragma: no cover
+        pass
+    return sections
+
+
+def _functions(_args: argparse.Namespace) -> int:
+    from .skill.formula import FUNCTIONS
+    for name in sorted(FUNCTIONS):
+        print(FUNCTIONS[name])
+    return 0
+
+
+def _node(module: str, func: str):
+    def run(args: argparse.Namespace) -> int:
+        import importlib
+        entry = getattr(importlib.import_module(module, __package__), func)
+        return int(entry(args) or 0)
+    return run
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog='constraint-ctrl', description=__doc__.splitlines()[0])
+    sub = parser.add_subparsers(dest='command', required=True)
+
+    p = sub.add_parser('check', help='validate skill files and inspect them at their start pose')
+    p.add_argument('skills', nargs='+', help='skill YAML files')
+    p.set_defaults(func=_check)
+
+    p = sub.add_parser('simulate', help='lockstep kinematic simulation of one skill')
+    p.add_argument('skill')
+    p.add_argument('--duration', type=float, default=5.0, help='simulated seconds')
+    p.add_argument('--out', default='out/simulate', help='output folder')
+    p.add_argument('--tick', type=float, default=0.002, help='control period, s')
+    p.add_argument('--quiet', action='store_true', help='no progress bar')
+    p.set_defaults(func=_simulate)
+
+    p = sub.add_parser('bench', help='measure tick cost, scaling, watchdog and end-to-end latency')
+    p.add_argument('--json', help='write the report to this file')
+    p.add_argument('--quick', action='store_true', help='fewer samples (for a smoke run)')
+    p.add_argument('--no-scaling', action='store_true', help='skip the scaling table')
+    p.add_argument('--core-only', action='store_true', help='engine sections only')
+    p.add_argument('--e2e-seconds', type=float, default=60.0)
+    p.add_argument('--e2e-rate', type=float, default=1000.0)
+    p.set_defaults(func=_bench)
+
+    p = sub.add_parser('functions', help='list the functions of the formula language')
+    p.set_defaults(func=_functions)
+
+    for name, module, func, text in (
+            ('run', '.nodes.controller_node', 'main_from_cli', 'start the controller node'),
+            ('sim', '.nodes.sim_node', 'main_from_cli', 'start the simulated work cell node'),
+            ('sequence', '.nodes.sequencer_node', 'main_from_cli', 'run a task plan'),
+            ('demo', '.tools.demo', 'main_from_cli', 'run the whole work-cell demo')):
+        p = sub.add_parser(name, help=text, add_help=True)
+        p.add_argument('rest', nargs=argparse.REMAINDER,
+                       help='options of the node; ROS arguments after --ros-args')
+        p.set_defaults(func=_node(module, func))
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return int(args.func(args))
+    except ConstraintCtrlError as err:
+        print(f'error: {err}', file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        return 130
+
+
+if __name__ == '__main__':
+    sys.exit(main())

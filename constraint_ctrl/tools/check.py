@@ -1,0 +1,178 @@
+"""`constraint-ctrl check`: validate a skill file and look at it at its start state.
+
+Beyond loading and compiling (which already name file, line and field of any mistake), the check
+evaluates the skill once at its offline start pose and reports what would bite at run time:
+hard rows that cannot hold together, near-singular Jacobians, limits already violated, and
+inputs without a value to check with. The result is clean only when there is nothing to report.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..errors import ConstraintCtrlError
+from ..skill.compile import CompiledSkill, compile_skill
+from ..skill.loader import load_skill
+from ..solve.qp import SkillSolver, SolveStatus
+
+#: Smallest singular value (relative to the largest) below which a Jacobian counts as
+#: near-singular; common practice for a warning threshold, not a standard value.
+SINGULAR_RATIO = 1e-3
+#: A row whose Jacobian is (numerically) zero cannot be driven by any motion.
+ZERO_ROW = 1e-9
+
+
+@dataclass(slots=True)
+class CheckReport:
+    skill: str
+    source: str
+    errors: list[str] = field(default_factory=list)
+    warnings: list[str] = field(default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def clean(self) -> bool:
+        return not self.errors and not self.warnings
+
+    def lines(self) -> list[str]:
+        out = [f'{self.source}: skill {self.skill!r}']
+        out += [f'  error: {m}' for m in self.errors]
+        out += [f'  warning: {m}' for m in self.warnings]
+        out += [f'  note: {m}' for m in self.notes]
+        out.append('  clean' if self.clean else
+                   f'  {len(self.errors)} error(s), {len(self.warnings)} warning(s)')
+        return out
+
+
+def check_file(path: Path) -> CheckReport:
+    """Load, compile and inspect one skill file. Loading errors propagate (SkillError)."""
+    spec = load_skill(path)
+    skill = compile_skill(spec)
+    return check_compiled(skill)
+
+
+def check_compiled(skill: CompiledSkill) -> CheckReport:
+    spec = skill.spec
+    report = CheckReport(skill=spec.name, source=spec.source)
+    report.notes.append(f'{skill.n_rows} rows, {skill.n_q} joints, {skill.n_s} features, '
+                        f'levels {list(skill.layout.levels)}, compiled in '
+                        f'{skill.compile_seconds * 1000:.0f} ms')
+    q = np.array([float(spec.offline.start.get(j, 0.0)) for j in skill.joint_names])
+    unknown = sorted(set(spec.offline.start) - set(skill.joint_names))
+    if unknown:
+        report.errors.append(f'offline.start names unknown joints {unknown}')
+    if not spec.offline.start:
+        report.notes.append('no offline.start: checking at all joints = 0')
+    u = np.zeros(len(skill.input_names))
+    for i, name in enumerate(skill.input_names):
+        if name in spec.offline.inputs:
+            u[i] = float(spec.offline.inputs[name])
+        elif spec.offline.scene is None:
+            report.warnings.append(f'input {name!r} has no offline value; checked with 0')
+    if spec.offline.scene is not None:
+        u = _scene_values(skill, q, u, report)
+    s = skill.initial_features()
+    _check_limits(skill, q, s, report)
+    solver = SkillSolver(skill)
+    result = solver.solve(q, s, u, 0.0, 0.002, np.zeros(skill.n_x))
+    out = solver.outputs
+    if result.status is SolveStatus.INFEASIBLE:
+        report.errors.append('the hard rows and limits cannot all hold at the start: '
+                             + _conflicting_hard_rows(skill, q, s, u))
+    elif not result.ok:
+        report.errors.append(f'solve failed at the start: {result.status.value} '
+                             f'{result.message}')
+    for i, row in enumerate(skill.rows):
+        if not np.isfinite(out['value'][i]) or not np.isfinite(out['J'][i]).all():
+            report.errors.append(f'row {row.name}: not finite at the start pose '
+                                 '(e.g. normalising a zero vector)')
+    _check_singular(skill, out['J'], report)
+    diag = solver.diagnostics()
+    for i, row in enumerate(skill.rows):
+        if row.kind != 'equal' and abs(diag.error[i]) > 1e-9:
+            report.warnings.append(f'row {row.name} ({row.kind}) is already violated at the '
+                                   f'start by {diag.error[i]:.4g}')
+    return report
+
+
+def _scene_values(skill: CompiledSkill, q: np.ndarray, u: np.ndarray,
+                  report: CheckReport) -> np.ndarray:
+    try:
+        from .simulate import scene_inputs
+        source, _ = scene_inputs(skill, q)
+        return source(0.0, q)
+    except ConstraintCtrlError as err:
+        report.errors.append(str(err))
+        return u
+
+
+def _check_limits(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
+                  report: CheckReport) -> None:
+    model = skill.model
+    for j, name in enumerate(skill.joint_names):
+        if q[j] < model.lower[j] or q[j] > model.upper[j]:
+            report.warnings.append(f'joint {name} starts at {q[j]:.4g}, outside its limits '
+                                   f'[{model.lower[j]:.4g}, {model.upper[j]:.4g}]')
+    for k, feat in enumerate(skill.spec.features):
+        if s[k] < feat.lower or s[k] > feat.upper:
+            report.warnings.append(f'feature {feat.name} starts at {s[k]:.4g}, outside '
+                                   f'[{feat.lower:.4g}, {feat.upper:.4g}]')
+    for info in skill.params:
+        problem = info.check(info.value)
+        if problem:
+            report.errors.append(f'tunable default: {problem}')
+
+
+def _check_singular(skill: CompiledSkill, J: np.ndarray, report: CheckReport) -> None:
+    for con in skill.spec.constraints:
+        idx = [i for i, r in enumerate(skill.rows) if r.constraint == con.name]
+        block = J[idx]
+        norms = np.linalg.norm(block, axis=1)
+        for i, norm in zip(idx, norms):
+            if norm < ZERO_ROW and con.kind == 'equal':
+                report.notes.append(f'row {skill.rows[i].name} has a zero Jacobian at the start '
+                                    '(no motion changes it there)')
+        live = block[norms >= ZERO_ROW]
+        if live.shape[0] >= 2:
+            sv = np.linalg.svd(live, compute_uv=False)
+            rank_sv = sv[:min(live.shape)]
+            if rank_sv[-1] < SINGULAR_RATIO * rank_sv[0]:
+                report.warnings.append(
+                    f'constraint {con.name}: Jacobian is near-singular at the start (singular '
+                    f'values {np.array2string(rank_sv, precision=3)})')
+    eq = [i for i, r in enumerate(skill.rows) if r.kind == 'equal' and not r.hard]
+    if eq:
+        block = J[eq][:, :skill.n_q]
+        block = block[np.linalg.norm(block, axis=1) >= ZERO_ROW]
+        k = min(block.shape)
+        if k >= 2:
+            sv = np.linalg.svd(block, compute_uv=False)[:k]
+            if sv[-1] < SINGULAR_RATIO * sv[0] and block.shape[0] <= skill.n_q:
+                report.warnings.append('the soft equality rows together are near-singular '
+                                       f'in the joints (singular values '
+                                       f'{np.array2string(sv, precision=3)})')
+
+
+def _conflicting_hard_rows(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
+                           u: np.ndarray) -> str:
+    """Name hard rows whose removal makes the start feasible (a hint, not a proof)."""
+    from dataclasses import replace
+
+    from ..skill.compile import compile_skill as _compile
+    hard = [c for c in skill.spec.constraints if c.hard]
+    culprits = []
+    for con in hard:
+        relaxed = replace(skill.spec, constraints=tuple(
+            replace(c, hard=False) if c is con else c for c in skill.spec.constraints))
+        trial = SkillSolver(_compile(relaxed, skill.model))
+        if trial.solve(q, s, u, 0.0, 0.002, np.zeros(skill.n_x)).ok:
+            culprits.append(con.name)
+    if culprits:
+        return 'making any one of ' + ', '.join(culprits) + ' soft resolves it'
+    return 'the joint/feature limits conflict with the hard rows ' + \
+        ', '.join(c.name for c in hard)
+
+
+__all__ = ['CheckReport', 'check_compiled', 'check_file']
