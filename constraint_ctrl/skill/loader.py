@@ -205,7 +205,7 @@ def _compose(text: str, source: str) -> Node:
     except yaml.YAMLError as exc:
         msg = f'not valid YAML: {exc}'
         raise SkillError(msg, file=source, line=1, field=DOCUMENT) from None
-    if root is None:
+    if root is None or (isinstance(root, ScalarNode) and root.tag == _TAG + 'null'):
         msg = "the file is empty; expected a mapping with at least 'skill' and 'robot'"
         raise SkillError(msg, file=source, line=1, field=DOCUMENT)
     return root
@@ -256,21 +256,22 @@ def _suggest(word: str, choices: Iterable[str]) -> str:
     return f'; did you mean {close[0]!r}?' if close else ''
 
 
+def _clip(text: str) -> str:
+    return text if len(text) <= _SNIPPET else text[:_SNIPPET] + '...'
+
+
 def _describe(node: Node) -> str:
     """Name a node's YAML type and quote its text, for 'expected X, got Y' messages."""
     if isinstance(node, ScalarNode):
         kinds = {'str': 'the text', 'int': 'the number', 'float': 'the number',
                  'bool': 'the boolean', 'null': 'null'}
         kind = kinds.get(node.tag.removeprefix(_TAG), 'the value')
-        return 'nothing (null)' if kind == 'null' else f'{kind} {node.value!r}'
+        return 'nothing (null)' if kind == 'null' else f'{kind} {_clip(node.value)!r}'
     kind = 'a mapping' if isinstance(node, MappingNode) else 'a list'
     start, end = node.start_mark, node.end_mark
     if start.buffer is None:
         return kind
-    text = start.buffer[start.index:end.index].strip()
-    if len(text) > _SNIPPET:
-        text = text[:_SNIPPET] + '...'
-    return f'{kind} {text!r}'
+    return f'{kind} {_clip(start.buffer[start.index:end.index].strip())!r}'
 
 
 class _Reader:
@@ -288,6 +289,12 @@ class _Reader:
     def fail(self, at: _Field, message: str, *, path: str | None = None) -> NoReturn:
         raise SkillError(message, file=self.source, line=at.line, field=path or at.path)
 
+    def unsupported_tag(self, at: _Field) -> NoReturn:
+        msg = (f'unsupported YAML tag {at.node.tag!r} on {_describe(at.node)}; only text, '
+               'numbers, true/false, lists and mappings are allowed (quote text that YAML '
+               'reads as a date)')
+        self.fail(at, msg)
+
     def expected(self, at: _Field, what: str) -> NoReturn:
         self.fail(at, f'expected {what}, got {_describe(at.node)}')
 
@@ -295,8 +302,10 @@ class _Reader:
 
     def entries(self, at: _Field) -> list[_Field]:
         """The fields of a mapping in file order (merge keys applied, duplicates rejected)."""
-        if not isinstance(at.node, MappingNode) or at.node.tag != _MAP:
+        if not isinstance(at.node, MappingNode):
             self.expected(at, 'a mapping')
+        if at.node.tag != _MAP:
+            self.unsupported_tag(at)
         seen: dict[str, int] = {}
         fields: list[_Field] = []
         for key_node, value_node in at.node.value:
@@ -304,7 +313,7 @@ class _Reader:
                 continue
             key = self.key(at, key_node)
             if key in seen:
-                msg = (f'duplicate key {key!r} (first at line {seen[key]}); '
+                msg = (f'duplicate key {_clip(key)!r} (first at line {seen[key]}); '
                        'YAML would silently keep only the last one')
                 self.fail(_Field(at.child(key), _line(key_node), key_node), msg)
             seen[key] = _line(key_node)
@@ -329,9 +338,11 @@ class _Reader:
             here = _Field(at.path, _line(key_node), value_node)
             sources = value_node.value if isinstance(value_node, SequenceNode) else [value_node]
             for source in sources:
-                if not isinstance(source, MappingNode) or source.tag != _MAP:
+                if not isinstance(source, MappingNode):
                     self.expected(_Field(at.path, _line(key_node), source),
                                   'a mapping (or a list of mappings) after the merge key <<')
+                if source.tag != _MAP:
+                    self.unsupported_tag(_Field(at.path, _line(key_node), source))
                 if id(source) in visiting:
                     self.fail(here, 'a merge key << refers to the mapping it is part of')
                 pairs.extend((k, v) for k, v in source.value if k.tag != _MERGE)
@@ -342,8 +353,10 @@ class _Reader:
     def key(self, at: _Field, key_node: Node) -> str:
         """A mapping key as written, so that ``on:`` or ``1:`` stay text (names are text)."""
         here = _Field(at.path, _line(key_node), key_node)
-        if not isinstance(key_node, ScalarNode) or key_node.tag not in _SCALARS:
+        if not isinstance(key_node, ScalarNode):
             self.expected(here, 'a plain name as key')
+        if key_node.tag not in _SCALARS:
+            self.unsupported_tag(here)
         if not key_node.value:
             self.expected(here, 'a non-empty name as key')
         return str(key_node.value)
@@ -355,7 +368,7 @@ class _Reader:
         for item in self.entries(at):
             if item.key not in allowed:
                 where = 'at the top level' if at.path == DOCUMENT else f'in {at.path}'
-                msg = (f'unknown key {item.key!r} {where}{_suggest(item.key, allowed)} '
+                msg = (f'unknown key {_clip(item.key)!r} {where}{_suggest(item.key, allowed)} '
                        f'(allowed: {", ".join(allowed)})')
                 self.fail(item, msg)
             found[item.key] = item
@@ -366,8 +379,10 @@ class _Reader:
 
     def items(self, at: _Field) -> list[_Field]:
         """The items of a YAML list, each located at its own line."""
-        if not isinstance(at.node, SequenceNode) or at.node.tag != _SEQ:
+        if not isinstance(at.node, SequenceNode):
             self.expected(at, 'a list (a YAML sequence, items starting with "- ")')
+        if at.node.tag != _SEQ:
+            self.unsupported_tag(at)
         result = [_Field(f'{at.path}[{i}]', _line(node), node)
                   for i, node in enumerate(at.node.value)]
         for item in result:
@@ -383,13 +398,12 @@ class _Reader:
         """
         node = at.node
         if not isinstance(node, ScalarNode):
+            if node.tag not in (_MAP, _SEQ):
+                self.unsupported_tag(at)
             return node
         build = _SCALARS.get(node.tag)
         if build is None:
-            msg = (f'unsupported YAML tag {node.tag!r} on {node.value!r}; only text, numbers, '
-                   'true/false, lists and mappings are allowed (quote text that YAML reads '
-                   'as a date)')
-            self.fail(at, msg)
+            self.unsupported_tag(at)
         try:
             return build(node)
         except (ValueError, IndexError, KeyError, TypeError, OverflowError):
@@ -412,7 +426,7 @@ class _Reader:
         name = self.text(at) if written is None else written
         if not _IDENTIFIER.fullmatch(name) or keyword.iskeyword(name):
             msg = ('expected a name of letters, digits and _ that does not start with a digit '
-                   f'and is not a Python keyword, got {name!r}')
+                   f'and is not a Python keyword, got {_clip(name)!r}')
             self.fail(at, msg)
         if formula_name and name in self.reserved:
             self.fail(at, f'the name {name!r} is reserved by the formula language; '
@@ -427,7 +441,8 @@ class _Reader:
         try:
             number = float(value)
         except OverflowError:
-            self.fail(at, f'expected a finite number, got {value!r}')
+            written = _clip(str(getattr(at.node, 'value', '')))
+            self.fail(at, f'expected a finite number, got {written!r}, too large for a float')
         if math.isnan(number) or (math.isinf(number) and not infinite_ok):
             self.fail(at, f'expected a finite number, got {number!r}')
         return number
@@ -462,7 +477,7 @@ class _Reader:
                 raise exc.located(file=self.source, line=at.line, field=at.path) from None
             except (SyntaxError, ValueError, RecursionError, MemoryError) as exc:
                 # What ast.parse itself can raise; translated so callers only see SkillError.
-                msg = f'cannot read the formula {text!r} ({type(exc).__name__}: {exc})'
+                msg = f'cannot read the formula {_clip(text)!r} ({type(exc).__name__}: {exc})'
                 raise FormulaError(msg, file=self.source, line=at.line, field=at.path) from None
         return text
 
@@ -483,7 +498,7 @@ class _Reader:
             return self.positive(at)
         if value not in tunables:
             declared = ', '.join(tunables) or 'none declared'
-            msg = (f'expected a number > 0 or the name of a tunable, got {value!r}'
+            msg = (f'expected a number > 0 or the name of a tunable, got {_clip(value)!r}'
                    f'{_suggest(value, tunables)} (tunables: {declared})')
             self.fail(at, msg)
         lower = tunables[value].lower
@@ -658,7 +673,7 @@ class _Reader:
     def kind(self, at: _Field) -> str:
         kind = self.text(at)
         if kind not in CONSTRAINT_KINDS:
-            self.fail(at, f'expected one of {", ".join(CONSTRAINT_KINDS)}, got {kind!r}'
+            self.fail(at, f'expected one of {", ".join(CONSTRAINT_KINDS)}, got {_clip(kind)!r}'
                           f'{_suggest(kind, CONSTRAINT_KINDS)}')
         return kind
 
@@ -723,7 +738,7 @@ class _Reader:
             values: dict[str, float] = {}
             for item in self.entries(f['inputs']):
                 if item.key not in inputs:
-                    self.fail(item, f'{item.key!r} is not a declared input'
+                    self.fail(item, f'{_clip(item.key)!r} is not a declared input'
                                     f'{_suggest(item.key, inputs)} (inputs: '
                                     f'{", ".join(inputs) or "none declared"})')
                 values[item.key] = self.number(item)
