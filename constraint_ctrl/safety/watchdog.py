@@ -1,0 +1,542 @@
+"""The watchdog: last stage before a joint velocity command leaves the controller.
+
+It runs after the solver and does not trust it: whatever a skill asks for, the published
+command respects the joint limits, the speed caps and the separation rule, and any fault gives
+zero within the same tick. Stage order and reasons are in speed_caps.py, fault recovery rules
+in faults.py, the separation formula in separation.py.
+
+Hot path: everything that depends only on the configuration is computed in ``__init__``; a
+tick does a handful of small numpy operations, one kinematics evaluation (casadi buffers, no
+allocation) and plain float logic.
+
+This is a supervisory software layer for development and testing, not a safety function: it
+does not meet ISO 13849-1 / IEC 62061 and must never be the only protection for a person.
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+
+import casadi
+import numpy as np
+
+from constraint_ctrl.errors import ConstraintCtrlError
+from constraint_ctrl.safety.faults import Fault, FaultDetector, FaultKind, FaultTracker
+from constraint_ctrl.safety.separation import (
+    SeparationMonitor, SeparationParams, protective_distance)
+from constraint_ctrl.safety.speed_caps import (
+    joint_speed_scale, limit_acceleration, point_speed_scale, stop_ramp_factor)
+from constraint_ctrl.safety.states import State, Transition
+
+PointsFn = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]
+"""q (n,) -> (P (3, k) point positions in the base frame, J (3k, n) stacked Jacobians)."""
+
+_TOO_CLOSE_KEY = (FaultKind.PERSON_TOO_CLOSE, '')
+
+
+@dataclass(frozen=True)
+class MonitoredPoint:
+    """A sphere on the robot that must keep its distance: centre = ``offset`` in ``link``'s frame (m)."""
+
+    link: str
+    offset: tuple[float, float, float]
+    radius: float
+
+    def __post_init__(self) -> None:
+        if len(self.offset) != 3 or not all(math.isfinite(v) for v in self.offset):
+            msg = f'monitored point on {self.link!r}: offset must be 3 finite numbers, got {self.offset!r}'
+            raise ConstraintCtrlError(msg)
+        if not (math.isfinite(self.radius) and self.radius >= 0):
+            msg = f'monitored point on {self.link!r}: radius must be >= 0, got {self.radius!r}'
+            raise ConstraintCtrlError(msg)
+
+
+def _vector(name: str, value: object, n: int | None, *, positive: bool = False,
+            allow_inf: bool = False) -> np.ndarray:
+    arr = np.array(value, dtype=float).reshape(-1)
+    if n is not None and arr.shape != (n,):
+        msg = f'WatchdogConfig.{name}: expected {n} values (one per joint), got {arr.size}'
+        raise ConstraintCtrlError(msg)
+    bad = np.isnan(arr) if allow_inf else ~np.isfinite(arr)
+    if positive:
+        bad |= ~(arr > 0)
+    if bad.any():
+        i = int(np.flatnonzero(bad)[0])
+        need = 'a number > 0' if positive else 'a number'
+        msg = f'WatchdogConfig.{name}[{i}]: expected {need}, got {float(arr[i])!r}'
+        raise ConstraintCtrlError(msg)
+    arr.setflags(write=False)
+    return arr
+
+
+@dataclass(frozen=True, kw_only=True, eq=False)
+class WatchdogConfig:
+    """Watchdog settings (SI units). Arrays hold one value per joint, in the model's order.
+
+    Attributes:
+        separation: terms of the protective separation distance.
+        reduced_speed: cap on every monitored point's speed in reduced mode (m/s); 0.25 m/s is
+            the ISO 10218-1 reduced speed.
+        reduced_zone: reduced mode switches on while a person is closer than this (m).
+        reduced_mode: start with reduced mode switched on (``Watchdog.set_reduced_mode``).
+        stopping_time: a requested stop ramps to zero within this time (s).
+        resume_after: how long a clear condition must hold before a fault clears (s).
+        joint_state_timeout: joint_states older than this is a fault (s).
+        person_timeout: default timeout of a person-position source (s).
+        person_timeouts: per-source timeouts overriding ``person_timeout`` (s).
+        resume_speed: a person pair counts as clear once its permitted speed reaches this
+            (m/s) ...
+        clear_margin: ... or once its separation exceeds S_p(0) by this (m); also the margin
+            by which a person must leave ``reduced_zone`` to end reduced mode.
+        velocity_limits: |qdot| caps (rad/s or m/s).
+        acceleration_limits: per-joint rate limits of the command (rad/s^2 or m/s^2).
+        lower, upper: joint position limits (rad or m); +-inf for unlimited joints.
+        joint_names: optional, only used to name joints in fault reasons.
+    """
+
+    separation: SeparationParams = field(default_factory=SeparationParams)
+    reduced_speed: float = 0.25
+    reduced_zone: float = 1.5
+    reduced_mode: bool = False
+    stopping_time: float = 0.3
+    resume_after: float = 1.0
+    joint_state_timeout: float = 0.05
+    person_timeout: float = 0.2
+    person_timeouts: Mapping[str, float] = field(default_factory=dict)
+    resume_speed: float = 0.05
+    clear_margin: float = 0.05
+    velocity_limits: np.ndarray
+    acceleration_limits: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    joint_names: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        vel = _vector('velocity_limits', self.velocity_limits, None, positive=True)
+        n = vel.size
+        set_ = object.__setattr__
+        set_(self, 'velocity_limits', vel)
+        set_(self, 'acceleration_limits',
+             _vector('acceleration_limits', self.acceleration_limits, n, positive=True))
+        lower = _vector('lower', self.lower, n, allow_inf=True)
+        upper = _vector('upper', self.upper, n, allow_inf=True)
+        if (lower > upper).any():
+            i = int(np.flatnonzero(lower > upper)[0])
+            joint = self.joint_names[i] if len(self.joint_names) == n else str(i)
+            msg = (f'WatchdogConfig: joint {joint} has lower={float(lower[i])!r} > '
+                   f'upper={float(upper[i])!r}')
+            raise ConstraintCtrlError(msg)
+        set_(self, 'lower', lower)
+        set_(self, 'upper', upper)
+        for name in ('reduced_speed', 'reduced_zone', 'stopping_time', 'resume_after',
+                     'joint_state_timeout', 'person_timeout', 'resume_speed', 'clear_margin'):
+            value = getattr(self, name)
+            if not (isinstance(value, (int, float)) and math.isfinite(value) and value >= 0):
+                msg = f'WatchdogConfig.{name}: expected a finite number >= 0, got {value!r}'
+                raise ConstraintCtrlError(msg)
+        for source, value in self.person_timeouts.items():
+            if not (math.isfinite(value) and value >= 0):
+                msg = f'WatchdogConfig.person_timeouts[{source!r}]: expected >= 0, got {value!r}'
+                raise ConstraintCtrlError(msg)
+        if self.joint_names and len(self.joint_names) != n:
+            msg = (f'WatchdogConfig.joint_names: {len(self.joint_names)} names for {n} joints')
+            raise ConstraintCtrlError(msg)
+
+    @property
+    def n_joints(self) -> int:
+        return int(self.velocity_limits.size)
+
+
+@dataclass(frozen=True, eq=False)
+class PersonSample:
+    """Position(s) of people from one source, in the robot base frame (m), shape (3,) or (m, 3).
+
+    ``stamp`` is the capture time on the controller's clock (s), not the receive time.
+    """
+
+    source: str
+    position: np.ndarray
+    stamp: float
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.position, np.ndarray) or self.position.dtype != np.float64:
+            object.__setattr__(self, 'position', np.asarray(self.position, dtype=float))
+
+
+@dataclass
+class WatchdogInput:
+    """Everything one tick needs. Times are on one monotonic clock (s).
+
+    Attributes:
+        now: tick time.
+        q: measured joint positions in the model's order, or None if not available.
+        joint_state_stamp: capture time of ``q``.
+        command: the solver's joint velocity command (n,), or None.
+        solver_ok: the solver found a usable solution.
+        solver_status: the solver's status text (quoted in the fault reason).
+        input_stamps: capture time of each skill input by name.
+        input_timeouts: timeout of each skill input by name; a name without a stamp is stale.
+        inputs_finite: every skill input value is finite.
+        people: latest sample of each person-position source.
+        person_sources: sources that must be fresh (a stale or absent one means a stop).
+        switch_failed: a skill switch failed mid-motion (latched until ``skill_activated``).
+        skill_activated: a skill was activated successfully this tick.
+        missing_joints: configured joints absent from joint_states (names).
+    """
+
+    now: float
+    q: np.ndarray | None
+    joint_state_stamp: float | None
+    command: np.ndarray | None
+    solver_ok: bool
+    solver_status: str
+    input_stamps: Mapping[str, float]
+    input_timeouts: Mapping[str, float]
+    inputs_finite: bool
+    people: Mapping[str, PersonSample]
+    person_sources: Sequence[str]
+    switch_failed: bool = False
+    skill_activated: bool = False
+    missing_joints: Sequence[str] = ()
+
+
+@dataclass
+class WatchdogOutput:
+    """The command to publish and why it is what it is.
+
+    Attributes:
+        command: joint velocity command to publish (n,), a fresh array.
+        state: state after this tick.
+        reason: cause of the current state.
+        speed_scale: product of the uniform factors of joint speed, reduced speed and
+            separation scaling (1 = untouched by them, 0 = zero command).
+        min_separation: smallest point-to-person separation (m); inf with nobody seen, nan
+            when the robot's position is unknown.
+        protective_distance: S_p of the closest pair at its published directed speed (m);
+            with nobody seen, S_p at the fastest point's speed (a person in the worst direction).
+        transitions: state changes in this tick (usually empty).
+    """
+
+    command: np.ndarray
+    state: State
+    reason: str
+    speed_scale: float
+    min_separation: float
+    protective_distance: float
+    transitions: list[Transition]
+
+
+class BufferedPoints:
+    """Allocation-free evaluation of a casadi points Function via ``Function.buffer()``.
+
+    Outputs must be dense; casadi writes them column-major, so the (3, k) and (3k, n) results
+    are Fortran-ordered views into preallocated arrays (overwritten by the next call).
+    """
+
+    def __init__(self, fn: casadi.Function) -> None:
+        if fn.n_in() != 1 or fn.n_out() != 2:
+            msg = (f'points function {fn.name()!r}: expected 1 input (q) and 2 outputs (P, J), '
+                   f'got {fn.n_in()} and {fn.n_out()}')
+            raise ConstraintCtrlError(msg)
+        for i in range(2):
+            if not fn.sparsity_out(i).is_dense():
+                msg = f'points function {fn.name()!r}: output {i} must be dense (use densify)'
+                raise ConstraintCtrlError(msg)
+        n = fn.nnz_in(0)
+        rows_p, k = fn.size_out(0)
+        rows_j, n_j = fn.size_out(1)
+        if rows_p != 3 or rows_j != 3 * k or n_j != n:
+            msg = (f'points function {fn.name()!r}: outputs {fn.size_out(0)} and '
+                   f'{fn.size_out(1)} do not match (3, k) and (3k, {n})')
+            raise ConstraintCtrlError(msg)
+        self._q = np.zeros(n)
+        self._p = np.zeros(3 * k)
+        self._j = np.zeros(3 * k * n)
+        self._buffer, self._eval = fn.buffer()
+        self._buffer.set_arg(0, memoryview(self._q))
+        self._buffer.set_res(0, memoryview(self._p))
+        self._buffer.set_res(1, memoryview(self._j))
+        self._p_view = self._p.reshape(k, 3).T
+        self._j_view = self._j.reshape(n, 3 * k).T
+
+    def __call__(self, q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        self._q[:] = q
+        self._eval()
+        return self._p_view, self._j_view
+
+
+class Watchdog:
+    """Shapes each solver command into one that may be published; see the module docstring."""
+
+    def __init__(self, config: WatchdogConfig, points_fn: PointsFn | casadi.Function,
+                 points: Sequence[MonitoredPoint], dt: float) -> None:
+        if not (math.isfinite(dt) and dt > 0):
+            msg = f'Watchdog: tick period dt must be > 0, got {dt!r}'
+            raise ConstraintCtrlError(msg)
+        if not points:
+            msg = 'Watchdog: at least one monitored point is required (e.g. the tool tip)'
+            raise ConstraintCtrlError(msg)
+        self.config = config
+        self.dt = dt
+        n = config.n_joints
+        k = len(points)
+        self._n, self._k = n, k
+        self._points_fn: PointsFn = (BufferedPoints(points_fn)
+                                     if isinstance(points_fn, casadi.Function) else points_fn)
+        self._check_points_fn(points_fn)
+        radii = np.array([p.radius for p in points])
+        self._monitor = SeparationMonitor(config.separation, radii,
+                                          resume_speed=config.resume_speed,
+                                          clear_margin=config.clear_margin)
+        self._detector = FaultDetector(n, joint_state_timeout=config.joint_state_timeout,
+                                       person_timeout=config.person_timeout,
+                                       person_timeouts=config.person_timeouts,
+                                       joint_names=config.joint_names)
+        self._tracker = FaultTracker(config.resume_after)
+        self._max_step = config.acceleration_limits * dt
+        self._inv_vel = 1.0 / config.velocity_limits
+        self._lower = config.lower
+        self._upper = config.upper
+        self._inv_dt = 1.0 / dt
+        self._sp0 = self._monitor.standstill
+        self._zero = np.zeros(n)
+        self._prev = np.zeros(n)
+        self._work = np.zeros(n)
+        self._lo = np.zeros(n)
+        self._hi = np.zeros(n)
+        self._no_people = np.zeros((0, 3))
+        self._reduced_mode = config.reduced_mode
+        self._in_zone = False
+        self._stop_reason: str | None = None
+        self._stop_t0: float | None = None
+        self._stop_c0 = np.zeros(n)
+        self._sep_scale = 1.0
+        self._started = False
+        self._state = State.STOPPED
+        self._reason = 'not started: no tick yet'
+
+    def _check_points_fn(self, original: object) -> None:
+        q = np.clip(np.zeros(self._n), self.config.lower, self.config.upper)
+        try:
+            p, j = self._points_fn(q)
+        except Exception as exc:   # a user-supplied callable: report any failure as ours
+            msg = f'Watchdog: points function failed at q={q.tolist()}: {exc}'
+            raise ConstraintCtrlError(msg) from exc
+        if np.shape(p) != (3, self._k) or np.shape(j) != (3 * self._k, self._n):
+            msg = (f'Watchdog: points function {original!r} returned P {np.shape(p)} and J '
+                   f'{np.shape(j)}, expected (3, {self._k}) and ({3 * self._k}, {self._n}) for '
+                   f'{self._k} monitored points and {self._n} joints')
+            raise ConstraintCtrlError(msg)
+
+    @property
+    def state(self) -> State:
+        return self._state
+
+    @property
+    def last_reason(self) -> str:
+        return self._reason
+
+    def request_stop(self, reason: str) -> None:
+        """Ask for a normal stop: ramp to zero within ``stopping_time``, then hold zero."""
+        if self._stop_reason is None:
+            self._stop_reason = reason
+            self._stop_t0 = None
+
+    def release_stop(self) -> None:
+        """Withdraw a requested stop; motion ramps up again under the acceleration limits."""
+        self._stop_reason = None
+        self._stop_t0 = None
+
+    def set_reduced_mode(self, on: bool) -> None:
+        """Switch reduced mode on or off (a node parameter); people in the zone still force it."""
+        self._reduced_mode = bool(on)
+
+    def _gather_people(self, people: Mapping[str, PersonSample]) -> tuple[np.ndarray, bool]:
+        """All person positions as (m, 3), and whether every sample was well-formed."""
+        if not people:
+            return self._no_people, True
+        ok = True
+        parts = []
+        for sample in people.values():
+            pos = sample.position
+            if pos.size == 0 or pos.size % 3:
+                ok = False
+                continue
+            parts.append(pos.reshape(-1))
+        if not parts:
+            return self._no_people, ok
+        flat = parts[0] if len(parts) == 1 else np.concatenate(parts)
+        if not math.isfinite(float(flat.sum())):
+            rows = flat.reshape(-1, 3)
+            return rows[np.isfinite(rows).all(axis=1)], False
+        return flat.reshape(-1, 3), ok
+
+    def step(self, inp: WatchdogInput) -> WatchdogOutput:
+        """Check one tick's inputs and shape the solver command into the published one."""
+        now = inp.now
+        monitor = self._monitor
+        people, people_ok = self._gather_people(inp.people)
+        detected = self._detector.check(inp, people_ok)
+        q = inp.q
+        jac = None
+        if self._detector.q_valid:
+            assert q is not None
+            p, jac = self._points_fn(q)
+            monitor.measure(p.T, people)
+            if monitor.too_close:
+                detected.append(self._too_close_fault())
+            blocked = () if monitor.clear else (_TOO_CLOSE_KEY,)
+        else:
+            monitor.measure(self._no_people, self._no_people)
+            monitor.min_separation = math.nan
+            blocked = (_TOO_CLOSE_KEY,)   # cannot confirm clear without knowing the pose
+        tracker = self._tracker
+        faults_changed = tracker.update(now, detected, blocked=blocked,
+                                        skill_activated=inp.skill_activated)
+        reduced = self._update_reduced(monitor.min_separation)
+
+        out = self._work
+        speed_scale = 0.0
+        ramp_speed = 0.0
+        if tracker.active:
+            state = State.STOPPED
+            out[:] = 0.0
+            self._stop_c0[:] = 0.0      # a stop ramp interrupted by a fault does not restart
+        else:
+            if self._stop_reason is not None:
+                if self._stop_t0 is None:
+                    self._stop_t0 = now
+                    self._stop_c0[:] = self._prev
+                factor = stop_ramp_factor(now - self._stop_t0 + self.dt,
+                                          self.config.stopping_time)
+                np.multiply(self._stop_c0, factor, out=out)
+                ramp_speed = float(np.abs(self._stop_c0).max()) * factor
+                state = State.STOPPING if factor > 0.0 and ramp_speed > 0.0 else State.STOPPED
+                self._position_bounds(q)
+                self._clip_positions(out)
+            else:
+                assert inp.command is not None and q is not None
+                state = State.REDUCED if reduced else State.NORMAL
+                self._position_bounds(q)
+                self._clip_positions_from(inp.command, out)
+                limit_acceleration(out, self._prev, self._max_step, out)
+                self._clip_positions(out)
+            speed_scale = self._scale(out, jac, reduced)
+        pd = self._report_distance(out, jac)
+        self._prev[:] = out
+
+        transitions: list[Transition] = []
+        if state is not self._state or faults_changed:
+            reason, values = self._explain(state, reduced)
+            if state is not self._state:
+                transitions.append(Transition(now, self._state, state, reason, values))
+            self._state = state
+            self._reason = reason
+        self._started = True
+        return WatchdogOutput(out.copy(), state, self._reason, speed_scale,
+                              monitor.min_separation, pd, transitions)
+
+    def _too_close_fault(self) -> Fault:
+        m = self._monitor
+        return Fault(FaultKind.PERSON_TOO_CLOSE, '',
+                     f'person too close: monitored point {m.closest_point} is '
+                     f'{m.min_separation:.3f} m from person {m.closest_person}, at or inside '
+                     f'the standstill protective distance {m.standstill:.3f} m',
+                     {'min_separation': m.min_separation, 'protective_distance': m.standstill,
+                      'point': float(m.closest_point), 'person': float(m.closest_person)})
+
+    def _update_reduced(self, min_separation: float) -> bool:
+        zone = self.config.reduced_zone
+        if self._in_zone:
+            # Leave only with a margin, so a person standing on the boundary does not toggle it.
+            self._in_zone = not (min_separation >= zone + self.config.clear_margin)
+        else:
+            self._in_zone = min_separation < zone
+        return self._reduced_mode or self._in_zone
+
+    def _position_bounds(self, q: np.ndarray | None) -> None:
+        """Velocity bounds keeping q + qdot dt within [lower, upper]; 0 on a side already passed."""
+        assert q is not None
+        lo, hi = self._lo, self._hi
+        np.subtract(self._upper, q, out=hi)
+        hi *= self._inv_dt
+        np.maximum(hi, 0.0, out=hi)
+        np.subtract(self._lower, q, out=lo)
+        lo *= self._inv_dt
+        np.minimum(lo, 0.0, out=lo)
+
+    def _clip_positions_from(self, src: np.ndarray, out: np.ndarray) -> None:
+        np.maximum(src, self._lo, out=out)
+        np.minimum(out, self._hi, out=out)
+
+    def _clip_positions(self, out: np.ndarray) -> None:
+        self._clip_positions_from(out, out)
+
+    def _scale(self, out: np.ndarray, jac: np.ndarray | None, reduced: bool) -> float:
+        """Stages 4-6: joint speed, reduced speed and separation factors, applied to ``out``."""
+        self._sep_scale = 1.0
+        ratio = float(np.max(np.abs(out) * self._inv_vel))
+        scale = 1.0 if ratio <= 1.0 else 1.0 / ratio
+        if ratio == 0.0 or jac is None:
+            if scale != 1.0:
+                out *= scale
+            return scale
+        vel = (jac @ out).reshape(self._k, 3)
+        if scale != 1.0:
+            vel *= scale
+        if reduced:
+            s = point_speed_scale(vel, self.config.reduced_speed)
+            if s != 1.0:
+                vel *= s
+                scale *= s
+        s = self._monitor.scale(vel)
+        scale *= s
+        if scale != 1.0:
+            out *= scale
+        self._sep_scale = s
+        return scale
+
+    def _report_distance(self, out: np.ndarray, jac: np.ndarray | None) -> float:
+        """S_p of the closest pair at its published directed speed; see WatchdogOutput."""
+        m = self._monitor
+        if jac is None:
+            return self._sp0
+        if m.n_people:
+            if not out.any():
+                return self._sp0
+            speed = m.closest_pair_speed() * self._sep_scale
+            return protective_distance(speed, self.config.separation)
+        if not out.any():
+            return self._sp0
+        vel = (jac @ out).reshape(self._k, 3)
+        top = math.sqrt(float(np.max(np.einsum('ki,ki->k', vel, vel))))
+        return protective_distance(top, self.config.separation)
+
+    def _explain(self, state: State, reduced: bool) -> tuple[str, dict[str, float]]:
+        """Reason and values for entering ``state`` (only called on a change)."""
+        m = self._monitor
+        tracker = self._tracker
+        if state is State.STOPPED and tracker.active:
+            return tracker.reason(), tracker.values()
+        if state is State.STOPPING:
+            return (f'stop requested: {self._stop_reason}; ramping to zero within '
+                    f'{self.config.stopping_time:.3f} s',
+                    {'stopping_time': self.config.stopping_time,
+                     'speed': float(np.abs(self._stop_c0).max())})
+        if state is State.STOPPED:
+            return f'stop requested: {self._stop_reason}', {}
+        values = {'min_separation': m.min_separation, 'reduced_zone': self.config.reduced_zone}
+        cleared = ', '.join(f.kind.value for f in tracker.cleared)
+        if state is State.REDUCED:
+            why = ('person within the reduced zone' if self._in_zone
+                   else 'reduced mode switched on')
+            values['reduced_speed'] = self.config.reduced_speed
+        else:
+            why = 'no person within the reduced zone and reduced mode off'
+        if not self._started:
+            why += ' (first tick with valid inputs)'
+        elif self._state is State.STOPPED or self._state is State.STOPPING:
+            why += f' (resumed after {cleared} cleared)' if cleared else ' (resumed)'
+            values['resume_after'] = self.config.resume_after
+        return why, values
