@@ -1,0 +1,110 @@
+"""How the DDS port finds peers and how ROS 2 tools find the node.
+
+Peers: Cyclone reads its configuration from the CYCLONEDDS_URI environment variable when the
+first participant is created. If the user has not set it, the port sets LOOPBACK_CONFIG:
+loopback only (127.0.0.1), no multicast (Linux `lo` has no MULTICAST flag), unicast discovery
+to participant-index ports on localhost — the same shape rmw_cyclonedds generates for
+ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST, so ROS nodes started with that setting (or, on
+Humble, ROS_LOCALHOST_ONLY=1) see the port. To reach other hosts, or ROS nodes using the
+default subnet discovery, set CYCLONEDDS_URI yourself, e.g.
+`export CYCLONEDDS_URI='<CycloneDDS><Domain Id="any"><General><Interfaces><NetworkInterface
+name="eth0"/></Interfaces></General></Domain></CycloneDDS>'`. The domain is ROS_DOMAIN_ID
+(default 0), as in ROS.
+
+Nodes: `ros2 node list` is built only from rmw_dds_common/ParticipantEntitiesInfo samples on
+the DDS topic `ros_discovery_info` (reliable, transient local, keep last 1). Each sample holds
+the participant GID and, per node, the GIDs of its readers and writers; receivers replace
+their whole view of the participant with every sample, so the complete state is sent after
+every change and an empty node list before the participant goes away. A GID is the 16-byte
+DDS GUID (zero-padded to 24 bytes on Humble).
+"""
+from __future__ import annotations
+
+import os
+import threading
+from typing import Any
+
+from cyclonedds.pub import DataWriter
+from cyclonedds.topic import Topic
+
+from constraint_ctrl.errors import TransportError
+from constraint_ctrl.transport.dds_qos import writer_qos
+from constraint_ctrl.transport.qos import DISCOVERY_INFO
+
+LOOPBACK_CONFIG = (
+    '<CycloneDDS><Domain Id="any">'
+    '<General><Interfaces><NetworkInterface address="127.0.0.1"/></Interfaces>'
+    '<AllowMulticast>false</AllowMulticast></General>'
+    '<Discovery><ParticipantIndex>auto</ParticipantIndex>'
+    '<MaxAutoParticipantIndex>32</MaxAutoParticipantIndex>'
+    '<Peers><Peer address="127.0.0.1"/></Peers></Discovery>'
+    '</Domain></CycloneDDS>')
+DISCOVERY_TOPIC = 'ros_discovery_info'
+
+
+def ensure_cyclone_config() -> bool:
+    """Set CYCLONEDDS_URI to LOOPBACK_CONFIG unless the user set it; True if we set it."""
+    if os.environ.get('CYCLONEDDS_URI'):
+        return False
+    os.environ['CYCLONEDDS_URI'] = LOOPBACK_CONFIG
+    return True
+
+
+def domain_id() -> int:
+    text = os.environ.get('ROS_DOMAIN_ID', '').strip()
+    if not text:
+        return 0
+    try:
+        value = int(text)
+    except ValueError:
+        value = -1
+    if not 0 <= value <= 232:
+        msg = f'ROS_DOMAIN_ID={text!r} must be an integer in 0..232'
+        raise TransportError(msg)
+    return value
+
+
+def gid_of(entity: Any, gid_type: type) -> Any:
+    size = len(gid_type().data)
+    raw = entity.guid.bytes
+    return gid_type(data=list(raw) + [0] * (size - len(raw)))
+
+
+class NodeAnnouncer:
+    """Keeps `ros_discovery_info` in step with the node's readers and writers."""
+
+    def __init__(self, participant: Any, types: Any, namespace: str, node_name: str) -> None:
+        self._participant = participant
+        self._types = types
+        self._namespace = namespace
+        self._node_name = node_name
+        self._lock = threading.Lock()
+        self._readers: dict[int, Any] = {}
+        self._writers: dict[int, Any] = {}
+        topic = Topic(participant, DISCOVERY_TOPIC, types.ParticipantEntitiesInfo)
+        self.writer = DataWriter(participant, topic, writer_qos(DISCOVERY_INFO))
+
+    def update(self, *, readers: tuple[Any, ...] = (), writers: tuple[Any, ...] = (),
+               removed: tuple[Any, ...] = ()) -> None:
+        with self._lock:
+            for entity in readers:
+                self._readers[id(entity)] = gid_of(entity, self._types.Gid)
+            for entity in writers:
+                self._writers[id(entity)] = gid_of(entity, self._types.Gid)
+            for entity in removed:
+                self._readers.pop(id(entity), None)
+                self._writers.pop(id(entity), None)
+            self.writer.write(self.sample())
+
+    def sample(self, *, with_node: bool = True) -> Any:
+        t = self._types
+        nodes = [t.NodeEntitiesInfo(node_namespace=self._namespace, node_name=self._node_name,
+                                    reader_gid_seq=list(self._readers.values()),
+                                    writer_gid_seq=list(self._writers.values()))]
+        return t.ParticipantEntitiesInfo(gid=gid_of(self._participant, t.Gid),
+                                         node_entities_info_seq=nodes if with_node else [])
+
+    def withdraw(self) -> None:
+        """Announce that the participant has no nodes any more."""
+        with self._lock:
+            self.writer.write(self.sample(with_node=False))

@@ -1,0 +1,57 @@
+"""Our named QoS profiles as cyclonedds-python QoS, set the way rmw_cyclonedds sets them.
+
+rmw_cyclonedds (create_readwrite_qos): reliable with infinite max blocking time, keep-last
+history, autodispose off on writers, a durability service for transient-local writers, and
+XCDR1 as the only data representation. Always pass explicit QoS: plain DDS defaults differ
+from ROS's.
+"""
+from __future__ import annotations
+
+from cyclonedds.qos import Policy, Qos
+from cyclonedds.util import duration
+
+from constraint_ctrl.transport.qos import QosProfile
+
+
+def _common(p: QosProfile, user_data: bytes) -> list[object]:
+    policies: list[object] = [
+        Policy.History.KeepLast(p.depth),
+        (Policy.Reliability.Reliable(max_blocking_time=duration(infinite=True)) if p.reliable
+         else Policy.Reliability.BestEffort),
+        Policy.Durability.TransientLocal if p.transient_local else Policy.Durability.Volatile,
+        Policy.DataRepresentation(use_cdrv0_representation=True),
+    ]
+    if user_data:
+        policies.append(Policy.Userdata(data=user_data))
+    return policies
+
+
+def writer_qos(p: QosProfile, user_data: bytes = b'') -> Qos:
+    policies = _common(p, user_data)
+    policies.append(Policy.WriterDataLifecycle(autodispose=False))
+    if p.transient_local:
+        policies.append(Policy.DurabilityService(
+            cleanup_delay=0, history=Policy.History.KeepLast(p.depth), max_samples=-1,
+            max_instances=-1, max_samples_per_instance=-1))
+    return Qos(*policies)
+
+
+def reader_qos(p: QosProfile, user_data: bytes = b'') -> Qos:
+    return Qos(*_common(p, user_data))
+
+
+def user_data_of(qos: Qos | None) -> bytes:
+    """USER_DATA bytes of a discovered endpoint's QoS (b'' when absent)."""
+    if qos is None:
+        return b''
+    policy = qos[Policy.Userdata]
+    return policy.data if policy is not None else b''
+
+
+def tag_value(user_data: bytes, key: str) -> str | None:
+    """Value of `key=value;` in rmw_cyclonedds-style USER_DATA, or None."""
+    for item in user_data.decode('utf-8', 'replace').split(';'):
+        name, sep, value = item.partition('=')
+        if sep and name.strip() == key:
+            return value
+    return None

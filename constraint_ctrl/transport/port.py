@@ -1,0 +1,154 @@
+"""The one interface nodes use to talk to ROS 2, with two implementations.
+
+`open_port('rclpy', ...)` is a thin, exact mapping onto rclpy; `open_port('dds', ...)` speaks
+the ROS 2 wire protocol of rmw_cyclonedds_cpp directly through cyclonedds-python, for machines
+without a ROS install. Node code must run unchanged on both, so this interface keeps to what
+rclpy offers and names things as rclpy does:
+
+* messages are built with `port.types.<Name>(field=...)` using ROS field names; pass Python
+  lists for sequences and read them back with `list(...)` or `np.asarray(...)`;
+* parameters come back as objects with `.name` and `.value` (an `rclpy.parameter.Parameter` on
+  rclpy, a `ParameterView` on the DDS port);
+* callbacks (subscriptions, services, parameter changes, timers) run only while `spin()` runs,
+  on threads of the port: the timer has its own thread, so a timer tick may run at the same time
+  as a subscription or service callback. Guard shared state with a lock.
+* QoS is chosen by profile name (see qos.py).
+"""
+from __future__ import annotations
+
+import importlib.util
+from collections.abc import Callable
+from dataclasses import dataclass
+from types import SimpleNamespace
+from typing import Any, Protocol
+
+from constraint_ctrl.errors import TransportError
+
+DISTROS = ('jazzy', 'humble')
+TRANSPORTS = ('auto', 'rclpy', 'dds')
+LOG_LEVELS = ('debug', 'info', 'warn', 'error')
+
+ParameterValue = bool | int | float | str | bytes | list[bool] | list[int] | list[float] | list[str]
+
+
+@dataclass(frozen=True)
+class ParameterView:
+    """A declared parameter as the DDS port returns it (same attributes nodes use in rclpy)."""
+
+    name: str
+    value: ParameterValue
+
+
+class Publisher(Protocol):
+    def publish(self, msg: Any) -> None: ...
+
+
+class Client(Protocol):
+    def wait_for_service(self, timeout_s: float) -> bool: ...
+
+    def call(self, request: Any, timeout_s: float) -> Any | None:
+        """The response, or None when no reply came within timeout_s."""
+
+
+class Timer(Protocol):
+    missed: int  # periods skipped because a tick overran (or the process was stalled)
+
+    def cancel(self) -> None: ...
+
+
+class Port(Protocol):
+    node_name: str    # after `-r __node:=...`
+    namespace: str    # '/' unless `-r __ns:=...`
+    distro: str       # 'jazzy' | 'humble'
+    types: SimpleNamespace
+
+    def diagnostic_level(self, level: int) -> object:
+        """DiagnosticStatus.level in the port's representation (rclpy wants bytes)."""
+
+    def now_ns(self) -> int:
+        """ROS time (system clock) in ns, for header stamps."""
+
+    def type_name(self, msg_type: Any) -> str:
+        """'sensor_msgs/msg/JointState' for a message class (for bags and messages)."""
+
+    def create_publisher(self, msg_type: Any, topic: str, qos: str) -> Publisher: ...
+
+    def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
+                            qos: str) -> object: ...
+
+    def create_service(self, srv_type: Any, name: str,
+                       callback: Callable[[Any, Any], Any]) -> object:
+        """callback(request, response) fills and returns the response."""
+
+    def destroy_service(self, handle: object) -> None: ...
+
+    def create_client(self, srv_type: Any, name: str) -> Client: ...
+
+    def create_timer(self, period_s: float, callback: Callable[[], None]) -> Timer:
+        """Fixed rate on the monotonic clock; late ticks are skipped, not bunched."""
+
+    def declare_parameter(self, name: str, value: ParameterValue, description: str = '',
+                          read_only: bool = False) -> Any:
+        """Declare (or adopt, if a launch override already declared it) a parameter."""
+
+    def get_parameter(self, name: str) -> Any: ...
+
+    def get_parameters_by_prefix(self, prefix: str) -> dict[str, Any]:
+        """{name without 'prefix.': parameter}; '' gives all parameters."""
+
+    def set_parameter_validator(
+            self, callback: Callable[[dict[str, ParameterValue]], tuple[bool, str]]) -> None:
+        """Called before any change is applied; (False, reason) rejects the whole change."""
+
+    def add_parameter_listener(
+            self, callback: Callable[[dict[str, ParameterValue]], None]) -> None:
+        """Called after values changed, with the new values."""
+
+    def serialize(self, msg: Any) -> bytes:
+        """CDR with the 4-byte encapsulation header, as stored in rosbag2."""
+
+    def log(self, level: str, text: str) -> None: ...
+
+    def spin(self) -> None:
+        """Run callbacks until shutdown() or SIGINT/SIGTERM; publishing still works after."""
+
+    def shutdown(self) -> None: ...
+
+
+def _available(module: str) -> bool:
+    try:
+        return importlib.util.find_spec(module) is not None
+    except (ImportError, ValueError):
+        return False
+
+
+def open_port(transport: str, node_name: str, argv: list[str], *,
+              distro: str = 'jazzy') -> Port:
+    """Create the node's port. 'auto' picks rclpy when it can be imported, else DDS."""
+    if distro not in DISTROS:
+        msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTROS)}'
+        raise TransportError(msg)
+    if transport not in TRANSPORTS:
+        msg = f'transport {transport!r} is unknown; use one of {", ".join(TRANSPORTS)}'
+        raise TransportError(msg)
+    if transport == 'auto':
+        if _available('rclpy'):
+            transport = 'rclpy'
+        elif _available('cyclonedds'):
+            transport = 'dds'
+        else:
+            msg = ('no transport available: rclpy is not importable (source a ROS 2 setup.bash) '
+                   "and the Python package 'cyclonedds' is not installed (pip install cyclonedds)")
+            raise TransportError(msg)
+    if transport == 'rclpy':
+        if not _available('rclpy'):
+            msg = ("transport 'rclpy' needs a ROS 2 install: source /opt/ros/<distro>/setup.bash "
+                   "first, or use transport 'dds'")
+            raise TransportError(msg)
+        from constraint_ctrl.transport.rclpy_port import RclpyPort
+        return RclpyPort(node_name, argv, distro=distro)
+    if not _available('cyclonedds'):
+        msg = "transport 'dds' needs the Python package 'cyclonedds' (pip install cyclonedds)"
+        raise TransportError(msg)
+    from constraint_ctrl.transport.dds_port import DdsPort
+    return DdsPort(node_name, argv, distro=distro)

@@ -1,0 +1,44 @@
+"""Named QoS profiles shared by both ports and the bag recorder.
+
+Nodes pick a profile by name so the same node code runs on rclpy and on the DDS port; each
+port maps the neutral record below onto its own QoS objects. Values follow ROS 2's presets
+(rmw/include/rmw/qos_profiles.h): 'sensor' = sensor_data, 'default' = the default profile,
+'services' = services_default, 'parameters' = parameters and parameter_events. 'status' is
+our own latched profile for late joiners (reliable, keep last 1, transient local).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from constraint_ctrl.errors import TransportError
+
+
+@dataclass(frozen=True)
+class QosProfile:
+    """History is always KEEP_LAST; deadline, lifespan and liveliness stay at ROS defaults."""
+
+    depth: int
+    reliable: bool
+    transient_local: bool
+
+
+PROFILES: dict[str, QosProfile] = {
+    'sensor': QosProfile(depth=5, reliable=False, transient_local=False),
+    'default': QosProfile(depth=10, reliable=True, transient_local=False),
+    'status': QosProfile(depth=1, reliable=True, transient_local=True),
+    'services': QosProfile(depth=10, reliable=True, transient_local=False),
+    'parameters': QosProfile(depth=1000, reliable=True, transient_local=False),
+}
+
+# Not selectable by nodes: the writer side of rmw_cyclonedds' node-discovery topic.
+DISCOVERY_INFO = QosProfile(depth=1, reliable=True, transient_local=True)
+
+
+def profile(name: str) -> QosProfile:
+    """Look a profile up by name; the error lists the names that exist."""
+    try:
+        return PROFILES[name]
+    except KeyError:
+        known = ', '.join(sorted(PROFILES))
+        msg = f'unknown QoS profile {name!r}; use one of: {known}'
+        raise TransportError(msg) from None
