@@ -407,7 +407,7 @@ def _read_flange(r: _Reader, node: yaml.Node) -> FlangeSpec:
     if slope > MAX_FLANGE_SLOPE:
         msg = (f'the waves allow slopes up to {slope:.3f} (bound), more than '
                f'{MAX_FLANGE_SLOPE}; lower amplitude, around or across')
-        raise r.fail(msg, m.get('waves', node), f'{p}.waves')
+        raise r.fail(msg, None, f'{p}.waves')  # the line of the 'waves' key
     return spec
 
 
