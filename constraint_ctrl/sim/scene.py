@@ -76,7 +76,7 @@ class Wave:
 
 @dataclass(frozen=True, slots=True)
 class FlangeSpec:
-    """Annular housing flange with a freeform top surface (a height field over the base xy plane)."""
+    """Annular housing flange; its top surface is a freeform height field over base xy."""
 
     centre: tuple[float, float]  # m, base frame
     mid_radius: float  # m

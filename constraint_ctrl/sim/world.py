@@ -14,7 +14,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, NamedTuple
 
-import casadi as ca
 import numpy as np
 
 from ..errors import ConstraintCtrlError
