@@ -295,8 +295,11 @@ def _parse(text: str) -> ast.Expression:
             warnings.simplefilter('ignore')   # e.g. invalid escapes in (rejected) strings
             tree = ast.parse(body, mode='eval')
     except SyntaxError as exc:
-        where = f' at column {exc.offset}' if exc.offset and (exc.lineno or 1) == 1 else (
-            f' at line {exc.lineno}, column {exc.offset}' if exc.offset else '')
+        line, column = exc.lineno or 1, exc.offset or 0
+        if column < 1:   # the parser reports offset 0 when the text ends too early
+            where = ' at the end'
+        else:
+            where = f' at column {column}' if line == 1 else f' at line {line}, column {column}'
         msg = f'not a valid formula{where}: {exc.msg} in {_excerpt(body)}'
         raise FormulaError(msg) from None
     except (ValueError, RecursionError, MemoryError, OverflowError):
