@@ -86,6 +86,7 @@ class _Function:
     returns: str                           # 'joint' takes a joint name, 'any' any non-boolean
     about: str
     build: Callable[..., ca.SX]
+    uses_time: bool = False                # build gets the scope's 'time' as first argument
 
     def call_form(self, name: str) -> str:
         return f'{name}({", ".join(label for label, _ in self.params)})'
@@ -207,17 +208,17 @@ _TABLE: dict[str, _Function] = {
     'ramp': _Function(
         (('start', _S), ('duration', _S), ('from_value', _S), ('to_value', _S)), _S,
         'from_value until time start, then linear to to_value over duration, then constant',
-        lambda t, t0, dt, a, b: a + (b - a) * _ramp_fraction(t, t0, dt)),
+        lambda t, t0, dt, a, b: a + (b - a) * _ramp_fraction(t, t0, dt), uses_time=True),
     'smooth_ramp': _Function(
         (('start', _S), ('duration', _S), ('from_value', _S), ('to_value', _S)), _S,
         'like ramp but quintic 10s^3 - 15s^4 + 6s^5: zero speed and acceleration at both ends',
-        lambda t, t0, dt, a, b: a + (b - a) * _quintic(_ramp_fraction(t, t0, dt))),
+        lambda t, t0, dt, a, b: a + (b - a) * _quintic(_ramp_fraction(t, t0, dt)),
+        uses_time=True),
     # holding
     'value_now': _Function((('expr', 'any'),), 'same kind as expr',
                            "expr's value at this tick, as a constant (no derivative wrt "
-                           'joints and features)', lambda x: x),
+                           'joints and features)', lambda x: x),   # see _Translator.call
 }
-_TIME_FUNCTIONS = frozenset({'ramp', 'smooth_ramp'})
 
 
 def _quintic(s: ca.SX) -> ca.SX:
@@ -559,10 +560,8 @@ class _Translator:
         args: list[object] = []
         for (label, kind), arg in zip(function.params, node.args):
             args.append(self.argument(name, label, kind, arg))
-        if name in _TIME_FUNCTIONS:
+        if function.uses_time:
             args.insert(0, self.time(name, node))
-        if name == 'joint':
-            return Quantity('scalar', self.scope.model.q[args[0]])
         if name == 'value_now':
             held = args[0]
             assert isinstance(held, Quantity)
@@ -576,7 +575,7 @@ class _Translator:
                 given = node.id if isinstance(node, ast.Name) else 'an expression'
                 raise self.fail(f'{function}() needs a movable joint name, got {given!r} '
                                 f'(joints: {", ".join(model.joint_names) or "none"})', node)
-            return model.joint_index(node.id)
+            return model.q[model.joint_index(node.id)]
         if kind == 'frame' and isinstance(node, ast.Name) and node.id in model.link_names:
             return model.pose(node.id)
         if kind == 'frame' and isinstance(node, ast.Name) and node.id not in self.scope.names:
