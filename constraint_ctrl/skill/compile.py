@@ -45,7 +45,11 @@ NO_BOUND = float('inf')
 
 FUNCTION_INPUTS = ('q', 's', 'q_now', 's_now', 'u', 't', 'dt', 'x_prev', 'p')
 FUNCTION_OUTPUTS = ('value', 'error', 'J', 'e_t', 'jdx', 'lo', 'hi', 'weight', 'events',
-                    'box_lo', 'box_hi', 'hj', 'hv', 'C', 'b')
+                    'box_lo', 'box_hi', 'hj', 'hv', 'C', 'b', 'G', 'a')
+
+#: Below this many Jacobian entries the whole tick function is flattened into one SX graph
+#: (fastest to evaluate); above it, G = H^T H stays a dense matrix product (fastest to build).
+EXPAND_LIMIT = 4000
 
 
 @dataclass(frozen=True, slots=True)
@@ -283,7 +287,14 @@ class _Builder:
             J = ca.jacobian(e_ref, self.x_sym)
             e_t = ca.jacobian(e_ref, self.t)
             rate = ca.mtimes(J, self.x_prev) + e_t
-            jdx = ca.mtimes(ca.jacobian(rate, self.x_sym), self.x_prev) + ca.jacobian(rate, self.t)
+            # d(J x_prev + e_t)/dt along the motion: second derivatives, so only for the rows
+            # with a second-order behaviour (the others never read it)
+            second = [i for i, (_, _, con, _) in enumerate(pending) if con.behaviour.order == 2]
+            jdx = ca.SX.zeros(len(pending), 1)
+            if second:
+                rate2 = rate[second]
+                jdx[second] = (ca.mtimes(ca.jacobian(rate2, self.x_sym), self.x_prev)
+                               + ca.jacobian(rate2, self.t))
             bounds = [self._row_bounds(lo_e, hi_e, e_ref[i], e_t[i], rate[i], jdx[i], con, gains)
                       for i, (lo_e, hi_e, con, gains) in enumerate(pending)]
             value = ca.vertcat(*values)
@@ -304,11 +315,10 @@ class _Builder:
         ev = ca.vertcat(*events) if events else ca.SX(0, 1)
         outputs = [value, error, J, e_t, jdx, lo, hi, w, ev, box_lo, box_hi, hj, hv, C, b]
         outputs = [ca.densify(o) for o in outputs]
-        fn = ca.Function(f'skill_{spec.name}',
-                         [self.q, self.s, self.q_now, self.s_now, self.u, self.t, self.dt,
-                          self.x_prev, p],
-                         outputs, list(FUNCTION_INPUTS), list(FUNCTION_OUTPUTS),
-                         {'cse': True})
+        inputs = [self.q, self.s, self.q_now, self.s_now, self.u, self.t, self.dt, self.x_prev, p]
+        rows_fn = ca.Function(f'rows_{spec.name}', inputs, outputs, list(FUNCTION_INPUTS),
+                              list(FUNCTION_OUTPUTS[:-2]), {'cse': True})
+        fn = _with_objective(rows_fn, layout, reg_diag, damping, f'skill_{spec.name}')
         return CompiledSkill(
             spec=spec, model=self.model, function=fn, rows=tuple(rows),
             params=tuple(self.params.infos), layout=layout,
@@ -450,6 +460,30 @@ class _Builder:
                                   float('inf'), '', 'damping of the velocity regularisation',
                                   strictly_positive=True))
         return lo, hi, reg, len(self.params.infos) - 1
+
+
+def _with_objective(rows_fn: ca.Function, layout: QpLayout, reg_diag: np.ndarray,
+                    damping_index: int, name: str) -> ca.Function:
+    """Append quadprog's G = H^T H + diag(lambda^2 r, w_slack) and a = H^T h to the outputs."""
+    args = [ca.MX.sym(rows_fn.name_in(i), rows_fn.sparsity_in(i)) for i in range(rows_fn.n_in())]
+    res = rows_fn(*args)
+    out = dict(zip(FUNCTION_OUTPUTS, res))
+    hj, hv, w, p = out['hj'], out['hv'], out['weight'], args[-1]
+    damping = p[damping_index]
+    n_x = layout.n_x
+    G_x = ca.mtimes(hj.T, hj) + ca.diag(damping ** 2 * ca.DM(reg_diag))
+    a_x = ca.mtimes(hj.T, hv)
+    if layout.soft_ineq:
+        slack_w = ca.vertcat(*[w[i] for i in layout.soft_ineq])
+        G = ca.diagcat(G_x, ca.diag(slack_w))
+        a = ca.vertcat(a_x, ca.MX.zeros(len(layout.soft_ineq), 1))
+    else:
+        G, a = G_x, a_x
+    outputs = list(res) + [ca.densify(G), ca.densify(a)]
+    fn = ca.Function(name, args, outputs, list(FUNCTION_INPUTS), list(FUNCTION_OUTPUTS))
+    if rows_fn.size1_out(2) * max(n_x, 1) <= EXPAND_LIMIT:
+        fn = fn.expand()
+    return fn
 
 
 def _violation(e_lo: ca.SX | None, e_hi: ca.SX | None, kind: str) -> ca.SX:

@@ -29,6 +29,8 @@ import quadprog
 
 from ..skill.compile import FUNCTION_INPUTS, FUNCTION_OUTPUTS, CompiledSkill
 
+#: Outputs read as 2-D arrays (all others are vectors).
+MATRIX_OUTPUTS = frozenset({'J', 'hj', 'C', 'G'})
 #: Rank tolerance (relative to the largest singular value) for held equality rows.
 RANK_TOLERANCE = 1e-9
 #: Held inequality rows get this much room so round-off never makes a lower level infeasible.
@@ -104,20 +106,14 @@ class SkillSolver:
             flat = np.zeros(rows * cols)
             buf.set_res(i, memoryview(flat))
             # CasADi writes column-major: a Fortran-ordered view gives the matrix
-            self._outputs[name] = flat.reshape((rows, cols), order='F') if cols > 1 \
-                else flat
+            self._outputs[name] = flat.reshape((rows, cols), order='F') \
+                if name in MATRIX_OUTPUTS else flat
         self.p = self._inputs['p']
         self.p[:] = skill.default_params()
         lay = skill.layout
-        n_x, n_z = lay.n_x, lay.n_z
-        self._G = np.zeros((n_z, n_z))
-        self._Gx = self._G if n_z == n_x else np.zeros((n_x, n_x))
-        self._diag = self._G.reshape(-1)[::n_z + 1]
-        self._a = np.zeros(n_z)
-        self._slack_rows = np.array(lay.soft_ineq, dtype=int)
         self._is_eq = np.array([r.kind == 'equal' for r in skill.rows], dtype=bool)
         self._multi_level = len(lay.levels) > 1
-        self.last_x = np.zeros(n_x)
+        self.last_x = np.zeros(lay.n_x)
         self.last_iact = np.zeros(0, dtype=int)
         self.last_status = SolveStatus.OK
 
@@ -148,22 +144,10 @@ class SkillSolver:
         self._evaluate()
         evaluated = time.perf_counter_ns()
         out = self._outputs
-        hj, hv = out['hj'], out['hv']
         lay = self.skill.layout
-        if hj.size:
-            np.matmul(hj.T, hj, out=self._Gx)
-            np.matmul(hv, hj, out=self._a[:n_x])
-        else:
-            self._Gx[:] = 0.0
-            self._a[:n_x] = 0.0
-        if self._Gx is not self._G:
-            self._G[:n_x, :n_x] = self._Gx
-            self._diag[n_x:] = out['weight'][self._slack_rows]
-        damping = self.p[self.skill.damping_param]
-        self._diag[:n_x] += damping * damping * self.skill.reg_diag
         try:
-            z, _, _, iterations, _, iact = quadprog.solve_qp(self._G, self._a, out['C'], out['b'],
-                                                             lay.meq)
+            z, _, _, iterations, _, iact = quadprog.solve_qp(out['G'], out['a'], out['C'],
+                                                             out['b'], lay.meq)
         except ValueError as err:
             text = str(err)
             status = SolveStatus.NOT_CONVEX if 'positive definite' in text \

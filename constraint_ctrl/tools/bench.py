@@ -88,8 +88,8 @@ def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict
 
     engine()
     # the raw bound: the compiled CasADi call alone, then quadprog on the very same matrices
-    G = solver._G.copy()          # noqa: SLF001 - benchmark reads the solver's own buffers
-    a = solver._a.copy()          # noqa: SLF001
+    G = solver.outputs['G'].copy(order='F')
+    a = solver.outputs['a'].copy()
     C = solver.outputs['C'].copy(order='F')
     b = solver.outputs['b'].copy()
     meq = skill.layout.meq

@@ -103,7 +103,7 @@ def test_kkt_conditions_hold_on_quadprog_multipliers() -> None:
         q = np.array([0.0, 0.3, 0.7, 0.0, 0.6, 0.0]) + rng.uniform(-0.3, 0.3, 6)
         if not solver.solve(q, np.zeros(0), np.zeros(0), 0.0, 0.002, np.zeros(6)).ok:
             continue
-        G, a = solver._G.copy(), solver._a.copy()   # noqa: SLF001 - the very QP that was solved
+        G, a = solver.outputs['G'].copy(), solver.outputs['a'].copy()  # the QP that was solved
         C, b = solver.outputs['C'].copy(), solver.outputs['b'].copy()
         z, _, _, _, lagr, _ = quadprog.solve_qp(G, a, C, b, lay.meq)
         residual = C.T @ z - b
