@@ -127,7 +127,7 @@ class RobotModel:
         return ca.Function('fk', [self.q], outputs, ['q'], [f'pose_{i}' for i in range(len(links))])
 
     def points_function(self, points: Sequence[tuple[str, Sequence[float]]]) -> ca.Function:
-        """casadi Function 'points': q -> (P 3 x k positions in base, J 3k x n translational Jacobians).
+        """casadi Function 'points': q -> (P: 3 x k positions in base, J: 3k x n Jacobians).
 
         Each point is given as (link, xyz in that link's frame); J stacks the 3 x n Jacobians of
         the points in order, obtained by automatic differentiation.

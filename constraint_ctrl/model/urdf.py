@@ -130,7 +130,8 @@ class _Parser:
         tag = _tag(element)
         kind = element.get('type')
         if kind is None:
-            raise self.error(f'{tag}: missing type attribute (one of {", ".join(SUPPORTED_JOINT_TYPES)})')
+            raise self.error(f'{tag}: missing type attribute '
+                             f'(one of {", ".join(SUPPORTED_JOINT_TYPES)})')
         if kind in _UNSUPPORTED_JOINT_TYPES:
             raise self.error(f'{tag}: type="{kind}" is not supported; '
                              f'use one of {", ".join(SUPPORTED_JOINT_TYPES)}')

@@ -1,4 +1,4 @@
-"""Symbolic forward kinematics and AD Jacobians against Pinocchio (PyPI `pin`), the outside reference.
+"""Symbolic forward kinematics and AD Jacobians against Pinocchio (PyPI `pin`), the reference.
 
 Pinocchio orders its joints depth-first and stores a continuous joint as (cos, sin), so q is
 mapped by joint name. Jacobians are compared with Pinocchio's LOCAL_WORLD_ALIGNED frame Jacobian

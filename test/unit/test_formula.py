@@ -195,7 +195,7 @@ def test_planes_and_signed_distance() -> None:
 
 
 def test_lines_and_distance() -> None:
-    """Distance to a line = |(p - a) x u| (analytic geometry); line along x, point (1, 3, 4) -> 5."""
+    """Distance to a line = |(p - a) x u| (analytic geometry); x axis to (1, 3, 4) is 5."""
     assert value('distance_to_line(p, line(vector(0, 0, 0), vector(2, 0, 0)))',
                  p=[1.0, 3.0, 4.0]) == pytest.approx(5.0)
     direction = (B_NUM - A_NUM) / np.linalg.norm(B_NUM - A_NUM)
@@ -237,10 +237,7 @@ def test_math_functions_match_python_math(text: str, expected: float) -> None:
 @pytest.mark.parametrize(('time', 'expected', 'slope'), [
     (0.0, 0.0, 0.0), (1.0, 0.0, 5.0), (2.0, 5.0, 5.0), (3.0, 10.0, 0.0), (4.0, 10.0, 0.0)])
 def test_ramp_is_linear_and_clipped(time: float, expected: float, slope: float) -> None:
-    """ramp(1, 2, 0, 10): 0 before t=1, slope 10/2 = 5 on (1, 3), 10 after.
-
-    At t=1 the one-sided slope from the right is 5; casadi's fmax derivative picks that side.
-    """
+    """ramp(1, 2, 0, 10): 0 before t=1, slope 10/2 = 5 on (1, 3), 10 after (kinks not probed)."""
     assert value('ramp(1, 2, 0, 10)', time=time) == pytest.approx(expected)
     if time not in (1.0, 3.0):
         assert derivative('ramp(1, 2, 0, 10)', T, time=time)[0, 0] == pytest.approx(slope)
@@ -255,7 +252,8 @@ def test_smooth_ramp_quintic_values_and_derivatives() -> None:
     assert value(text, time=2.0) == pytest.approx(5.0)
     assert value(text, time=5.0) == pytest.approx(7.0)
     s = 0.25
-    assert value(text, time=1.0 + 2 * s) == pytest.approx(3 + 4 * (10 * s**3 - 15 * s**4 + 6 * s**5))
+    quintic = 10 * s**3 - 15 * s**4 + 6 * s**5
+    assert value(text, time=1.0 + 2 * s) == pytest.approx(3 + 4 * quintic)
     assert derivative(text, T, time=2.0)[0, 0] == pytest.approx(15 / 8 * 4 / 2)
     second = ca.Function('dd', [T], [ca.jacobian(ca.jacobian(
         compile_formula(text, scope()).sx, T), T)])

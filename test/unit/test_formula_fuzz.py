@@ -71,7 +71,8 @@ CALLEES = sorted(FUNCTIONS) + ['eval', 'exec', '__import__', 'getattr', 'open', 
 def _expressions() -> st.SearchStrategy[str]:
     def extend(inner: st.SearchStrategy[str]) -> st.SearchStrategy[str]:
         return st.one_of(
-            st.tuples(inner, st.sampled_from(BINARY), inner).map(lambda t: f'({t[0]} {t[1]} {t[2]})'),
+            st.tuples(inner, st.sampled_from(BINARY), inner).map(
+                lambda t: f'({t[0]} {t[1]} {t[2]})'),
             st.tuples(st.sampled_from(['-', '+', 'not ', '~']), inner).map(''.join),
             st.tuples(st.sampled_from(CALLEES), st.lists(inner, max_size=5)).map(
                 lambda t: f'{t[0]}({", ".join(t[1])})'),
