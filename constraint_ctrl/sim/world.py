@@ -95,7 +95,14 @@ class World:
         self.contact = GearContact(scene.shaft)
         self.operator = Operator(scene.operator) if scene.operator is not None else None
         self._rng = np.random.default_rng(scene.seed)
-        self._kin = _Kinematics(model, [scene.tool_frame, *scene.range_sensors.frames])
+        frames = {'robot.tool_frame': scene.tool_frame}
+        frames.update({f'range_sensors.frames[{i}]': name
+                       for i, name in enumerate(scene.range_sensors.frames)})
+        for field_path, name in frames.items():
+            if name not in model.link_names:
+                msg = f'the robot has no link {name!r} (URDF {str(scene.urdf)!r})'
+                raise scene.error(msg, field_path)
+        self._kin = _Kinematics(model, list(frames.values()))
 
         q0 = np.zeros(model.n_joints)
         for name, value in scene.initial_positions.items():

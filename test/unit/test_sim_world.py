@@ -267,31 +267,38 @@ def scene_step(scene: Scene) -> float:
 
 
 def run_noisy(scene: Scene, model: RobotModel, steps: int) -> np.ndarray:
+    """Per step: measured minus true joints, range minus exact range, force, torque."""
     world = World(scene, model)
+    exact_ranges = [r.range for r in World(exact(scene), model).range_readings()]
+    assert all(0.005 < r < 0.035 for r in exact_ranges)  # noise cannot push them out of range
     rows = []
     for _ in range(steps):
         world.step(scene_step(scene), np.zeros(6))  # one fixed step: one noise draw
         force, torque = world.wrench()
+        ranges = [r.range for r in world.range_readings()]
         rows.append(np.concatenate([world.joint_positions - world.true_joint_positions,
-                                    force, torque]))
+                                    np.subtract(ranges, exact_ranges), force, torque]))
     return np.array(rows)
 
 
-def test_noise_is_seeded_and_has_the_configured_spread(shipped: Scene,
-                                                       model: RobotModel) -> None:
+def test_noise_is_seeded_and_has_the_configured_spread(
+        shipped: Scene, model: RobotModel, pin_model: tuple[pin.Model, pin.Data]) -> None:
     """Same seed -> same samples; sample std within 10 % of sigma (std error ~ 1/sqrt(2N))."""
-    first = run_noisy(shipped, model, 1200)
-    again = run_noisy(shipped, model, 1200)
-    other = run_noisy(dataclasses.replace(shipped, seed=shipped.seed + 1), model, 1200)
+    q = ik_tool_down(pin_model, [0.32, 0.25, 0.215], heading=-0.3)  # over the flange
+    scene = with_start_pose(shipped, q, model)
+    first = run_noisy(scene, model, 1200)
+    again = run_noisy(scene, model, 1200)
+    other = run_noisy(dataclasses.replace(scene, seed=scene.seed + 1), model, 1200)
     np.testing.assert_array_equal(first, again)
-    assert not np.allclose(first, other)
-    sigma = np.array([shipped.noise.joint_position] * 6 + [shipped.noise.force] * 3
-                     + [shipped.noise.torque] * 3)
+    assert not np.any(np.isclose(first, other, rtol=0, atol=0))
+    noise = shipped.noise
+    sigma = np.array([noise.joint_position] * 6 + [noise.range] * 3 + [noise.force] * 3
+                     + [noise.torque] * 3)
     # relative standard error of a sample std is about 1/sqrt(2 N) = 2.0 % for N = 1200
     # (from memory); 10 % leaves more than 5 standard errors
     np.testing.assert_allclose(first.std(axis=0), sigma, rtol=0.10)
-    np.testing.assert_allclose(first.mean(axis=0), 0.0, atol=float(5 * sigma.max()
-                                                                     / math.sqrt(1200)))
+    # the mean of N samples has standard error sigma/sqrt(N); allow 5 of them
+    assert np.all(np.abs(first.mean(axis=0)) < 5 * sigma / math.sqrt(1200))
 
 
 # -- scene file -------------------------------------------------------------------------------
@@ -358,3 +365,13 @@ def test_unknown_initial_joint_is_reported_at_its_line(tmp_path: Path,
         World(scene, model)
     assert info.value.line == line_of(path, 'joint_7')
     assert info.value.field == 'robot.initial_positions.joint_7'
+
+
+def test_unknown_sensor_frame_is_reported_at_its_line(tmp_path: Path, model: RobotModel) -> None:
+    """A range sensor frame missing from the URDF points at its entry in the scene file."""
+    path = write_variant(tmp_path, 'frames: [range_left, range_right, range_front]',
+                         'frames: [range_left, range_rigth, range_front]')
+    with pytest.raises(SceneError, match="no link 'range_rigth'") as info:
+        World(load_scene(path), model)
+    assert info.value.field == 'range_sensors.frames[1]'
+    assert info.value.line == line_of(path, 'range_rigth')
