@@ -75,9 +75,13 @@ class SkillRunner:
     def name(self) -> str:
         return self.skill.spec.name
 
-    def activate(self, joint_velocity: np.ndarray) -> None:
-        """Start from the skill's initial features, its clock at 0, continuing the last command."""
+    def activate(self, q: np.ndarray, joint_velocity: np.ndarray) -> None:
+        """Start from the skill's initial features, its clock at 0, continuing the last command.
+
+        ``q`` is remembered as the start pose that start_value() in formulas refers to.
+        """
         self.features = self.skill.initial_features()
+        self.solver.set_start(q, self.features)
         self.time = 0.0
         self.x_prev = np.concatenate([joint_velocity, np.zeros(self.skill.n_s)])
         self.events = EventTracker(self.skill.event_names,

@@ -126,6 +126,18 @@ class World:
         self._contact: GearContactResult = self._evaluate_contact()
         self._sample_noise()
 
+    def reset_joint_positions(self, q: Sequence[float] | np.ndarray) -> None:
+        """Place the robot at rest at ``q`` (model joint order) before a run; drops pending commands."""
+        q = np.asarray(q, dtype=float)
+        if q.shape != (self.model.n_joints,) or not np.isfinite(q).all():
+            msg = f'expected {self.model.n_joints} finite joint positions, got {q!r}'
+            raise SimError(msg)
+        self._q = np.clip(q, self.model.lower, self.model.upper)
+        self._qdot = np.zeros(self.model.n_joints)
+        self._pending.clear()
+        self._applied = np.zeros(self.model.n_joints)
+        self._contact = self._evaluate_contact()
+
     # -- time ---------------------------------------------------------------------------------
 
     @property

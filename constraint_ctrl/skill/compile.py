@@ -43,7 +43,8 @@ UNLIMITED_SPEED = 1.0e3
 #: Velocity bound used for one-sided rows on the absent side (never enters the QP).
 NO_BOUND = float('inf')
 
-FUNCTION_INPUTS = ('q', 's', 'q_now', 's_now', 'u', 't', 'dt', 'x_prev', 'p')
+FUNCTION_INPUTS = ('q', 's', 'q_now', 's_now', 'q_start', 's_start', 'u', 't', 'dt', 'x_prev',
+                   'p')
 FUNCTION_OUTPUTS = ('value', 'error', 'J', 'e_t', 'jdx', 'lo', 'hi', 'weight', 'events',
                     'box_lo', 'box_hi', 'hj', 'hv', 'C', 'b', 'G', 'a')
 
@@ -204,6 +205,8 @@ class _Builder:
         self.s = ca.SX.sym('s', n_s)
         self.q_now = ca.SX.sym('q_now', model.n_joints)
         self.s_now = ca.SX.sym('s_now', n_s)
+        self.q_start = ca.SX.sym('q_start', model.n_joints)
+        self.s_start = ca.SX.sym('s_start', n_s)
         self.u = ca.SX.sym('u', len(spec.inputs))
         self.t = ca.SX.sym('t')
         self.dt = ca.SX.sym('dt')
@@ -223,7 +226,8 @@ class _Builder:
                                             tun.unit, tun.description))
             names[tun.name] = Quantity('scalar', sym)
         return FormulaScope(model=self.model, names=names,
-                            held_from=[self.q, self.s], held_to=[self.q_now, self.s_now])
+                            held_from=[self.q, self.s], held_to=[self.q_now, self.s_now],
+                            start_to=[self.q_start, self.s_start])
 
     def _formula(self, text: str | float, scope: FormulaScope, field_path: str) -> Quantity:
         if isinstance(text, (int, float)) and not isinstance(text, bool):
@@ -315,7 +319,8 @@ class _Builder:
         ev = ca.vertcat(*events) if events else ca.SX(0, 1)
         outputs = [value, error, J, e_t, jdx, lo, hi, w, ev, box_lo, box_hi, hj, hv, C, b]
         outputs = [ca.densify(o) for o in outputs]
-        inputs = [self.q, self.s, self.q_now, self.s_now, self.u, self.t, self.dt, self.x_prev, p]
+        inputs = [self.q, self.s, self.q_now, self.s_now, self.q_start, self.s_start, self.u,
+                  self.t, self.dt, self.x_prev, p]
         rows_fn = ca.Function(f'rows_{spec.name}', inputs, outputs, list(FUNCTION_INPUTS),
                               list(FUNCTION_OUTPUTS[:-2]), {'cse': True})
         fn = _with_objective(rows_fn, layout, reg_diag, damping, f'skill_{spec.name}')

@@ -75,6 +75,7 @@ class FormulaScope:
     names: dict[str, Quantity] = field(default_factory=dict)
     held_from: list[ca.SX] = field(default_factory=list)
     held_to: list[ca.SX] = field(default_factory=list)
+    start_to: list[ca.SX] = field(default_factory=list)   # held_from's values at activation
 
 
 # --------------------------------------------------------------------------------------------
@@ -215,6 +216,10 @@ _TABLE: dict[str, _Function] = {
         lambda t, t0, dt, a, b: a + (b - a) * _quintic(_ramp_fraction(t, t0, dt)),
         uses_time=True),
     # holding
+    'start_value': _Function((('expr', 'any'),), 'same kind as expr',
+                             "expr's value when the skill was activated (joints, features and "
+                             'time as they were then; inputs as they are now), as a constant',
+                             lambda x: x),   # see _Translator.call
     'value_now': _Function((('expr', 'any'),), 'same kind as expr',
                            "expr's value at this tick, as a constant (no derivative wrt "
                            'joints and features)', lambda x: x),   # see _Translator.call
@@ -566,6 +571,10 @@ class _Translator:
             held = args[0]
             assert isinstance(held, Quantity)
             return Quantity(held.kind, self.hold(held.sx, node))
+        if name == 'start_value':
+            held = args[0]
+            assert isinstance(held, Quantity)
+            return Quantity(held.kind, self.at_start(held.sx, node))
         return Quantity(function.returns, function.build(*args))
 
     def argument(self, function: str, label: str, kind: str, node: ast.AST) -> object:
@@ -608,3 +617,15 @@ class _Translator:
             raise self.fail('value_now() is not available here: the scope declares no held '
                             'symbols (FormulaScope.held_from/held_to)', node)
         return ca.substitute([expression], list(held_from), list(held_to))[0]
+
+    def at_start(self, expression: ca.SX, node: ast.AST) -> ca.SX:
+        held_from, start_to = self.scope.held_from, self.scope.start_to
+        if not held_from or len(held_from) != len(start_to):
+            raise self.fail('start_value() is not available here: the scope declares no start '
+                            'symbols (FormulaScope.held_from/start_to)', node)
+        time = self.scope.names.get('time')
+        frm, to = list(held_from), list(start_to)
+        if time is not None and time.sx.is_symbolic():
+            frm.append(time.sx)
+            to.append(ca.SX(0.0))
+        return ca.substitute([expression], frm, to)[0]

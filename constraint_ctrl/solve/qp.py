@@ -126,6 +126,11 @@ class SkillSolver:
     def set_param(self, index: int, value: float) -> None:
         self.p[index] = value
 
+    def set_start(self, q: np.ndarray, s: np.ndarray) -> None:
+        """Joint and feature values at activation, read by start_value() in formulas."""
+        self._inputs['q_start'][:] = q
+        self._inputs['s_start'][:] = s
+
     # -------------------------------------------------------------- solve
     def solve(self, q: np.ndarray, s: np.ndarray, u: np.ndarray, t: float, dt: float,
               x_prev: np.ndarray) -> SolveResult:
@@ -283,7 +288,7 @@ class SkillSolver:
 
 
 def _which_bad(inp: dict[str, np.ndarray]) -> str:
-    bad = [name for name in ('q', 's', 'u', 't', 'dt', 'x_prev', 'p')
+    bad = [name for name in ('q', 's', 'q_start', 's_start', 'u', 't', 'dt', 'x_prev', 'p')
            if not np.isfinite(inp[name]).all()]
     return 'non-finite ' + ', '.join(bad)
 

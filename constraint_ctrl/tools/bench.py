@@ -72,6 +72,7 @@ def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict
     """Engine tick (evaluate + assemble + solve) against the raw bound on identical matrices."""
     solver = SkillSolver(skill)
     s = skill.initial_features()
+    solver.set_start(q, s)
     u = np.array([skill.spec.offline.inputs.get(name, 0.0) for name in skill.input_names])
     x = np.zeros(skill.n_x)
     dt = 0.002

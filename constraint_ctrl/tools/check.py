@@ -76,6 +76,7 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
     s = skill.initial_features()
     _check_limits(skill, q, s, report)
     solver = SkillSolver(skill)
+    solver.set_start(q, s)
     result = solver.solve(q, s, u, 0.0, 0.002, np.zeros(skill.n_x))
     out = solver.outputs
     if result.status is SolveStatus.INFEASIBLE:
@@ -99,13 +100,19 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
 
 def _scene_values(skill: CompiledSkill, q: np.ndarray, u: np.ndarray,
                   report: CheckReport) -> np.ndarray:
+    """Input values the skill's offline scene gives at the start pose."""
     try:
-        from .simulate import scene_inputs
-        source, _ = scene_inputs(skill, q)
-        return source(0.0, q)
+        from .simulate import ScenePlant
+        plant = ScenePlant(skill)
+        _, values = plant.measured()
     except ConstraintCtrlError as err:
         report.errors.append(str(err))
         return u
+    for name, value in zip(skill.input_names, values):
+        if not np.isfinite(value):
+            report.warnings.append(f'input {name!r} reads {value} in the scene at the start pose '
+                                   '(no detection); the skill cannot run there')
+    return values
 
 
 def _check_limits(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
@@ -167,6 +174,7 @@ def _conflicting_hard_rows(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
         relaxed = replace(skill.spec, constraints=tuple(
             replace(c, hard=False) if c is con else c for c in skill.spec.constraints))
         trial = SkillSolver(_compile(relaxed, skill.model))
+        trial.set_start(q, s)
         if trial.solve(q, s, u, 0.0, 0.002, np.zeros(skill.n_x)).ok:
             culprits.append(con.name)
     if culprits:

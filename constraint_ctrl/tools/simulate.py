@@ -11,7 +11,6 @@ import json
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
@@ -19,10 +18,6 @@ from ..errors import ConstraintCtrlError
 from ..runtime.runner import SkillRunner
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
-
-#: Called each tick with (time, q) and returning the input vector in the skill's input order.
-InputSource = Callable[[float, np.ndarray], np.ndarray]
-
 
 @dataclass(slots=True)
 class Trace:
@@ -50,51 +45,70 @@ def start_pose(skill: CompiledSkill) -> np.ndarray:
     return np.array([float(start.get(j, 0.0)) for j in skill.joint_names])
 
 
-def constant_inputs(skill: CompiledSkill) -> InputSource:
-    values = skill.spec.offline.inputs
-    missing = [name for name in skill.input_names if name not in values]
-    if missing:
-        raise skill.spec.error(f'no offline value for inputs {missing}: give them under '
-                               'offline.inputs or name an offline.scene', 'offline')
-    u = np.array([float(values[name]) for name in skill.input_names])
-    return lambda _t, _q: u
+class ExactPlant:
+    """The command integrated exactly; inputs are the skill's offline.inputs constants."""
+
+    def __init__(self, skill: CompiledSkill) -> None:
+        values = skill.spec.offline.inputs
+        missing = [name for name in skill.input_names if name not in values]
+        if missing:
+            raise skill.spec.error(f'no offline value for inputs {missing}: give them under '
+                                   'offline.inputs or name an offline.scene', 'offline')
+        self.u = np.array([float(values[name]) for name in skill.input_names])
+        self.q = start_pose(skill)
+
+    def measured(self) -> tuple[np.ndarray, np.ndarray]:
+        return self.q, self.u
+
+    def true_q(self) -> np.ndarray:
+        return self.q
+
+    def apply(self, dt: float, qdot: np.ndarray) -> None:
+        self.q = self.q + dt * qdot
 
 
-def scene_inputs(skill: CompiledSkill, q0: np.ndarray) -> tuple[InputSource, np.ndarray]:
-    """Inputs from the simulated work cell, evaluated at the commanded joint positions."""
-    from ..sim.scene import load_scene
-    from ..sim.world import World
+class ScenePlant:
+    """The simulated work cell: latency, noise, sensors and contact (constraint_ctrl.sim)."""
 
-    scene_path = skill.spec.offline.scene
-    assert scene_path is not None
-    scene = load_scene(scene_path)
-    world = World(scene, skill.model)
-    if not skill.spec.offline.start:
-        q0 = np.array(world.true_joint_positions, dtype=float)
-    world.set_joint_positions(q0)
+    def __init__(self, skill: CompiledSkill) -> None:
+        from ..sim.scene import load_scene
+        from ..sim.signals import world_signals
+        from ..sim.world import World
 
-    def source(t: float, q: np.ndarray) -> np.ndarray:
-        world.set_joint_positions(q)
-        world.advance_time(t)
-        signals = world.signals()
-        return np.array([signals[name] for name in skill.input_names])
+        scene_path = skill.spec.offline.scene
+        assert scene_path is not None
+        self.world = World(load_scene(scene_path), skill.model)
+        if skill.spec.offline.start:
+            self.world.reset_joint_positions(start_pose(skill))
+        self._signals = world_signals
+        offered = world_signals(self.world)
+        missing = [n for n in skill.input_names if n not in offered]
+        if missing:
+            raise skill.spec.error(f'the scene {scene_path.name} offers no signals {missing}; '
+                                   f'it offers {sorted(offered)}', 'offline.scene')
+        self.names = skill.input_names
+        order = [skill.model.joint_names.index(j) for j in skill.joint_names]
+        self.order = np.array(order, dtype=int)
 
-    missing = [n for n in skill.input_names if n not in world.signals()]
-    if missing:
-        raise skill.spec.error(f'the scene {scene_path.name} provides no signals {missing}; it '
-                               f'provides {sorted(world.signals())}', 'offline.scene')
-    return source, q0
+    def measured(self) -> tuple[np.ndarray, np.ndarray]:
+        signals = self._signals(self.world)
+        return (self.world.joint_positions[self.order],
+                np.array([signals[name] for name in self.names]))
+
+    def true_q(self) -> np.ndarray:
+        return self.world.true_joint_positions[self.order]
+
+    def apply(self, dt: float, qdot: np.ndarray) -> None:
+        command = np.zeros(len(self.order))
+        command[self.order] = qdot
+        self.world.step(dt, command)
 
 
 def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
         progress: bool = False) -> Trace:
-    q = start_pose(skill)
-    if skill.spec.offline.scene is not None:
-        inputs, q = scene_inputs(skill, q)
-    else:
-        inputs = constant_inputs(skill)
+    plant = ScenePlant(skill) if skill.spec.offline.scene is not None else ExactPlant(skill)
     runner = SkillRunner(skill)
-    runner.activate(np.zeros(skill.n_q))
+    runner.activate(plant.measured()[0], np.zeros(skill.n_q))
     n = int(round(duration / dt))
     rows = skill.n_rows
     trace = Trace(time=np.arange(n) * dt, q=np.zeros((n, skill.n_q)),
@@ -105,10 +119,10 @@ def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
     bar = _progress(n) if progress and n >= 5000 else None
     for k in range(n):
         t = k * dt
-        u = inputs(t, q)
+        q, u = plant.measured()
         result = runner.tick(q, u, dt)
         report = runner.diagnostics()
-        trace.q[k] = q
+        trace.q[k] = plant.true_q()
         trace.features[k] = runner.features
         trace.joint_velocity[k] = result.joint_velocity
         trace.feature_velocity[k] = result.feature_velocity
@@ -119,7 +133,7 @@ def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
         trace.status.append(result.status.value)
         trace.events.extend((t, name) for name in result.events)
         runner.commit(result.joint_velocity, 1.0, dt)
-        q = q + dt * result.joint_velocity
+        plant.apply(dt, result.joint_velocity)
         if bar is not None and k % 500 == 0:
             bar.update(min(500, n - k))
     if bar is not None:

@@ -27,6 +27,7 @@ X = ca.SX.sym('x')
 A_VEC, B_VEC, P_VEC = ca.SX.sym('a', 3), ca.SX.sym('b', 3), ca.SX.sym('p', 3)
 A_FRAME, B_FRAME = ca.SX.sym('A', 4, 4), ca.SX.sym('B', 4, 4)
 Q_NOW = ca.SX.sym('q_now', MODEL.n_joints)
+Q_START = ca.SX.sym('q_start', MODEL.n_joints)
 INPUTS = [MODEL.q, Q_NOW, T, X, A_VEC, B_VEC, P_VEC, A_FRAME, B_FRAME]
 
 
@@ -35,7 +36,7 @@ def scope() -> FormulaScope:
              'a': Quantity('vector', A_VEC), 'b': Quantity('vector', B_VEC),
              'p': Quantity('vector', P_VEC), 'A': Quantity('frame', A_FRAME),
              'B': Quantity('frame', B_FRAME)}
-    return FormulaScope(MODEL, names, [MODEL.q], [Q_NOW])
+    return FormulaScope(MODEL, names, [MODEL.q], [Q_NOW], [Q_START])
 
 
 def evaluate(text: str, q: np.ndarray | None = None, time: float = 0.0, x: float = 0.0,
@@ -283,6 +284,20 @@ def test_value_now_keeps_the_value_and_drops_the_derivative() -> None:
     assert compile_formula('value_now(plane(a, b))', scope()).kind == 'plane'
 
 
+def test_start_value_is_the_value_at_activation() -> None:
+    """start_value(f) = f at q_start and time 0, as a constant (no derivative wrt q or time)."""
+    text = 'start_value(origin(tool_tip)[2] + time)'
+    result = compile_formula(text, scope())
+    q_start = Q_RANDOM + 0.1
+    fn = ca.Function('f', [MODEL.q, Q_START, T], [result.sx, ca.jacobian(result.sx, MODEL.q),
+                                                  ca.jacobian(result.sx, T)])
+    val, dq, dt = fn(Q_RANDOM, q_start, 3.0)
+    # reference: the same expression evaluated directly at the start pose and time 0
+    plain = ca.Function('g', [MODEL.q], [compile_formula('origin(tool_tip)[2]', scope()).sx])
+    assert float(val) == pytest.approx(float(plain(q_start)), abs=1e-15)
+    assert np.all(np.array(dq) == 0.0) and float(dt) == 0.0
+
+
 def test_value_now_without_held_symbols_is_refused() -> None:
     """A scope with nothing to hold cannot silently return a moving value."""
     with pytest.raises(FormulaError, match='value_now\\(\\) is not available'):
@@ -421,6 +436,7 @@ SAMPLE_CALLS = {
     'min': 'min(x, 1)', 'max': 'max(x, 1)', 'clamp': 'clamp(x, 0, 1)',
     'ramp': 'ramp(0, 1, x, 2)', 'smooth_ramp': 'smooth_ramp(0, 1, x, 2)',
     'value_now': 'value_now(a)',
+    'start_value': 'start_value(a)',
 }
 
 
