@@ -2,10 +2,11 @@
 
 Every mistake in a skill file becomes a ``SkillError`` naming the file, the 1-based line and the
 field path (``constraints[2].behaviour.gain``), so a user can go straight to it. The YAML is
-composed into nodes (never constructed into Python objects by PyYAML), which is what gives every
-key and list item a line, lets duplicate keys be caught (PyYAML would keep the last silently) and
-keeps YAML tags such as ``!!python/object`` out: only text, numbers, true/false, lists and
-mappings are accepted. Anchors, aliases and ``<<`` merge keys work as in YAML 1.1.
+only composed into nodes (libyaml's parser if PyYAML has it, else PyYAML's own); the loader
+reads the nodes itself. That gives every key and list item a line, lets duplicate keys be caught
+(PyYAML would keep the last one silently) and keeps YAML tags such as ``!!python/object`` out:
+only the core scalars (text, numbers, true/false, null), lists and mappings are ever turned into
+values. Anchors, aliases and ``<<`` merge keys work as in YAML 1.1.
 
 The skill file format (our own)::
 
@@ -107,6 +108,11 @@ _TAG = 'tag:yaml.org,2002:'
 _MAP, _SEQ, _MERGE = _TAG + 'map', _TAG + 'seq', _TAG + 'merge'
 _IDENTIFIER = re.compile(r'[A-Za-z_][A-Za-z0-9_]*')
 _SNIPPET = 60  # characters of a bad mapping/list quoted in a message
+_BREAK = re.compile('\r\n|[\n\r\x85\u2028\u2029]')
+_NON_PRINTABLE = yaml.reader.Reader.NON_PRINTABLE  # what the YAML 1.1 spec allows in a stream
+#: libyaml's parser when PyYAML has it (about 10x faster; same nodes and marks), else PyYAML's.
+_YAML_LOADER: type[yaml.SafeLoader] | type[yaml.CSafeLoader] = getattr(yaml, 'CSafeLoader',
+                                                                       yaml.SafeLoader)
 
 
 class _Named(Protocol):
@@ -160,7 +166,8 @@ def load_skill(path: str | os.PathLike[str]) -> SkillSpec:
     try:
         text = data.decode('utf-8')
     except UnicodeDecodeError as exc:
-        line = data.count(b'\n', 0, exc.start) + 1
+        valid = data[:exc.start].decode('utf-8')
+        line = _line_at(valid, len(valid))
         bad = data[exc.start:exc.end]
         msg = f'expected UTF-8 text, got the byte(s) {bad!r}'
         raise SkillError(msg, file=source, line=line, field=DOCUMENT) from None
@@ -176,7 +183,7 @@ def load_skill_text(text: str, *, source: str = '<string>',
     """
     try:
         root = _compose(text, source)
-        reader = _Reader(source, Path.cwd() if base_dir is None else Path(base_dir),
+        reader = _Reader(text, source, Path.cwd() if base_dir is None else Path(base_dir),
                          frozenset(RESERVED_NAMES) | _formula_functions())
         return reader.skill(root)
     except RecursionError:
@@ -184,25 +191,30 @@ def load_skill_text(text: str, *, source: str = '<string>',
         raise SkillError(msg, file=source, line=1, field=DOCUMENT) from None
 
 
+def _line_at(text: str, index: int) -> int:
+    """1-based YAML line of a character index (YAML counts CR, LF, CRLF, NEL, LS, PS)."""
+    return len(_BREAK.findall(text, 0, index)) + 1
+
+
 def _compose(text: str, source: str) -> Node:
     """Parse YAML into a node tree, translating PyYAML's errors into located SkillErrors."""
+    bad = _NON_PRINTABLE.search(text)
+    if bad:  # checked here so both YAML back ends report it alike (and libyaml never sees it)
+        msg = f'the character {bad.group()!r} is not allowed in a YAML file'
+        raise SkillError(msg, file=source, line=_line_at(text, bad.start()), field=DOCUMENT)
     try:
-        root = yaml.compose(text, Loader=yaml.SafeLoader)
+        root = yaml.compose(text, Loader=_YAML_LOADER)
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
-        line = mark.line + 1 if mark is not None else 1
+        # libyaml puts the end of an unterminated last line on the next line: clamp to the text.
+        line = min(mark.line + 1, _line_at(text, len(text))) if mark is not None else 1
         what = ', '.join(part for part in (exc.context, exc.problem) if part)
-        lines = text.splitlines()
-        near = lines[line - 1].strip() if line <= len(lines) else ''
+        lines = _BREAK.split(text)
+        near = _clip(lines[line - 1].strip()) if line <= len(lines) else ''
         column = f' (column {mark.column + 1})' if mark is not None else ''
         msg = f'not valid YAML: {what or "syntax error"}{column} near {near!r}'
         raise SkillError(msg, file=source, line=line, field=DOCUMENT) from None
-    except yaml.reader.ReaderError as exc:
-        line = text.count('\n', 0, exc.position) + 1
-        msg = (f'not valid YAML: the character {chr(exc.character)!r} is not allowed'
-               if isinstance(exc.character, int) else f'not valid YAML: {exc.reason}')
-        raise SkillError(msg, file=source, line=line, field=DOCUMENT) from None
-    except yaml.YAMLError as exc:
+    except (yaml.YAMLError, UnicodeError) as exc:
         msg = f'not valid YAML: {exc}'
         raise SkillError(msg, file=source, line=1, field=DOCUMENT) from None
     if root is None or (isinstance(root, ScalarNode) and root.tag == _TAG + 'null'):
@@ -260,7 +272,7 @@ def _clip(text: str) -> str:
     return text if len(text) <= _SNIPPET else text[:_SNIPPET] + '...'
 
 
-def _describe(node: Node) -> str:
+def _describe(node: Node, text: str) -> str:
     """Name a node's YAML type and quote its text, for 'expected X, got Y' messages."""
     if isinstance(node, ScalarNode):
         kinds = {'str': 'the text', 'int': 'the number', 'float': 'the number',
@@ -268,16 +280,15 @@ def _describe(node: Node) -> str:
         kind = kinds.get(node.tag.removeprefix(_TAG), 'the value')
         return 'nothing (null)' if kind == 'null' else f'{kind} {_clip(node.value)!r}'
     kind = 'a mapping' if isinstance(node, MappingNode) else 'a list'
-    start, end = node.start_mark, node.end_mark
-    if start.buffer is None:
-        return kind
-    return f'{kind} {_clip(start.buffer[start.index:end.index].strip())!r}'
+    return f'{kind} {_clip(text[node.start_mark.index:node.end_mark.index].strip())!r}'
 
 
 class _Reader:
     """Builds a SkillSpec from a node tree, recording the line of every field it reads."""
 
-    def __init__(self, source: str, base_dir: Path, reserved: frozenset[str]) -> None:
+    def __init__(self, text: str, source: str, base_dir: Path,
+                 reserved: frozenset[str]) -> None:
+        self.yaml_text = text
         self.source = source
         self.base_dir = base_dir
         self.reserved = reserved
@@ -290,13 +301,13 @@ class _Reader:
         raise SkillError(message, file=self.source, line=at.line, field=path or at.path)
 
     def unsupported_tag(self, at: _Field) -> NoReturn:
-        msg = (f'unsupported YAML tag {at.node.tag!r} on {_describe(at.node)}; only text, '
-               'numbers, true/false, lists and mappings are allowed (quote text that YAML '
-               'reads as a date)')
+        msg = (f'unsupported YAML tag {at.node.tag!r} on {_describe(at.node, self.yaml_text)}; '
+               'only text, numbers, true/false, lists and mappings are allowed (quote text '
+               'that YAML reads as a date)')
         self.fail(at, msg)
 
     def expected(self, at: _Field, what: str) -> NoReturn:
-        self.fail(at, f'expected {what}, got {_describe(at.node)}')
+        self.fail(at, f'expected {what}, got {_describe(at.node, self.yaml_text)}')
 
     # -- structure ----------------------------------------------------------------------------
 

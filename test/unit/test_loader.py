@@ -101,6 +101,17 @@ offline:
 HEADER = 'skill: s\nrobot: arm.urdf\n'
 
 
+BACK_ENDS = {'pure': yaml.SafeLoader, 'libyaml': getattr(yaml, 'CSafeLoader', None)}
+
+
+@pytest.fixture(autouse=True, params=list(BACK_ENDS))
+def yaml_back_end(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Run every test with PyYAML's pure parser and with libyaml: results must not differ."""
+    if BACK_ENDS[request.param] is None:
+        pytest.skip('PyYAML was built without libyaml')
+    monkeypatch.setattr(loader, '_YAML_LOADER', BACK_ENDS[request.param])
+
+
 @pytest.fixture
 def base(tmp_path: Path) -> Path:
     """A folder with the files the skill texts refer to (robot, scene); returns the skill folder."""
@@ -135,7 +146,7 @@ def expect_error(text: str, base: Path, field: str, match: str,
     return caught.value
 
 
-# -- a valid file --------------------------------------------------------------------------------
+# -- a valid file ----------------------------------------------------------------------------------
 
 def test_full_example_loads_into_the_expected_dataclasses(base: Path) -> None:
     """Every field of the example lands in its dataclass; values read off the YAML text above."""
@@ -269,7 +280,7 @@ def test_locations_cover_every_constraint_field(base: Path) -> None:
                      f'behaviour: {{order: 1, gain: follow_gain}} {MARK}'))
 
 
-# -- errors ------------------------------------------------------------------------------------------
+# -- errors ----------------------------------------------------------------------------------------
 
 def case(body: str, field: str, match: str, error: type[SkillError] = SkillError,
          header: str = HEADER) -> tuple[str, str, str, type[SkillError]]:
@@ -293,7 +304,7 @@ CASES = {
         """, 'skill', "duplicate key 'skill' \\(first at line 1\\)"),
     'yaml_syntax': case("""\
         description: a: b  # <-
-        """, loader.DOCUMENT, 'not valid YAML: mapping values are not allowed here'),
+        """, loader.DOCUMENT, 'not valid YAML: mapping values are not allowed'),
     'unknown_top_key': case("""\
         constraint: []  # <-
         """, 'constraint', "unknown key 'constraint' at the top level; did you mean "
@@ -384,7 +395,8 @@ CASES = {
     'feature_default_initial_outside': case("""\
         features:
           f: {lower: 0.2, upper: 0.5}  # <-
-        """, 'features.f.initial', r'expected initial within \[0.2, 0.5\], got 0.0 \(the default'),
+        """, 'features.f.initial',
+        r'expected initial within \[0.2, 0.5\], got 0.0 \(the default'),
     'tunable_value_outside': case("""\
         tunables:
           k:
@@ -691,6 +703,18 @@ def test_empty_file_is_refused(text: str, base: Path) -> None:
     with pytest.raises(SkillError, match='the file is empty') as caught:
         load(text, base)
     assert (caught.value.line, caught.value.field) == (1, loader.DOCUMENT)
+
+
+@pytest.mark.parametrize(('text', 'line'), [
+    ('skill: s\nrobot: arm.urdf\ndescription: "a\x07"\n', 3),   # BEL, a C0 control
+    ('skill: s\r\nrobot: arm.urdf\r\ndescription: "\ud800"\n', 3),  # lone surrogate
+    ('skill: s\x85description: "\x00"\n', 2),                   # NEL is a YAML line break
+])
+def test_characters_yaml_does_not_allow(text: str, line: int, base: Path) -> None:
+    """YAML 1.1 spec 5.1 (printable subset of Unicode, from memory): others are refused."""
+    with pytest.raises(SkillError, match='is not allowed in a YAML file') as caught:
+        load(text, base)
+    assert (caught.value.line, caught.value.field) == (line, loader.DOCUMENT)
 
 
 def test_two_documents_are_refused(base: Path) -> None:
