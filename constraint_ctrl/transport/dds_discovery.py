@@ -65,9 +65,7 @@ def domain_id() -> int:
 
 
 def gid_of(entity: Any, gid_type: type) -> Any:
-    size = len(gid_type().data)
-    raw = entity.guid.bytes
-    return gid_type(data=list(raw) + [0] * (size - len(raw)))
+    return gid_type(data=entity.guid.bytes.ljust(len(gid_type().data), b'\0'))
 
 
 class NodeAnnouncer:

@@ -29,7 +29,7 @@ from constraint_ctrl.errors import TransportError
 
 
 def _zeros(n: int) -> Any:
-    return field(default_factory=lambda: [0] * n)
+    return field(default_factory=lambda: bytes(n))  # uint8 arrays deserialize as bytes
 
 
 def _seq() -> Any:

@@ -34,6 +34,8 @@ _IGNORED_FLAGS = frozenset({
     '--enable-stdout-logs', '--disable-stdout-logs', '--enable-rosout-logs',
     '--disable-rosout-logs', '--enable-external-lib-logs', '--disable-external-lib-logs'})
 _IGNORED_WITH_VALUE = frozenset({'--log-file-name', '--log-config-file'})
+_VALUE_FLAGS = frozenset({'-r', '--remap', '-p', '--param', '--params-file', '-e', '--enclave',
+                          '--log-level'}) | _IGNORED_WITH_VALUE
 _NODE_NAME_RE = re.compile(r'[A-Za-z_][A-Za-z0-9_]*\Z')
 _TOKEN_RE = re.compile(r'[A-Za-z_][A-Za-z0-9_]*\Z')
 
@@ -84,6 +86,11 @@ def parse_ros_args(argv: list[str]) -> RosArgs:
         if arg in _IGNORED_FLAGS:
             i += 1
             continue
+        if arg not in _VALUE_FLAGS:
+            msg = (f'unknown ROS argument {arg!r} after --ros-args; supported: -r/--remap, '
+                   '-p/--param, --params-file, -e/--enclave, --log-level (end the ROS '
+                   "section with '--' to pass your own arguments)")
+            raise TransportError(msg)
         value = _flag_value(argv, i)
         if arg in ('-r', '--remap'):
             _add_remap(args, value)
@@ -97,13 +104,6 @@ def parse_ros_args(argv: list[str]) -> RosArgs:
             args.enclave = value
         elif arg == '--log-level':
             args.log_level = _log_level(value)
-        elif arg in _IGNORED_WITH_VALUE:
-            pass
-        else:
-            msg = (f'unknown ROS argument {arg!r} after --ros-args; supported: -r/--remap, '
-                   '-p/--param, --params-file, -e/--enclave, --log-level (end the ROS '
-                   "section with '--' to pass your own arguments)")
-            raise TransportError(msg)
         i += 2
     return args
 

@@ -1,0 +1,300 @@
+"""The port over rclpy: a thin mapping of port.Port onto rclpy's own API.
+
+Written against rclpy Jazzy; Humble differences are handled where noted. Not runnable in this
+project's CI (no ROS install); every call below is one rclpy documents:
+
+* rclpy.init(args=argv, signal_handler_options=SignalHandlerOptions.NO) - rclpy parses
+  --ros-args itself; its own SIGINT handler is off so that spin() can return while the context
+  is still valid and the node can publish a final command;
+* Node(name, automatically_declare_parameters_from_overrides=True);
+* MultiThreadedExecutor: the timer runs in its own MutuallyExclusiveCallbackGroup, services
+  and the parameter services in the node's default group, subscriptions in a third group and
+  clients in a ReentrantCallbackGroup, so a slow service never delays a tick;
+* QoS: rclpy presets (qos_profile_sensor_data, qos_profile_services_default,
+  qos_profile_parameters) or QoSProfile built from qos.PROFILES;
+* validator -> add_on_set_parameters_callback returning SetParametersResult; listeners ->
+  add_post_set_parameters_callback (Jazzy), or called from the on-set callback after the
+  validator accepted (Humble has no post-set callbacks);
+* timers use a steady clock (Clock(clock_type=ClockType.STEADY_TIME)), as the DDS port's do.
+
+Additions over plain rclpy, kept identical to the DDS port: declare_parameter adopts a value
+that a launch override already declared (rclpy would raise ParameterAlreadyDeclaredException),
+timers count `missed` periods, and client.call takes a timeout and works before spin().
+"""
+from __future__ import annotations
+
+import signal
+import threading
+import time
+from collections.abc import Callable
+from types import SimpleNamespace
+from typing import Any
+
+from constraint_ctrl.errors import TransportError
+from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS
+from constraint_ctrl.transport.qos import profile
+
+
+def _types() -> SimpleNamespace:
+    from builtin_interfaces.msg import Time
+    from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
+    from geometry_msgs.msg import Point, PointStamped, Vector3, Wrench, WrenchStamped
+    from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ListParametersResult,
+                                    Parameter, ParameterDescriptor, ParameterEvent,
+                                    ParameterType, ParameterValue, SetParametersResult)
+    from rcl_interfaces.srv import (DescribeParameters, GetParameters, GetParameterTypes,
+                                    ListParameters, SetParameters, SetParametersAtomically)
+    from sensor_msgs.msg import JointState, Range
+    from std_msgs.msg import (Bool, Float64, Float64MultiArray, Header, MultiArrayDimension,
+                              MultiArrayLayout, String)
+    from std_srvs.srv import SetBool, Trigger
+    return SimpleNamespace(**{cls.__name__: cls for cls in (
+        Time, Header, Float64, String, Bool, MultiArrayDimension, MultiArrayLayout,
+        Float64MultiArray, JointState, Range, Vector3, Point, PointStamped, Wrench,
+        WrenchStamped, KeyValue, DiagnosticStatus, DiagnosticArray, ParameterType,
+        ParameterValue, Parameter, FloatingPointRange, IntegerRange, ParameterDescriptor,
+        SetParametersResult, ListParametersResult, ParameterEvent, Trigger, SetBool,
+        SetParameters, SetParametersAtomically, GetParameters, GetParameterTypes,
+        ListParameters, DescribeParameters)})
+
+
+def _qos(name: str) -> Any:
+    from rclpy.qos import (DurabilityPolicy, HistoryPolicy, QoSProfile, ReliabilityPolicy,
+                           qos_profile_parameters, qos_profile_sensor_data,
+                           qos_profile_services_default)
+    presets = {'sensor': qos_profile_sensor_data, 'services': qos_profile_services_default,
+               'parameters': qos_profile_parameters}
+    p = profile(name)
+    if name in presets:
+        return presets[name]
+    return QoSProfile(
+        history=HistoryPolicy.KEEP_LAST, depth=p.depth,
+        reliability=ReliabilityPolicy.RELIABLE if p.reliable else ReliabilityPolicy.BEST_EFFORT,
+        durability=(DurabilityPolicy.TRANSIENT_LOCAL if p.transient_local
+                    else DurabilityPolicy.VOLATILE))
+
+
+class RclpyTimer:
+    """rclpy Timer plus the DDS port's `missed` count (periods that passed unserved)."""
+
+    def __init__(self, period_s: float, callback: Callable[[], None]) -> None:
+        if not period_s > 0.0:
+            msg = f'timer period must be > 0 s, got {period_s!r}'
+            raise TransportError(msg)
+        self.missed = 0
+        self.timer: Any = None
+        self._callback = callback
+        self._period = round(period_s * 1e9)
+        self._due = time.monotonic_ns() + self._period
+
+    def tick(self) -> None:
+        behind = max(0, (time.monotonic_ns() - self._due) // self._period)
+        self.missed += behind
+        self._due += (behind + 1) * self._period
+        self._callback()
+
+    def cancel(self) -> None:
+        self.timer.cancel()
+
+
+class RclpyClient:
+    def __init__(self, port: RclpyPort, client: Any) -> None:
+        self._port = port
+        self.client = client
+
+    def wait_for_service(self, timeout_s: float) -> bool:
+        return bool(self.client.wait_for_service(timeout_sec=timeout_s))
+
+    def call(self, request: Any, timeout_s: float) -> Any | None:
+        future = self.client.call_async(request)
+        if self._port.spinning:
+            done = threading.Event()
+            future.add_done_callback(lambda _: done.set())
+            done.wait(timeout_s)
+        else:
+            self._port.executor.spin_until_future_complete(future, timeout_sec=timeout_s)
+        if not future.done():
+            self.client.remove_pending_request(future)
+            return None
+        return future.result()
+
+
+class RclpyPort:
+    """See the module docstring; the methods are those of port.Port."""
+
+    def __init__(self, node_name: str, argv: list[str], *, distro: str = 'jazzy') -> None:
+        if distro not in DISTROS:
+            msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTROS)}'
+            raise TransportError(msg)
+        import rclpy
+        from rclpy.callback_groups import MutuallyExclusiveCallbackGroup, ReentrantCallbackGroup
+        from rclpy.executors import MultiThreadedExecutor
+        from rclpy.node import Node
+        from rclpy.signals import SignalHandlerOptions
+        self._rclpy = rclpy
+        self.distro = distro
+        rclpy.init(args=list(argv), signal_handler_options=SignalHandlerOptions.NO)
+        self.node = Node(node_name, automatically_declare_parameters_from_overrides=True)
+        self.node_name = self.node.get_name()
+        self.namespace = self.node.get_namespace()
+        self.types = _types()
+        self.executor = MultiThreadedExecutor(num_threads=4)
+        self.executor.add_node(self.node)
+        self._timer_group = MutuallyExclusiveCallbackGroup()
+        self._topic_group = MutuallyExclusiveCallbackGroup()
+        self._client_group = ReentrantCallbackGroup()
+        self._adoptable = set(self.node.get_parameters_by_prefix(''))
+        self._validator: Callable[[dict[str, Any]], tuple[bool, str]] | None = None
+        self._listeners: list[Callable[[dict[str, Any]], None]] = []
+        self._on_set_added = False
+        self._post_set = hasattr(self.node, 'add_post_set_parameters_callback')  # Jazzy
+        self._stop = threading.Event()
+        self.spinning = False
+        self._closed = False
+
+    # --- plain helpers ---------------------------------------------------------------------
+
+    def diagnostic_level(self, level: int) -> object:
+        return level if isinstance(level, bytes) else bytes([int(level)])
+
+    def now_ns(self) -> int:
+        return int(self.node.get_clock().now().nanoseconds)
+
+    def type_name(self, msg_type: Any) -> str:
+        pkg, kind = msg_type.__module__.split('.')[:2]
+        return f'{pkg}/{kind}/{msg_type.__name__}'
+
+    def serialize(self, msg: Any) -> bytes:
+        from rclpy.serialization import serialize_message
+        return bytes(serialize_message(msg))
+
+    def log(self, level: str, text: str) -> None:
+        if level not in LOG_LEVELS:
+            msg = f'log level {level!r} is unknown; use one of {", ".join(LOG_LEVELS)}'
+            raise TransportError(msg)
+        logger = self.node.get_logger()
+        {'debug': logger.debug, 'info': logger.info, 'warn': logger.warning,
+         'error': logger.error}[level](text)
+
+    # --- entities --------------------------------------------------------------------------
+
+    def create_publisher(self, msg_type: Any, topic: str, qos: str) -> Any:
+        return self.node.create_publisher(msg_type, topic, _qos(qos))
+
+    def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
+                            qos: str) -> Any:
+        return self.node.create_subscription(msg_type, topic, callback, _qos(qos),
+                                             callback_group=self._topic_group)
+
+    def create_service(self, srv_type: Any, name: str,
+                       callback: Callable[[Any, Any], Any]) -> Any:
+        return self.node.create_service(srv_type, name, callback, qos_profile=_qos('services'),
+                                        callback_group=self.node.default_callback_group)
+
+    def destroy_service(self, handle: object) -> None:
+        self.node.destroy_service(handle)
+
+    def create_client(self, srv_type: Any, name: str) -> RclpyClient:
+        client = self.node.create_client(srv_type, name, qos_profile=_qos('services'),
+                                         callback_group=self._client_group)
+        return RclpyClient(self, client)
+
+    def create_timer(self, period_s: float, callback: Callable[[], None]) -> RclpyTimer:
+        from rclpy.clock import Clock, ClockType
+        timer = RclpyTimer(period_s, callback)
+        timer.timer = self.node.create_timer(period_s, timer.tick,
+                                             callback_group=self._timer_group,
+                                             clock=Clock(clock_type=ClockType.STEADY_TIME))
+        return timer
+
+    # --- parameters ------------------------------------------------------------------------
+
+    def declare_parameter(self, name: str, value: Any, description: str = '',
+                          read_only: bool = False) -> Any:
+        from rcl_interfaces.msg import ParameterDescriptor
+        if isinstance(value, (list, tuple)) and not value:
+            msg = (f'parameter {name!r}: an empty list default has no element type; give a '
+                   'non-empty default')
+            raise TransportError(msg)
+        if name not in self._adoptable:
+            descriptor = ParameterDescriptor(description=description, read_only=read_only)
+            return self.node.declare_parameter(name, value, descriptor)
+        self._adoptable.discard(name)
+        current = self.node.get_parameter(name)
+        if self._validator is not None:
+            ok, reason = self._validator({name: current.value})
+            if not ok:
+                msg = f'parameter {name!r} = {current.value!r} rejected: {reason}'
+                raise TransportError(msg)
+        self.node.set_descriptor(name, ParameterDescriptor(
+            type=current.type_.value, description=description, read_only=read_only))
+        return self.node.get_parameter(name)
+
+    def get_parameter(self, name: str) -> Any:
+        if not self.node.has_parameter(name):
+            msg = f'parameter {name!r} is not declared'
+            raise TransportError(msg)
+        return self.node.get_parameter(name)
+
+    def get_parameters_by_prefix(self, prefix: str) -> dict[str, Any]:
+        return dict(self.node.get_parameters_by_prefix(prefix))
+
+    def _on_set(self, params: list[Any]) -> Any:
+        from rcl_interfaces.msg import SetParametersResult
+        values = {p.name: p.value for p in params}
+        ok, reason = (True, '') if self._validator is None else self._validator(values)
+        if ok and not self._post_set:
+            for listener in self._listeners:
+                listener(values)
+        return SetParametersResult(successful=bool(ok), reason='' if ok else reason)
+
+    def _post_set_callback(self, params: list[Any]) -> None:
+        values = {p.name: p.value for p in params}
+        for listener in self._listeners:
+            listener(values)
+
+    def _ensure_on_set(self) -> None:
+        if not self._on_set_added:
+            self.node.add_on_set_parameters_callback(self._on_set)
+            self._on_set_added = True
+
+    def set_parameter_validator(self, callback: Any) -> None:
+        self._validator = callback
+        self._ensure_on_set()
+
+    def add_parameter_listener(self, callback: Any) -> None:
+        if not self._listeners:
+            if self._post_set:
+                self.node.add_post_set_parameters_callback(self._post_set_callback)
+            else:
+                self._ensure_on_set()
+        self._listeners.append(callback)
+
+    # --- running ---------------------------------------------------------------------------
+
+    def spin(self) -> None:
+        from rclpy.executors import ExternalShutdownException
+        previous = {}
+        if threading.current_thread() is threading.main_thread():
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                previous[sig] = signal.signal(sig, lambda *_: self._stop.set())
+        self.spinning = True
+        try:
+            while not self._stop.is_set() and self._rclpy.ok():
+                self.executor.spin_once(timeout_sec=0.1)
+        except ExternalShutdownException:
+            pass
+        finally:
+            self.spinning = False
+            for sig, handler in previous.items():
+                signal.signal(sig, handler)
+
+    def shutdown(self) -> None:
+        """From a callback: end spin(). Otherwise: also destroy the node and rclpy's context."""
+        self._stop.set()
+        if self.spinning or self._closed:
+            return
+        self._closed = True
+        self.executor.shutdown()
+        self.node.destroy_node()
+        self._rclpy.try_shutdown()
