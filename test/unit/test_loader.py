@@ -237,7 +237,7 @@ def test_load_skill_resolves_robot_against_the_file_folder(base: Path,
 
 
 def test_anchors_aliases_and_merge_keys_are_accepted(base: Path) -> None:
-    """YAML 1.1 anchors/aliases and the << merge key (yaml.org/type/merge.html), explicit wins."""
+    """YAML 1.1 anchors/aliases and the << merge key (yaml.org/type/merge.html, from memory)."""
     text = HEADER + textwrap.dedent("""\
         inputs:
           left: &sensor {unit: m, rate_hz: 20}
@@ -254,7 +254,7 @@ def test_anchors_aliases_and_merge_keys_are_accepted(base: Path) -> None:
 
 
 def test_yaml_11_booleans_are_booleans(base: Path) -> None:
-    """YAML 1.1 bool type (yaml.org/type/bool.html) reads yes/on as true, as PyYAML does."""
+    """YAML 1.1 bool type (yaml.org/type/bool.html, from memory): on is true, as in PyYAML."""
     text = HEADER + 'constraints:\n  - {name: c, expression: x, target: 0, hard: on}\n'
     assert load(text, base).constraints[0].hard is yaml.safe_load('on')
 
@@ -275,9 +275,10 @@ def test_locations_cover_every_constraint_field(base: Path) -> None:
                 for inner in value:
                     assert spec.locations[f'{path}.{inner}'] == line  # flow mapping, same line
         search_from = spec.locations[f'constraints[{index}]']
-    assert spec.line_of('constraints[0].behaviour.gain') == marked_line(
-        FULL.replace('behaviour: {order: 1, gain: follow_gain}',
-                     f'behaviour: {{order: 1, gain: follow_gain}} {MARK}'))
+    behaviour_line = lines.index('    behaviour: {order: 1, gain: follow_gain}') + 1
+    assert spec.line_of('constraints[0].behaviour.gain') == behaviour_line
+    # A default that is not written falls back to its parent's line (SkillSpec.line_of).
+    assert spec.line_of('constraints[0].behaviour.damping_ratio') == behaviour_line
 
 
 # -- errors ----------------------------------------------------------------------------------------
@@ -327,7 +328,7 @@ CASES = {
         tunables:
           k: {lower: 0}  # <-
         """, 'tunables.k.value', "missing required key 'value'"),
-    # "bool is not a number": a YAML 1.1 boolean (yaml.org/type/bool.html) is refused as a number.
+    # A YAML 1.1 boolean (yaml.org/type/bool.html, from memory) is not accepted as a number.
     'bool_as_number': case("""\
         inputs:
           a: {rate_hz: true}  # <-
@@ -480,7 +481,7 @@ CASES = {
         regularisation:
           joint_weights: {joint_1: 0}  # <-
         """, 'regularisation.joint_weights.joint_1', 'expected a number > 0, got 0.0'),
-    # Identifiers: Python Language Reference 2.3 (ASCII subset), keywords from keyword.kwlist.
+    # Identifiers: Python Language Reference 2.3 (ASCII subset, from memory); keyword.kwlist.
     'skill_name_not_identifier': case("""\
         skill: follow-flange  # <-
         """, 'skill', "expected a name .*, got 'follow-flange'", header='robot: arm.urdf\n'),
@@ -625,7 +626,7 @@ CASES = {
           inputs: {range_lft: 0.1}  # <-
         """, 'offline.inputs.range_lft', "'range_lft' is not a declared input; did you mean "
                                          "'range_left'"),
-    # Only the YAML core types are constructed (PyYAML docs: safe_load "recognizes only
+    # Only the YAML core types are constructed (PyYAML docs, from memory: safe_load "recognizes only
     # standard YAML tags"); python/* tags must never reach a constructor.
     'python_tag': case("""\
         description: !!python/object/apply:os.system ['true']  # <-
@@ -725,6 +726,7 @@ def test_two_documents_are_refused(base: Path) -> None:
 
 def test_unreadable_and_undecodable_files(base: Path) -> None:
     """A missing file and bytes that are not UTF-8 (RFC 3629) are SkillErrors naming the file."""
+    # RFC 3629 (from memory): 0xE9 followed by a newline is not a valid UTF-8 sequence.
     missing = base / 'missing.yaml'
     with pytest.raises(SkillError, match='cannot read skill file') as caught:
         load_skill(missing)

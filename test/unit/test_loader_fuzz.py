@@ -338,8 +338,8 @@ KEY_LINE = re.compile(r'^(\s*(?:- )?[A-Za-z_]\w*:)( .*)?$')
 def test_yaml_tags_are_refused(line: int, tag: str, folder: Path) -> None:
     """A tag other than the core types on any field is a SkillError at that line.
 
-    PyYAML's SafeLoader refuses these tags too (PyYAML docs: safe_load "recognizes only standard
-    YAML tags"); the loader never constructs them.
+    PyYAML's SafeLoader refuses the unsafe ones too (PyYAML docs, from memory: safe_load
+    "recognizes only standard YAML tags"); the loader constructs none of them.
     """
     lines = VALID.splitlines()
     lines[line] = KEY_LINE.sub(lambda m: f'{m.group(1)} {tag}{m.group(2) or ""}', lines[line])
