@@ -89,8 +89,9 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
         if not np.isfinite(out['value'][i]) or not np.isfinite(out['J'][i]).all():
             report.errors.append(f'row {row.name}: not finite at the start pose '
                                  '(e.g. normalising a zero vector)')
-    _check_singular(skill, out['J'], report)
     diag = solver.diagnostics()
+    if result.ok:
+        _check_singular(skill, solver, q, s, u, report)
     for i, row in enumerate(skill.rows):
         if row.kind != 'equal' and abs(diag.error[i]) > 1e-9:
             report.warnings.append(f'row {row.name} ({row.kind}) is already violated at the '
@@ -132,34 +133,47 @@ def _check_limits(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
             report.errors.append(f'tunable default: {problem}')
 
 
-def _check_singular(skill: CompiledSkill, J: np.ndarray, report: CheckReport) -> None:
-    for con in skill.spec.constraints:
-        idx = [i for i, r in enumerate(skill.rows) if r.constraint == con.name]
-        block = J[idx]
-        norms = np.linalg.norm(block, axis=1)
-        for i, norm in zip(idx, norms):
-            if norm < ZERO_ROW and con.kind == 'equal':
-                report.notes.append(f'row {skill.rows[i].name} has a zero Jacobian at the start '
-                                    '(no motion changes it there)')
-        live = block[norms >= ZERO_ROW]
-        if live.shape[0] >= 2:
-            sv = np.linalg.svd(live, compute_uv=False)
-            rank_sv = sv[:min(live.shape)]
-            if rank_sv[-1] < SINGULAR_RATIO * rank_sv[0]:
-                report.warnings.append(
-                    f'constraint {con.name}: Jacobian is near-singular at the start (singular '
-                    f'values {np.array2string(rank_sv, precision=3)})')
-    eq = [i for i, r in enumerate(skill.rows) if r.kind == 'equal' and not r.hard]
-    if eq:
-        block = J[eq][:, :skill.n_q]
-        block = block[np.linalg.norm(block, axis=1) >= ZERO_ROW]
-        k = min(block.shape)
-        if k >= 2:
-            sv = np.linalg.svd(block, compute_uv=False)[:k]
-            if sv[-1] < SINGULAR_RATIO * sv[0] and block.shape[0] <= skill.n_q:
-                report.warnings.append('the soft equality rows together are near-singular '
-                                       f'in the joints (singular values '
-                                       f'{np.array2string(sv, precision=3)})')
+def _rank(block: np.ndarray) -> int:
+    if block.size == 0:
+        return 0
+    sv = np.linalg.svd(block, compute_uv=False)
+    return int((sv > SINGULAR_RATIO * max(sv[0], ZERO_ROW)).sum())
+
+
+def _check_singular(skill: CompiledSkill, solver: SkillSolver, q: np.ndarray, s: np.ndarray,
+                    u: np.ndarray, report: CheckReport) -> None:
+    """Warn where a Jacobian loses rank at the start compared with poses around it.
+
+    A row set can lack full rank by design (a cross product has rank 2; a free rotation about
+    the tool axis is no row's business); only a rank *drop* at the start pose, relative to the
+    generic rank seen at nearby poses, marks a singular configuration.
+    """
+    J_start = solver.outputs['J'][:, :skill.n_q].copy()
+    groups = {con.name: [i for i, r in enumerate(skill.rows) if r.constraint == con.name]
+              for con in skill.spec.constraints}
+    groups['all soft equality rows'] = [i for i, r in enumerate(skill.rows)
+                                        if r.kind == 'equal' and not r.hard]
+    generic = dict.fromkeys(groups, 0)
+    rng = np.random.default_rng(0)
+    for _ in range(8):
+        q_near = q + rng.uniform(-0.2, 0.2, q.size)
+        if not solver.solve(q_near, s, u, 0.0, 0.002, np.zeros(skill.n_x)).ok:
+            continue
+        J = solver.outputs['J'][:, :skill.n_q]
+        for name, idx in groups.items():
+            generic[name] = max(generic[name], _rank(J[idx]))
+    for name, idx in groups.items():
+        at_start = _rank(J_start[idx])
+        if at_start < generic[name]:
+            sv = np.linalg.svd(J_start[idx], compute_uv=False)
+            report.warnings.append(
+                f'{name}: Jacobian loses rank at the start pose ({at_start} < {generic[name]} '
+                f'nearby; singular values {np.array2string(sv, precision=3)}): a singular '
+                'configuration')
+    for i, row in enumerate(skill.rows):
+        if np.linalg.norm(J_start[i]) < ZERO_ROW and row.kind == 'equal':
+            report.notes.append(f'row {row.name} has a zero Jacobian at the start '
+                                '(no motion changes it there)')
 
 
 def _conflicting_hard_rows(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
