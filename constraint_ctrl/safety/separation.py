@@ -115,26 +115,34 @@ class SeparationMonitor:
 
     ``measure`` does the geometry (depends on q and the people only); ``scale`` then turns a
     candidate command's point velocities into the uniform factor. Splitting them lets the
-    watchdog decide stops and zones before it has shaped the command.
+    watchdog decide stops and zones before it has shaped the command. Permitted speeds are
+    computed lazily, once per ``measure``, because a stopped robot never needs them.
     """
 
     def __init__(self, params: SeparationParams, radii: np.ndarray, *,
                  resume_speed: float, clear_margin: float) -> None:
         self.params = params
         self.radii = np.asarray(radii, dtype=float).reshape(-1, 1)
-        self._quad = _Quadratic.of(params)
-        self.standstill = self._quad.c0
+        quad = _Quadratic.of(params)
+        self.standstill = quad.c0
+        # vmax = 2 d / (b + sqrt(b^2 + 4 A d)) = d / (b/2 + sqrt(b^2/4 + A d)), d = S - c0
+        self._a2 = quad.a2
+        self._half_b = 0.5 * quad.b
+        self._quarter_b2 = 0.25 * quad.b * quad.b
         # A pair is clear (may count towards resuming) once its permitted speed reaches
         # resume_speed or its separation exceeds S_p(0) by clear_margin, whichever comes first.
         self.clear_distance = min(protective_distance(resume_speed, params),
-                                  self._quad.c0 + clear_margin)
+                                  quad.c0 + clear_margin)
         self.n_people = 0
         self.min_separation = math.inf
         self.closest_point = -1
         self.closest_person = -1
-        self._unit: np.ndarray = np.empty((0, 0, 3))
-        self._vmax: np.ndarray = np.empty((0, 0))
-        self._speed: np.ndarray = np.empty((0, 0))
+        self._diff: np.ndarray = np.empty((0, 0, 3))
+        self._dist: np.ndarray = np.empty((0, 0))
+        self._sep: np.ndarray = np.empty((0, 0))
+        self._vmax: np.ndarray | None = None
+        self._denom: np.ndarray | None = None
+        self._load: np.ndarray | None = None
 
     @property
     def too_close(self) -> bool:
@@ -147,7 +155,7 @@ class SeparationMonitor:
         return self.min_separation >= self.clear_distance
 
     def measure(self, points: np.ndarray, people: np.ndarray) -> None:
-        """Compute separations, unit vectors and permitted speeds.
+        """Compute separations and distances of every point-person pair.
 
         Args:
             points: monitored point positions in the base frame, shape (k, 3), m.
@@ -155,52 +163,73 @@ class SeparationMonitor:
         """
         m = people.shape[0]
         self.n_people = m
+        self._vmax = self._denom = self._load = None
         if m == 0:
             self.min_separation = math.inf
             self.closest_point = self.closest_person = -1
             return
-        diff = people[np.newaxis, :, :] - points[:, np.newaxis, :]          # (k, m, 3)
-        dist = np.sqrt(np.einsum('kmi,kmi->km', diff, diff))
+        diff = people - points[:, np.newaxis, :]                           # (k, m, 3)
+        dist = np.add.reduce(diff * diff, axis=2)
+        np.sqrt(dist, out=dist)
         sep = dist - self.radii
-        # A person exactly on a point has no direction; the pair is far inside S_p(0) anyway.
-        np.maximum(dist, 1e-12, out=dist)
-        self._unit = diff / dist[:, :, np.newaxis]
         flat = int(sep.argmin())
         self.closest_point, self.closest_person = divmod(flat, m)
         self.min_separation = float(sep.flat[flat])
-        q = self._quad
-        d = np.maximum(sep - q.c0, 0.0)
-        self._vmax = 2.0 * d / (q.b + np.sqrt(q.b * q.b + 4.0 * q.a2 * d))
+        self._diff, self._dist, self._sep = diff, dist, sep
+
+    def permitted_speeds(self) -> np.ndarray:
+        """vmax_ij from the last ``measure``, shape (k, m), m/s (0 at or inside S_p(0))."""
+        if self._vmax is None:
+            d = self._sep - self.standstill
+            np.maximum(d, 0.0, out=d)
+            root = d * self._a2
+            root += self._quarter_b2
+            np.sqrt(root, out=root)
+            root += self._half_b
+            self._vmax = d / root
+        return self._vmax
 
     def directed_speeds(self, velocities: np.ndarray) -> np.ndarray:
         """Speed of each point towards each person, u_ij . v_i, clipped at 0; shape (k, m)."""
-        speed = np.einsum('kmi,ki->km', self._unit, velocities)
+        speed = np.matmul(self._diff, velocities[:, :, np.newaxis])[:, :, 0]
+        speed /= np.maximum(self._dist, 1e-300)
         np.maximum(speed, 0.0, out=speed)
         return speed
 
-    def permitted_speeds(self) -> np.ndarray:
-        """vmax_ij from the last ``measure``, shape (k, m), m/s."""
-        return self._vmax
-
     def scale(self, velocities: np.ndarray) -> float:
         """Uniform factor in [0, 1] for a command whose point velocities are ``velocities``.
+
+        The factor is 1 / max(1, max_ij speed_ij / vmax_ij), i.e. min(1, min_ij vmax_ij /
+        speed_ij) over approaching pairs; pairs moving sideways or away do not limit it.
 
         Args:
             velocities: v_i = J_i qdot of each monitored point, shape (k, 3), m/s.
         """
         if self.n_people == 0:
-            self._speed = np.zeros((velocities.shape[0], 0))
             return 1.0
-        speed = self.directed_speeds(velocities)
-        self._speed = speed
-        moving = speed > 0.0
-        if not moving.any():
-            return 1.0
-        factor = float((self._vmax[moving] / speed[moving]).min())
-        return min(1.0, factor)
+        if self.too_close:   # some vmax is 0: any approach at all must stop
+            return 0.0 if self.directed_speeds(velocities).any() else 1.0
+        if self._denom is None:
+            self._denom = self._dist * self.permitted_speeds()    # > 0 when not too close
+        # speed_ij / vmax_ij = (h_j - p_i) . v_i / (|h_j - p_i| vmax_ij)
+        load = np.matmul(self._diff, velocities[:, :, np.newaxis])[:, :, 0]
+        load /= self._denom
+        self._load = load
+        worst = float(load.flat[load.argmax()])
+        return 1.0 if worst <= 1.0 else 1.0 / worst
 
-    def closest_pair_speed(self) -> float:
-        """Directed speed of the closest pair in the last ``scale`` call (before scaling)."""
-        if self.n_people == 0 or self._speed.size == 0:
+    def closest_pair_speed(self, velocities: np.ndarray) -> float:
+        """Directed speed of the closest pair for point velocities ``velocities`` (m/s)."""
+        if self.n_people == 0:
             return 0.0
-        return float(self._speed[self.closest_point, self.closest_person])
+        i, j = self.closest_point, self.closest_person
+        dist = float(self._dist[i, j])
+        if dist == 0.0:
+            return 0.0
+        return max(0.0, float(self._diff[i, j] @ velocities[i]) / dist)
+
+    def closest_pair_load(self) -> float:
+        """speed / vmax of the closest pair in the last ``scale`` call (before its factor)."""
+        if self._load is None:
+            return 0.0
+        return max(0.0, float(self._load[self.closest_point, self.closest_person]))

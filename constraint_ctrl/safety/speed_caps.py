@@ -7,8 +7,9 @@ Order of the stages in one watchdog tick (each stage sees the previous stage's o
 2. position limits: a joint at or over a limit may only move back inward, and no joint may
    cross a limit within one tick;
 3. acceleration limits: per joint, relative to the previous published command (skipped for an
-   immediate zero and for the stop ramp, which is its own deceleration profile); the position
-   rule is re-applied afterwards so the rate limit cannot push a joint outward;
+   immediate zero and for the stop ramp, which is its own deceleration profile). The position
+   rule overrides the rate limit: clamping to the position bounds both before and after the
+   rate limit gives the same result as clamping only after it, so the watchdog does the latter;
 4. joint speed scaling: one factor for all joints so that |qdot_i| <= velocity limit;
 5. reduced speed: one factor so that every monitored point moves at or below the reduced speed;
 6. separation scaling (separation.py): one factor so that no point approaches any person faster
@@ -26,41 +27,74 @@ import math
 import numpy as np
 
 
-def limit_positions(qdot: np.ndarray, q: np.ndarray, lower: np.ndarray, upper: np.ndarray,
-                    dt: float, out: np.ndarray) -> np.ndarray:
-    """Clip each joint so that q + qdot dt stays inside [lower, upper].
+def position_rate_bounds(q: np.ndarray, lower_rate: np.ndarray, upper_rate: np.ndarray,
+                         inv_dt: float, lo: np.ndarray, hi: np.ndarray,
+                         work: np.ndarray | None = None) -> None:
+    """Bounds on qdot that keep q + qdot dt inside [lower, upper], written into ``lo``, ``hi``.
 
     A joint already at or beyond a limit gets the bound 0 on that side (it may stay or move
-    back inward, never further out). Writes into and returns ``out``.
+    back inward, never further out).
+
+    Args:
+        q: joint positions (n,).
+        lower_rate, upper_rate: lower / dt and upper / dt, precomputed (-inf/+inf allowed).
+        inv_dt: 1 / tick period.
+        lo, hi: output arrays (n,).
+        work: optional scratch array (n,).
     """
-    inv_dt = 1.0 / dt
-    hi = np.subtract(upper, q)
-    hi *= inv_dt
+    q_rate = np.multiply(q, inv_dt, out=work)
+    np.subtract(upper_rate, q_rate, out=hi)
     np.maximum(hi, 0.0, out=hi)
-    lo = np.subtract(lower, q)
-    lo *= inv_dt
+    np.subtract(lower_rate, q_rate, out=lo)
     np.minimum(lo, 0.0, out=lo)
+
+
+def limit_positions(qdot: np.ndarray, q: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                    dt: float, out: np.ndarray) -> np.ndarray:
+    """Clip each joint so that q + qdot dt stays inside [lower, upper] (``position_rate_bounds``).
+
+    Writes into and returns ``out``.
+    """
+    lo, hi = np.empty_like(q), np.empty_like(q)
+    position_rate_bounds(q, lower / dt, upper / dt, 1.0 / dt, lo, hi)
     np.maximum(qdot, lo, out=out)
     np.minimum(out, hi, out=out)
     return out
 
 
 def limit_acceleration(qdot: np.ndarray, previous: np.ndarray, max_step: np.ndarray,
-                       out: np.ndarray) -> np.ndarray:
+                       out: np.ndarray, work_hi: np.ndarray | None = None,
+                       work_lo: np.ndarray | None = None) -> np.ndarray:
     """Rate-limit each joint to previous +- max_step (max_step = acceleration limit * dt).
 
     Per joint, so a large change of direction is spread over several ticks. Writes into and
-    returns ``out`` (which may be ``qdot`` itself).
+    returns ``out`` (which may be ``qdot`` itself); ``work_hi``/``work_lo`` are optional
+    scratch arrays that avoid allocations.
     """
-    np.minimum(qdot, previous + max_step, out=out)
-    np.maximum(out, previous - max_step, out=out)
+    hi = np.add(previous, max_step, out=work_hi)
+    lo = np.subtract(previous, max_step, out=work_lo)
+    np.minimum(qdot, hi, out=out)
+    np.maximum(out, lo, out=out)
     return out
 
 
-def joint_speed_scale(qdot: np.ndarray, velocity_limits: np.ndarray) -> float:
-    """Largest factor in [0, 1] that brings every |qdot_i| to at most its velocity limit."""
-    ratio = float(np.max(np.abs(qdot) / velocity_limits))
-    return 1.0 if ratio <= 1.0 else 1.0 / ratio
+def apply_joint_speed_limits(qdot: np.ndarray, inv_velocity_limits: np.ndarray,
+                      work: np.ndarray | None = None) -> float:
+    """Scale ``qdot`` in place by the largest factor in [0, 1] that keeps every |qdot_i| at or
+    under its velocity limit; return the factor.
+
+    Args:
+        qdot: joint velocity command (n,), modified in place.
+        inv_velocity_limits: 1 / velocity limit per joint (precomputed once).
+        work: optional scratch array of shape (n,) to avoid an allocation.
+    """
+    ratio = np.abs(qdot, out=work)
+    ratio *= inv_velocity_limits
+    top = float(ratio[ratio.argmax()])      # argmax + index: cheaper than max() on tiny arrays
+    if top <= 1.0:
+        return 1.0
+    qdot *= 1.0 / top
+    return 1.0 / top
 
 
 def point_speed_scale(velocities: np.ndarray, max_speed: float) -> float:
@@ -70,7 +104,8 @@ def point_speed_scale(velocities: np.ndarray, max_speed: float) -> float:
         velocities: linear velocities of the monitored points, shape (k, 3), m/s.
         max_speed: cap on the speed magnitude of each point, m/s.
     """
-    top = math.sqrt(float(np.max(np.einsum('ki,ki->k', velocities, velocities))))
+    sq = np.einsum('ki,ki->k', velocities, velocities)
+    top = math.sqrt(float(sq[sq.argmax()]))
     return 1.0 if top <= max_speed else max_speed / top
 
 

@@ -128,7 +128,7 @@ def test_scale_uses_directed_speed_only() -> None:
 
 
 def test_scale_takes_the_tightest_pair() -> None:
-    """Two points, two people: the factor is the smallest vmax_ij / speed_ij over approaching pairs."""
+    """Two points, two people: factor = smallest vmax_ij / speed_ij over approaching pairs."""
     mon = SeparationMonitor(PARAMS, np.array([0.0, 0.05]), resume_speed=0.05, clear_margin=0.05)
     points = np.array([[0.0, 0.0, 0.0], [0.0, 1.0, 0.0]])
     people = np.array([[1.5, 0.0, 0.0], [0.0, 1.9, 0.0]])

@@ -17,7 +17,8 @@ import pytest
 
 from constraint_ctrl.model.kinematics import RobotModel
 from constraint_ctrl.safety.speed_caps import (
-    joint_speed_scale, limit_acceleration, limit_positions, point_speed_scale, stop_ramp_factor)
+    apply_joint_speed_limits, limit_acceleration, limit_positions, point_speed_scale,
+    stop_ramp_factor)
 from constraint_ctrl.safety.watchdog import (
     MonitoredPoint, Watchdog, WatchdogConfig, WatchdogInput)
 
@@ -76,10 +77,12 @@ def test_reduced_speed_at_points_of_example_arm_checked_with_pinocchio() -> None
 def test_joint_speed_scale_keeps_direction() -> None:
     """(4, 1, -2) rad/s against 2 rad/s limits (URDF velocity) becomes (2, 0.5, -1): hand values."""
     qdot = np.array([4.0, 1.0, -2.0])
-    scale = joint_speed_scale(qdot, np.array([2.0, 2.0, 2.0]))
+    scale = apply_joint_speed_limits(qdot, 1.0 / np.array([2.0, 2.0, 2.0]))
     assert scale == 0.5
-    assert np.array_equal(qdot * scale, [2.0, 0.5, -1.0])
-    assert joint_speed_scale(np.array([0.5, -0.1, 0.0]), np.array([2.0, 2.0, 2.0])) == 1.0
+    assert np.array_equal(qdot, [2.0, 0.5, -1.0])
+    slow = np.array([0.5, -0.1, 0.0])
+    assert apply_joint_speed_limits(slow, 1.0 / np.array([2.0, 2.0, 2.0]), np.empty(3)) == 1.0
+    assert np.array_equal(slow, [0.5, -0.1, 0.0])
 
 
 def test_joint_speed_limits_of_example_arm_in_watchdog() -> None:
@@ -131,7 +134,7 @@ def test_position_limits_only_inward_at_or_over_a_limit() -> None:
 
 
 def test_position_limits_do_not_cross_within_one_tick() -> None:
-    """1 mm below the limit at dt = 10 ms allows at most 0.1 rad/s outward (q + qdot dt <= upper)."""
+    """1 mm below the limit at dt = 10 ms: at most 0.1 rad/s outward (q + qdot dt <= upper)."""
     q = np.array([0.999])
     out = limit_positions(np.array([1.0]), q, np.array([-1.0]), np.array([1.0]), 0.01, np.empty(1))
     assert out[0] == pytest.approx(0.1, rel=1e-9)

@@ -151,7 +151,7 @@ def test_stamp_from_the_future_is_stale() -> None:
 
 
 def test_stale_person_source_is_a_stop_as_if_the_person_were_anywhere() -> None:
-    """safety-facts.md 0 and 6 (common practice): stale sensor data = person at the worst position."""
+    """safety-facts.md 0 and 6 (common practice): stale data = a person at the worst position."""
     cell = Cell()
     cell.person = np.array([2.5, 0.0, 0.0])
     cell.run(0.3, (0.3, 0.0, 0.0))
@@ -361,7 +361,8 @@ def test_buffered_casadi_points_match_direct_evaluation() -> None:
 
 def test_config_errors_name_the_field_and_value() -> None:
     """Bad settings fail at construction with the field, index and value."""
-    with pytest.raises(ConstraintCtrlError, match=r'acceleration_limits\[1\]: expected a number > 0, got 0\.0$'):
+    with pytest.raises(ConstraintCtrlError,
+                       match=r'acceleration_limits\[1\]: expected a number > 0, got 0\.0$'):
         make_config(acceleration_limits=[1.0, 0.0, 1.0])
     with pytest.raises(ConstraintCtrlError, match=r'lower: expected 3 values'):
         make_config(lower=[0.0, 0.0])
