@@ -2,7 +2,7 @@
 
 The example arm moves along a smooth joint trajectory while people walk around it between about
 0.6 and 2.5 m away, so the reduced zone and the separation scaling are active in most ticks (the
-expensive path), with occasional protective stops. Only ``step`` is timed; building the
+expensive path), with occasional stops for a person too close. Only ``step`` is timed; building the
 inputs is the runtime's cost. Target (not asserted anywhere): median <= 30 us.
 """
 from __future__ import annotations

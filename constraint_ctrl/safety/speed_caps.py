@@ -118,5 +118,5 @@ def stop_ramp_factor(elapsed: float, stopping_time: float) -> float:
     """
     if stopping_time <= 0.0:
         return 0.0
-    factor = 1.0 - elapsed / stopping_time
+    factor = 1.0 - max(0.0, elapsed) / stopping_time      # a clock running back never adds speed
     return factor if factor > 1e-9 else 0.0

@@ -325,6 +325,8 @@ class Watchdog:
         self._stop_reason: str | None = None
         self._stop_t0: float | None = None
         self._stop_c0 = np.zeros(n)
+        self._stop_elapsed = 0.0
+        self._last_now = -math.inf
         self._started = False
         self._state = State.STOPPED
         self._reason = 'not started: no tick yet'
@@ -436,8 +438,12 @@ class Watchdog:
                 if self._stop_t0 is None:
                     self._stop_t0 = now
                     self._stop_c0[:] = self._prev
-                factor = stop_ramp_factor(now - self._stop_t0 + self.dt,
-                                          self.config.stopping_time)
+                    self._stop_elapsed = self.dt
+                else:
+                    # At least one tick period per tick, more if ticks come late: the ramp
+                    # ends in time even if the clock stalls or jumps back.
+                    self._stop_elapsed += max(self.dt, now - self._last_now)
+                factor = stop_ramp_factor(self._stop_elapsed, self.config.stopping_time)
                 np.multiply(self._stop_c0, factor, out=out)
                 ramp_speed = float(np.abs(self._stop_c0).max()) * factor
                 state = _STOPPING if factor > 0.0 and ramp_speed > 0.0 else _STOPPED
@@ -458,6 +464,7 @@ class Watchdog:
             self._state = state
             self._reason = reason
         self._started = True
+        self._last_now = now
         return WatchdogOutput(out.copy(), state, self._reason, speed_scale,
                               monitor.min_separation, pd, transitions)
 

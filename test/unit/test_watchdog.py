@@ -78,7 +78,11 @@ class Cell:
 
 
 def test_first_healthy_tick_enters_normal_with_a_transition() -> None:
-    """Starts stopped; the first tick with valid inputs moves to normal and records why."""
+    """Starts stopped; the first tick with valid inputs moves to normal and records why.
+
+    Source: project behaviour (start from zero command); 0.02 m/s is far below every limit, so
+    the command must pass bit for bit.
+    """
     cell = Cell()
     assert cell.watchdog.state is State.STOPPED
     out = cell.tick((0.02, 0.0, 0.0))
@@ -90,7 +94,8 @@ def test_first_healthy_tick_enters_normal_with_a_transition() -> None:
 
 
 def test_nothing_received_yet_is_a_stop() -> None:
-    """No joint_states at all: stopped with zero from the first tick."""
+    """No joint_states at all: stopped with zero from the first tick (common practice, safety-facts
+    section 0: missing data means stop)."""
     cell = Cell()
     out = cell.tick((0.5, 0.0, 0.0), q=None, joint_state_stamp=None)
     assert out.state is State.STOPPED and not out.command.any()
@@ -121,7 +126,11 @@ def _running_cell() -> Cell:
 ])
 def test_each_fault_gives_zero_in_the_same_tick(overrides: dict, kind: FaultKind,
                                                 text: str) -> None:
-    """Stale / NaN / failed inputs: zero command and state stopped within the faulty tick."""
+    """Stale / NaN / failed inputs: zero command and state stopped within the faulty tick.
+
+    Source: safety-facts.md section 6 fault-injection list (delayed messages, NaN/inf) and
+    section 0 (stale or implausible data means stop); both common practice.
+    """
     cell = _running_cell()
     out = cell.tick((0.4, 0.0, 0.0), **overrides)
     assert not out.command.any()
@@ -135,7 +144,11 @@ def test_each_fault_gives_zero_in_the_same_tick(overrides: dict, kind: FaultKind
 
 
 def test_stale_joint_states_reports_age_and_timeout() -> None:
-    """The transition carries the measured age (s) and the timeout that it exceeded."""
+    """The transition carries the measured age (s) and the timeout that it exceeded.
+
+    80 ms against 50 ms: 2-3 missed cycles at 125 Hz is about 24 ms (safety-facts.md 6, common
+    practice), so 50 ms is already lenient.
+    """
     cell = _running_cell()
     out = cell.tick((0.4, 0.0, 0.0), joint_state_stamp=cell.now - 0.08)
     (transition,) = out.transitions
@@ -164,7 +177,8 @@ def test_stale_person_source_is_a_stop_as_if_the_person_were_anywhere() -> None:
 
 
 def test_person_source_that_never_sent_is_a_stop() -> None:
-    """A configured source with no sample at all is just as stale as an old one."""
+    """A configured source with no sample at all is just as stale as an old one (common practice,
+    safety-facts.md 0)."""
     cell = _running_cell()
     out = cell.tick((0.3, 0.0, 0.0), person_sources=('scanner',))
     assert out.state is State.STOPPED and not out.command.any()
@@ -172,7 +186,8 @@ def test_person_source_that_never_sent_is_a_stop() -> None:
 
 
 def test_per_source_person_timeout() -> None:
-    """A slow camera may get its own timeout; 0.25 s old data is then still fresh."""
+    """A slow camera may get its own timeout; 0.25 s old data is then still fresh (timeouts per
+    sensor: about 2 frame periods plus processing, safety-facts.md 6, common practice)."""
     cell = Cell(make_config(person_timeouts={'scanner': 0.3}))
     cell.person = np.array([2.5, 0.0, 0.0])
     cell.run(0.1)
@@ -182,7 +197,8 @@ def test_per_source_person_timeout() -> None:
 
 
 def test_nan_person_position_is_a_stop() -> None:
-    """An implausible (NaN) person position counts as a fault, naming the source."""
+    """An implausible (NaN) person position counts as a fault, naming the source (common practice,
+    safety-facts.md 0 and 6)."""
     cell = _running_cell()
     cell.person = np.array([math.nan, 0.0, 0.0])
     out = cell.tick((0.4, 0.0, 0.0))
@@ -190,7 +206,11 @@ def test_nan_person_position_is_a_stop() -> None:
 
 
 def test_recovery_needs_fresh_data_held_for_resume_after_then_ramps_up() -> None:
-    """Stale joint_states: stopped until fresh data held 0.5 s, then up at a = 5 m/s^2."""
+    """Stale joint_states: stopped until fresh data held 0.5 s, then up at a = 5 m/s^2.
+
+    Settle period of fresh valid data before motion resumes: safety-facts.md 6 (0.5-1 s, common
+    practice); ramp-up v = a t (constant acceleration).
+    """
     cell = _running_cell()
     cell.run(0.2, (0.4, 0.0, 0.0), joint_state_stamp=-1.0)          # stale for 0.2 s
     outs = [cell.tick((0.4, 0.0, 0.0)) for _ in range(50)]            # fresh t0 .. t0 + 0.49 s
@@ -204,7 +224,8 @@ def test_recovery_needs_fresh_data_held_for_resume_after_then_ramps_up() -> None
 
 
 def test_interrupted_recovery_restarts_the_hold() -> None:
-    """A single bad tick during the hold restarts the full resume_after wait."""
+    """A single bad tick during the hold restarts the full resume_after wait ("seen continuously",
+    safety-facts.md 6 settle period, common practice)."""
     cell = _running_cell()
     cell.tick((0.4, 0.0, 0.0), solver_ok=False, solver_status='max iterations')
     cell.run(0.3, (0.4, 0.0, 0.0))
@@ -216,7 +237,8 @@ def test_interrupted_recovery_restarts_the_hold() -> None:
 
 
 def test_failed_switch_clears_only_when_a_skill_is_activated() -> None:
-    """RECOVERY rule: waiting is not enough, a successful activation is."""
+    """RECOVERY rule: waiting is not enough, a successful activation is (project rule: a failed
+    switch leaves no valid skill to follow)."""
     assert RECOVERY[FaultKind.SWITCH_FAILED] is Recovery.SKILL_ACTIVATED
     cell = _running_cell()
     cell.tick((0.4, 0.0, 0.0), switch_failed=True)
@@ -227,7 +249,8 @@ def test_failed_switch_clears_only_when_a_skill_is_activated() -> None:
 
 
 def test_two_faults_are_both_named_and_both_must_clear() -> None:
-    """Each fault is tracked on its own; the reason lists all active ones."""
+    """Each fault is tracked on its own; the reason lists all active ones (each input needs its own
+    fresh-data hold, safety-facts.md 6, common practice)."""
     cell = _running_cell()
     out = cell.tick((0.4, 0.0, 0.0), inputs_finite=False, solver_ok=False,
                     solver_status='numerical')
@@ -240,7 +263,11 @@ def test_two_faults_are_both_named_and_both_must_clear() -> None:
 
 
 def test_requested_stop_ramps_to_zero_within_stopping_time() -> None:
-    """Normal stop: linear in magnitude from the last published command, zero by 0.3 s."""
+    """Normal stop: linear in magnitude from the last published command, zero by 0.3 s.
+
+    A controlled stop with power available (IEC 60204-1 9.2.2 category 1/2, per safety-facts.md
+    5); the linear shape is this project's choice, checked here against v(t) = v0 (1 - t / T).
+    """
     cell = _running_cell()
     cell.watchdog.request_stop('shutdown')
     outs = [cell.tick((0.4, 0.0, 0.0)) for _ in range(40)]
@@ -260,8 +287,22 @@ def test_requested_stop_ramps_to_zero_within_stopping_time() -> None:
     assert out.state is State.NORMAL and out.command[0] == pytest.approx(5.0 * DT)
 
 
+def test_stop_ramp_never_speeds_up_when_the_clock_jumps_back() -> None:
+    """A clock going backwards (common practice: distrust such time, safety-facts.md 6) neither
+    raises the ramp again nor delays the stop beyond stopping_time / dt ticks."""
+    cell = _running_cell()
+    cell.watchdog.request_stop('shutdown')
+    speeds = [cell.tick((0.4, 0.0, 0.0)).command[0] for _ in range(10)]
+    cell.now -= 0.2
+    speeds += [cell.tick((0.4, 0.0, 0.0)).command[0] for _ in range(20)]
+    assert all(b <= a for a, b in zip(speeds, speeds[1:]))
+    assert speeds[9] == pytest.approx(0.4 * (1 - 10 * DT / 0.3))
+    assert speeds[29] == 0.0                        # 30 ticks of 10 ms = 0.3 s
+
+
 def test_fault_during_requested_stop_is_immediate() -> None:
-    """A fault does not wait for the ramp: zero in that tick, and the ramp does not restart."""
+    """A fault does not wait for the ramp: zero in that tick, and the ramp does not restart
+    (project rule: a fault demands a zero command at once, no ramp)."""
     cell = _running_cell()
     cell.watchdog.request_stop('operator')
     cell.run(0.05, (0.4, 0.0, 0.0))
@@ -360,7 +401,7 @@ def test_buffered_casadi_points_match_direct_evaluation() -> None:
 
 
 def test_config_errors_name_the_field_and_value() -> None:
-    """Bad settings fail at construction with the field, index and value."""
+    """Bad settings fail at construction with the field, index and value (project error rule)."""
     with pytest.raises(ConstraintCtrlError,
                        match=r'acceleration_limits\[1\]: expected a number > 0, got 0\.0$'):
         make_config(acceleration_limits=[1.0, 0.0, 1.0])
@@ -373,13 +414,15 @@ def test_config_errors_name_the_field_and_value() -> None:
 
 
 def test_points_function_shape_mismatch_is_reported() -> None:
-    """A points function that does not fit the monitored points fails at construction."""
+    """A points function that does not fit the monitored points fails at construction (the
+    shapes (3, k) and (3k, n) are the kinematics contract of the project)."""
     with pytest.raises(ConstraintCtrlError, match=r'expected \(3, 3\) and \(9, 3\)'):
         Watchdog(make_config(), gantry, [*POINTS, POINTS[0]], DT)
 
 
 def test_config_is_immutable() -> None:
-    """Limits cannot be changed behind the watchdog's back."""
+    """Limits cannot be changed behind the watchdog's back (numpy read-only flag raises
+    ValueError on assignment)."""
     config = make_config()
     with pytest.raises(ValueError):
         config.velocity_limits[0] = 10.0

@@ -143,7 +143,7 @@ def test_binding_pair_reaches_its_permitted_speed(arm: Arm, q: np.ndarray, comma
             diff = h - pos[:, i]
             dist = float(np.linalg.norm(diff))
             permitted = max_robot_speed(dist - radii[i], sep)
-            too_close |= permitted == 0.0          # protective stop, whatever the direction
+            too_close |= permitted == 0.0          # stop, whatever the direction
             speed = float(diff @ vel_in[i]) / dist if dist > 0 else math.inf
             if speed > 0:
                 ratios.append((permitted, speed, diff, i, dist))
