@@ -7,7 +7,8 @@ naming the fault and the measured values behind it. Faults are keyed by kind and
 Recovery rules (also in ``RECOVERY``; ``resume_after`` is a watchdog setting, 1 s by default):
 
 - stale, missing or non-finite inputs (joint_states, skill inputs, person sources, missing
-  joints): clear once fresh valid data has been seen continuously for ``resume_after``;
+  joints) and non-finite monitored-point kinematics: clear once fresh valid data has been seen
+  continuously for ``resume_after``;
 - solver failure or an unusable solver command: clears once the solver has reported ok with a
   finite command continuously for ``resume_after``;
 - person too close (separation at or inside S_p(0)): clears once every monitored point has
@@ -47,6 +48,7 @@ class FaultKind(str, Enum):
     PERSON_INVALID = 'person_invalid'
     SOLVER_FAILED = 'solver_failed'
     COMMAND_INVALID = 'command_invalid'
+    KINEMATICS_NOT_FINITE = 'kinematics_not_finite'
     SWITCH_FAILED = 'switch_failed'
     PERSON_TOO_CLOSE = 'person_too_close'
 
@@ -70,6 +72,7 @@ RECOVERY: dict[FaultKind, Recovery] = {
     FaultKind.PERSON_INVALID: Recovery.FRESH_DATA_HELD,
     FaultKind.SOLVER_FAILED: Recovery.OK_SOLVE_HELD,
     FaultKind.COMMAND_INVALID: Recovery.OK_SOLVE_HELD,
+    FaultKind.KINEMATICS_NOT_FINITE: Recovery.FRESH_DATA_HELD,
     FaultKind.SWITCH_FAILED: Recovery.SKILL_ACTIVATED,
     FaultKind.PERSON_TOO_CLOSE: Recovery.SEPARATION_CLEAR_HELD,
 }

@@ -231,6 +231,10 @@ class WatchdogOutput:
     transitions: list[Transition]
 
 
+def _points_finite(p: np.ndarray, j: np.ndarray) -> bool:
+    return math.isfinite(float(p.sum()) + float(j.sum()))
+
+
 class BufferedPoints:
     """Allocation-free evaluation of a casadi points Function via ``Function.buffer()``.
 
@@ -260,8 +264,9 @@ class BufferedPoints:
             q = casadi.SX.sym('q', n)
             fn = casadi.Function(f'{fn.name()}_cse', [q], fn(q), {'cse': True})
         self._q = np.zeros(n)
-        self._p = np.zeros(3 * k)
-        self._j = np.zeros(3 * k * n)
+        self._out = np.zeros(3 * k + 3 * k * n)      # P then J, one block for one finite check
+        self._p = self._out[:3 * k]
+        self._j = self._out[3 * k:]
         self._buffer, self._eval = fn.buffer()
         self._buffer.set_arg(0, memoryview(self._q))
         self._buffer.set_res(0, memoryview(self._p))
@@ -273,6 +278,13 @@ class BufferedPoints:
         self._q[:] = q
         self._eval()
         return self._p_view, self._j_view
+
+    def results_finite(self, p: np.ndarray, j: np.ndarray) -> bool:
+        """True when the last results (``p``, ``j``: the views returned) hold no NaN or inf.
+
+        One dot product over the shared block instead of two reductions.
+        """
+        return math.isfinite(float(np.dot(self._out, self._out)))
 
 
 class Watchdog:
@@ -291,8 +303,11 @@ class Watchdog:
         n = config.n_joints
         k = len(points)
         self._n, self._k = n, k
-        self._points_fn: PointsFn = (BufferedPoints(points_fn)
-                                     if isinstance(points_fn, casadi.Function) else points_fn)
+        buffered = (BufferedPoints(points_fn) if isinstance(points_fn, casadi.Function)
+                    else None)
+        self._points_fn: PointsFn = buffered or points_fn
+        self._points_finite: Callable[[np.ndarray, np.ndarray], bool] = (
+            buffered.results_finite if buffered else _points_finite)
         self._check_points_fn(points_fn)
         radii = np.array([p.radius for p in points])
         self._monitor = SeparationMonitor(config.separation, radii,
@@ -342,6 +357,10 @@ class Watchdog:
             msg = (f'Watchdog: points function {original!r} returned P {np.shape(p)} and J '
                    f'{np.shape(j)}, expected (3, {self._k}) and ({3 * self._k}, {self._n}) for '
                    f'{self._k} monitored points and {self._n} joints')
+            raise ConstraintCtrlError(msg)
+        if not self._points_finite(p, j):
+            msg = (f'Watchdog: points function {original!r} returned NaN or inf at '
+                   f'q={q.tolist()}; check the robot description')
             raise ConstraintCtrlError(msg)
 
     @property
@@ -407,6 +426,12 @@ class Watchdog:
         if self._detector.q_valid:
             assert q is not None
             p, jac = self._points_fn(q)
+            if not self._points_finite(p, jac):
+                detected.append(Fault(FaultKind.KINEMATICS_NOT_FINITE, '',
+                                      f'monitored point kinematics gave NaN or inf at '
+                                      f'q={q.tolist()}', {}))
+                jac = None
+        if jac is not None:
             monitor.measure(p.T, people)
             if monitor.too_close:
                 detected.append(self._too_close_fault())

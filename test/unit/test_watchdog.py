@@ -420,6 +420,27 @@ def test_points_function_shape_mismatch_is_reported() -> None:
         Watchdog(make_config(), gantry, [*POINTS, POINTS[0]], DT)
 
 
+def test_non_finite_kinematics_is_a_stop() -> None:
+    """Kinematics that go NaN (a broken model) stop the arm instead of publishing NaN (common
+    practice: implausible data means stop, safety-facts.md 0); a model already broken at the
+    probe pose is refused at construction."""
+    def fragile(q: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        p, j = gantry(q)
+        return (p * math.nan, j) if q[0] > 1.0 else (p, j)
+
+    watchdog = Watchdog(make_config(), fragile, POINTS, DT)
+    cell = Cell()
+    cell.watchdog = watchdog
+    cell.person = np.array([2.5, 0.0, 0.0])
+    assert cell.tick((0.3, 0.0, 0.0)).state is State.NORMAL
+    cell.q[0] = 1.5
+    out = cell.tick((0.3, 0.0, 0.0))
+    assert out.state is State.STOPPED and not out.command.any()
+    assert 'kinematics gave NaN or inf' in out.reason
+    with pytest.raises(ConstraintCtrlError, match='returned NaN or inf'):
+        Watchdog(make_config(), lambda q: fragile(q + 2.0), POINTS, DT)
+
+
 def test_config_is_immutable() -> None:
     """Limits cannot be changed behind the watchdog's back (numpy read-only flag raises
     ValueError on assignment)."""
