@@ -78,12 +78,19 @@ def _functions(_args: argparse.Namespace) -> int:
     return 0
 
 
-def _node(module: str, func: str):
-    def run(args: argparse.Namespace) -> int:
-        import importlib
-        entry = getattr(importlib.import_module(module, __package__), func)
-        return int(entry(args) or 0)
-    return run
+#: Subcommands that start a process with its own options and ROS arguments (passed raw).
+NODE_COMMANDS = {
+    'run': ('.nodes.controller_node', 'start the controller node'),
+    'sim': ('.nodes.sim_node', 'start the simulated work cell node'),
+    'sequence': ('.nodes.sequencer_node', 'run a task plan against the controller'),
+    'demo': ('.tools.demo', 'run the whole work-cell demo (sim, controller, sequencer)'),
+}
+
+
+def _run_node(command: str, argv: list[str]) -> int:
+    import importlib
+    module = importlib.import_module(NODE_COMMANDS[command][0], __package__)
+    return int(module.run(argv) or 0)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -114,27 +121,30 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser('functions', help='list the functions of the formula language')
     p.set_defaults(func=_functions)
 
-    for name, module, func, text in (
-            ('run', '.nodes.controller_node', 'main_from_cli', 'start the controller node'),
-            ('sim', '.nodes.sim_node', 'main_from_cli', 'start the simulated work cell node'),
-            ('sequence', '.nodes.sequencer_node', 'main_from_cli', 'run a task plan'),
-            ('demo', '.tools.demo', 'main_from_cli', 'run the whole work-cell demo')):
-        p = sub.add_parser(name, help=text, add_help=True)
-        p.add_argument('rest', nargs=argparse.REMAINDER,
-                       help='options of the node; ROS arguments after --ros-args')
-        p.set_defaults(func=_node(module, func))
+    for name, (_, text) in NODE_COMMANDS.items():
+        p = sub.add_parser(name, help=text + ' (see: constraint-ctrl ' + name + ' --help)',
+                           add_help=False)
+        p.add_argument('rest', nargs=argparse.REMAINDER)
     return parser
 
 
-def main(argv: list[str] | None = None) -> int:
-    args = build_parser().parse_args(argv)
+def report_errors(func, *args) -> int:  # noqa: ANN001 - any entry point
+    """Run an entry point; our own errors become one line on stderr and exit code 2."""
     try:
-        return int(args.func(args))
+        return int(func(*args) or 0)
     except ConstraintCtrlError as err:
         print(f'error: {err}', file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         return 130
+
+
+def main(argv: list[str] | None = None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if argv and argv[0] in NODE_COMMANDS:
+        return report_errors(_run_node, argv[0], argv[1:])
+    args = build_parser().parse_args(argv)
+    return report_errors(args.func, args)
 
 
 if __name__ == '__main__':

@@ -1,0 +1,46 @@
+"""What every node entry point shares: option parsing, the config folder, the port's life."""
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+
+from ..transport.port import DISTROS, TRANSPORTS
+
+
+def config_dir() -> Path:
+    """The package's config folder: ament share dir, pip data dir, or the source tree."""
+    candidates = []
+    try:
+        from ament_index_python.packages import (PackageNotFoundError,
+                                                 get_package_share_directory)
+        try:
+            candidates.append(Path(get_package_share_directory('constraint_ctrl')) / 'config')
+        except PackageNotFoundError:
+            pass
+    except ImportError:
+        pass
+    candidates.append(Path(__file__).resolve().parents[2] / 'config')
+    candidates.append(Path(sys.prefix) / 'share' / 'constraint_ctrl' / 'config')
+    for path in candidates:
+        if (path / 'robots').is_dir():
+            return path
+    return candidates[-1]
+
+
+def split_ros_args(argv: list[str]) -> tuple[list[str], list[str]]:
+    """(our options, ROS arguments from --ros-args on) — ROS arguments go to the port as is."""
+    if '--ros-args' in argv:
+        i = argv.index('--ros-args')
+        return argv[:i], argv[i:]
+    return argv, []
+
+
+def transport_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument('--transport', choices=TRANSPORTS, default='auto',
+                        help='auto: rclpy when importable, else direct Cyclone DDS')
+    parser.add_argument('--distro', choices=DISTROS, default='jazzy',
+                        help='ROS 2 wire layout for the DDS transport and bags')
+
+
+__all__ = ['config_dir', 'split_ros_args', 'transport_options']

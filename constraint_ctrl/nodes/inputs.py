@@ -1,0 +1,118 @@
+"""Turning ROS messages into the controller's snapshot: skill inputs, joint states, stamps.
+
+A skill input is one scalar taken from one field of a message on one topic, mapped in the node's
+parameters file:
+
+    inputs:
+      range_left: {topic: /tool/range_left, type: sensor_msgs/msg/Range, field: range}
+      tool_force_z: {topic: /wrist/wrench, type: geometry_msgs/msg/WrenchStamped,
+                     field: wrench.force.z, scale: 1.0}
+
+Stamps: a message's header stamp (ROS time) is turned into the controller's monotonic clock by
+its age at arrival, so staleness is judged from capture time, not receive time; a stamp from the
+future (clock skew beyond FUTURE_TOLERANCE) or an unset stamp falls back to the receive time.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+from ..errors import TransportError
+
+#: Message types a skill input can come from, with their default field.
+INPUT_TYPES: dict[str, str] = {
+    'sensor_msgs/msg/Range': 'range',
+    'geometry_msgs/msg/WrenchStamped': 'wrench.force.z',
+    'geometry_msgs/msg/PointStamped': 'point.z',
+    'std_msgs/msg/Float64': 'data',
+}
+#: Port type attribute for each supported ROS type.
+TYPE_ATTRIBUTE = {
+    'sensor_msgs/msg/Range': 'Range',
+    'geometry_msgs/msg/WrenchStamped': 'WrenchStamped',
+    'geometry_msgs/msg/PointStamped': 'PointStamped',
+    'std_msgs/msg/Float64': 'Float64',
+}
+#: How far in the future (s) a header stamp may be before it is not trusted.
+FUTURE_TOLERANCE = 0.005
+
+
+@dataclass(frozen=True, slots=True)
+class InputMapping:
+    """Where one skill input comes from."""
+
+    name: str
+    topic: str
+    ros_type: str
+    field: tuple[str, ...]
+    scale: float = 1.0
+
+    def extract(self, msg: Any) -> float:
+        value = msg
+        for part in self.field:
+            value = getattr(value, part)
+        return self.scale * float(value)
+
+    @property
+    def has_header(self) -> bool:
+        return self.ros_type != 'std_msgs/msg/Float64'
+
+
+def parse_input_mappings(params: dict[str, Any]) -> dict[str, InputMapping]:
+    """From flattened parameters {'range_left.topic': ..., ...} (prefix 'inputs.' removed)."""
+    grouped: dict[str, dict[str, Any]] = {}
+    for key, value in params.items():
+        name, _, attr = key.partition('.')
+        if not attr:
+            msg = (f'parameter inputs.{key}: expected inputs.<input>.<topic|type|field|scale>')
+            raise TransportError(msg)
+        grouped.setdefault(name, {})[attr] = value
+    out = {}
+    for name, attrs in grouped.items():
+        unknown = sorted(set(attrs) - {'topic', 'type', 'field', 'scale'})
+        if unknown:
+            msg = f'parameter inputs.{name}: unknown keys {unknown} (topic, type, field, scale)'
+            raise TransportError(msg)
+        if 'topic' not in attrs:
+            msg = f'parameter inputs.{name}.topic is missing'
+            raise TransportError(msg)
+        ros_type = str(attrs.get('type', 'std_msgs/msg/Float64'))
+        if ros_type not in INPUT_TYPES:
+            msg = (f'parameter inputs.{name}.type: {ros_type!r} is not supported; use one of '
+                   f'{", ".join(INPUT_TYPES)}')
+            raise TransportError(msg)
+        field = str(attrs.get('field', INPUT_TYPES[ros_type]))
+        scale = attrs.get('scale', 1.0)
+        if isinstance(scale, bool) or not isinstance(scale, (int, float)) or \
+                not math.isfinite(scale):
+            msg = f'parameter inputs.{name}.scale: expected a finite number, got {scale!r}'
+            raise TransportError(msg)
+        out[name] = InputMapping(name=name, topic=str(attrs['topic']), ros_type=ros_type,
+                                 field=tuple(field.split('.')), scale=float(scale))
+    return out
+
+
+def check_field(mapping: InputMapping, sample: Any) -> None:
+    """Fail at start-up, not at the first message, when a field path does not exist."""
+    try:
+        mapping.extract(sample)
+    except (AttributeError, TypeError, ValueError) as err:
+        msg = (f'parameter inputs.{mapping.name}.field: {".".join(mapping.field)!r} is not a '
+               f'number field of {mapping.ros_type} ({err})')
+        raise TransportError(msg) from None
+
+
+def capture_time(stamp_sec: int, stamp_nanosec: int, recv_ros_ns: int, recv_mono: float) -> float:
+    """The sample's capture time on the monotonic clock (s), from its header stamp."""
+    stamp_ns = int(stamp_sec) * 1_000_000_000 + int(stamp_nanosec)
+    if stamp_ns <= 0:
+        return recv_mono
+    age = (recv_ros_ns - stamp_ns) * 1e-9
+    if age < -FUTURE_TOLERANCE:
+        return recv_mono
+    return recv_mono - max(age, 0.0)
+
+
+__all__ = ['INPUT_TYPES', 'InputMapping', 'TYPE_ATTRIBUTE', 'capture_time', 'check_field',
+           'parse_input_mappings']
