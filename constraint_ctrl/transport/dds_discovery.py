@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import os
 import threading
+import weakref
 from typing import Any
 
 from cyclonedds.pub import DataWriter
@@ -69,7 +70,11 @@ def gid_of(entity: Any, gid_type: type) -> Any:
 
 
 class NodeAnnouncer:
-    """Keeps `ros_discovery_info` in step with the node's readers and writers."""
+    """Keeps `ros_discovery_info` in step with the node's readers and writers.
+
+    Endpoints are keyed by GUID; one whose Python object is garbage collected (a client the
+    node dropped) leaves the record with the next update.
+    """
 
     def __init__(self, participant: Any, types: Any, namespace: str, node_name: str) -> None:
         self._participant = participant
@@ -77,21 +82,26 @@ class NodeAnnouncer:
         self._namespace = namespace
         self._node_name = node_name
         self._lock = threading.Lock()
-        self._readers: dict[int, Any] = {}
-        self._writers: dict[int, Any] = {}
+        self._readers: dict[bytes, Any] = {}
+        self._writers: dict[bytes, Any] = {}
+        self._dead: list[bytes] = []
         topic = Topic(participant, DISCOVERY_TOPIC, types.ParticipantEntitiesInfo)
         self.writer = DataWriter(participant, topic, writer_qos(DISCOVERY_INFO))
 
     def update(self, *, readers: tuple[Any, ...] = (), writers: tuple[Any, ...] = (),
                removed: tuple[Any, ...] = ()) -> None:
         with self._lock:
-            for entity in readers:
-                self._readers[id(entity)] = gid_of(entity, self._types.Gid)
-            for entity in writers:
-                self._writers[id(entity)] = gid_of(entity, self._types.Gid)
-            for entity in removed:
-                self._readers.pop(id(entity), None)
-                self._writers.pop(id(entity), None)
+            for table, entities in ((self._readers, readers), (self._writers, writers)):
+                for entity in entities:
+                    key = entity.guid.bytes
+                    table[key] = gid_of(entity, self._types.Gid)
+                    weakref.finalize(entity, self._dead.append, key)
+            gone = [entity.guid.bytes for entity in removed]
+            while self._dead:
+                gone.append(self._dead.pop())
+            for key in gone:
+                self._readers.pop(key, None)
+                self._writers.pop(key, None)
             self.writer.write(self.sample())
 
     def sample(self, *, with_node: bool = True) -> Any:

@@ -61,6 +61,12 @@ _PARAMETER_SERVICES = (
 _ACK_WAIT_S = 0.5
 
 
+def delete_entity(entity: Any) -> None:
+    """Delete a DDS entity now, so peers see it go (cyclonedds-python otherwise deletes on
+    garbage collection; its __del__ is idempotent, so a later collection does nothing)."""
+    entity.__del__()
+
+
 class DdsPublisher:
     def __init__(self, writer: DataWriter, msg_type: type, name: str) -> None:
         self.writer = writer
@@ -196,8 +202,11 @@ class DdsPort:
         if not isinstance(handle, ServiceServer):
             msg = f'destroy_service: {handle!r} is not a service created by this port'
             raise TransportError(msg)
+        handle.closed = True
         self._service_dispatch.remove(handle.reader)
         self._announcer.update(removed=(handle.reader, handle.writer))
+        delete_entity(handle.reader)
+        delete_entity(handle.writer)
 
     def create_client(self, srv_type: Any, name: str) -> ServiceClient:
         fqn = resolve_name(name, self.node_name, self.namespace, self._remaps)
@@ -292,6 +301,4 @@ class DdsPort:
             left = deadline - time.monotonic()
             if left > 0:
                 writer.wait_for_acks(duration(seconds=left))
-        # cyclonedds-python deletes entities only when garbage collected; delete explicitly
-        # so peers see the node leave now.
-        self._participant.__del__()
+        delete_entity(self._participant)   # and with it every entity of the node

@@ -24,7 +24,8 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-from cyclonedds.core import InstanceState, ReadCondition, SampleState, ViewState, WaitSet
+from cyclonedds.core import (DDSException, InstanceState, ReadCondition, SampleState, ViewState,
+                             WaitSet)
 from cyclonedds.internal import InvalidSample
 from cyclonedds.pub import DataWriter
 from cyclonedds.sub import DataReader
@@ -73,6 +74,7 @@ class ServiceServer:
                  callback: Callable[[Any, Any], Any], qos: QosProfile) -> None:
         self.srv_type = _check_srv_type(srv_type)
         self.name = fqn
+        self.closed = False
         self._callback = callback
         tag = f'serviceid={endpoint_id(participant)};'.encode()
         req_topic = Topic(participant, request_dds_name(fqn), self.srv_type.RequestWire)
@@ -81,14 +83,22 @@ class ServiceServer:
         self.writer = DataWriter(participant, rep_topic, writer_qos(qos, tag))
 
     def handle(self, sample: Any) -> None:
+        if self.closed:
+            return
         response = self._callback(sample.body, self.srv_type.Response())
         if not isinstance(response, self.srv_type.Response):
             msg = (f'service {self.name}: callback returned {type(response).__name__}, '
                    f'expected the {self.srv_type.ros_type} response it was given')
             raise TransportError(msg)
-        self._wait_for_reply_reader(sample.sample_info.publication_handle)
-        self.writer.write(self.srv_type.ResponseWire(guid=sample.guid, seq=sample.seq,
-                                                     body=response))
+        if self.closed:  # destroyed by its own callback (or meanwhile): no reply
+            return
+        try:
+            self._wait_for_reply_reader(sample.sample_info.publication_handle)
+            self.writer.write(self.srv_type.ResponseWire(guid=sample.guid, seq=sample.seq,
+                                                         body=response))
+        except DDSException:
+            if not self.closed:
+                raise
 
     def _wait_for_reply_reader(self, request_writer: int) -> None:
         client = tag_value(user_data_of(_matched_pub(self.reader, request_writer)), 'clientid')
