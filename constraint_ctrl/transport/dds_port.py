@@ -12,7 +12,8 @@ Limits to know:
 * Networking: loopback only unless CYCLONEDDS_URI is set (see dds_discovery.py for the default
   and how to override it); domain from ROS_DOMAIN_ID.
 * Not provided: /rosout (logs go to stderr in ROS's console format), type hashes in USER_DATA,
-  simulated time, parameter ranges.
+  simulated time (use_sim_time exists, as on every rclpy node, but only False is honoured),
+  parameter ranges.
 
 Threads: subscriptions are dispatched on one thread, services (including parameter services)
 on another, and each timer has its own, so a timer tick can run at the same time as a
@@ -123,6 +124,10 @@ class DdsPort:
                                        'parameters')
         self._params = ParameterStore(self.fqn, overrides_for(args, self.fqn), self.types,
                                       self.now_ns, events.publish)
+        # rclpy's TimeSource declares use_sim_time on every node; keep the same parameter set
+        if self._params.declare('use_sim_time', False).value is not False:
+            self.log('warn', 'use_sim_time is not supported by the DDS port; stamps and timers '
+                             'use the system and monotonic clocks')
         for suffix, type_name, handler in _PARAMETER_SERVICES:
             self._add_service(getattr(self.types, type_name), f'~/{suffix}',
                               getattr(self._params, handler), 'parameters')
