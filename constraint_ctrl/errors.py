@@ -14,11 +14,9 @@ class ModelError(ConstraintCtrlError):
     """A robot description (URDF) that cannot be used; the message names the element."""
 
 
-class SkillError(ConstraintCtrlError):
-    """A skill file that cannot be loaded or compiled.
-
-    Carries where the problem is so the user can go straight to it: file, line (1-based) and
-    the dotted field path inside the file (e.g. ``constraints[2].behaviour.gain``).
+class LocatedError(ConstraintCtrlError):
+    """A mistake in a user's file: carries file, line (1-based) and dotted field path
+    (e.g. ``constraints[2].behaviour.gain``) so the user can go straight to it.
     """
 
     def __init__(self, message: str, *, file: str | None = None, line: int | None = None,
@@ -30,7 +28,7 @@ class SkillError(ConstraintCtrlError):
         super().__init__(self.__str__())
 
     def located(self, *, file: str | None = None, line: int | None = None,
-                field: str | None = None) -> SkillError:
+                field: str | None = None) -> LocatedError:
         """Return a copy with missing location parts filled in (keeps the most specific)."""
         return type(self)(self.message, file=self.file or file, line=self.line or line,
                           field=self.field or field)
@@ -43,6 +41,14 @@ class SkillError(ConstraintCtrlError):
             where = f'line {self.line}: '
         what = f'{self.field}: ' if self.field else ''
         return f'{where}{what}{self.message}'
+
+
+class SkillError(LocatedError):
+    """A skill file that cannot be loaded or compiled."""
+
+
+class PlanError(LocatedError):
+    """A task plan file of the sequencer that cannot be loaded."""
 
 
 class FormulaError(SkillError):

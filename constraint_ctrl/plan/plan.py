@@ -1,0 +1,135 @@
+"""Task plans for the sequencer: which skill to run, with which tunables, until which event.
+
+Our own YAML format::
+
+    plan: gearbox_assembly                # identifier
+    controller: /constraint_controller    # the controller node the plan talks to
+    watchdog_wait: 60                     # s a step may stay stopped by the watchdog before
+                                          # the plan aborts (its timeout is paused meanwhile)
+    steps:
+      - name: approach                    # identifier, unique
+        skill: move_to_point              # activated through ~/skills/<skill>/activate
+        set: {goal_x: 0.50, goal_z: 0.26} # tunables set (SetParameters) before activation
+        done_when: arrived                # event on ~/events that ends the step
+        next: seat                        # optional: the step after (default: the next one)
+        timeout: 15                       # s of motion; then on_timeout happens
+        on_timeout: abort                 # abort (default) or the name of a step
+
+The sequencer only uses the controller's ROS interface (Trigger services, parameters, events),
+so it stands in for whatever sequencer a user already has.
+"""
+from __future__ import annotations
+
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Mapping
+
+from ..errors import PlanError
+from ..located_yaml import load_located
+
+IDENTIFIER = re.compile(r'^[A-Za-z_][A-Za-z0-9_]*$')
+TOP_KEYS = {'plan', 'description', 'controller', 'watchdog_wait', 'steps'}
+STEP_KEYS = {'name', 'skill', 'set', 'done_when', 'next', 'timeout', 'on_timeout'}
+
+
+@dataclass(frozen=True, slots=True)
+class Step:
+    name: str
+    skill: str
+    done_when: str
+    timeout: float
+    set: Mapping[str, float] = field(default_factory=dict)
+    next: str | None = None          # None: the following step, or the end
+    on_timeout: str = 'abort'        # 'abort' or a step name
+
+
+@dataclass(frozen=True, slots=True)
+class Plan:
+    name: str
+    controller: str
+    steps: tuple[Step, ...]
+    watchdog_wait: float = 60.0
+    description: str = ''
+    source: str = '<string>'
+
+    def index(self, name: str) -> int:
+        return [s.name for s in self.steps].index(name)
+
+
+def load_plan(path: str | Path) -> Plan:
+    path = Path(path)
+    data, lines = load_located(path, PlanError)
+    source = str(path)
+
+    def fail(message: str, field_path: str) -> PlanError:
+        probe = field_path
+        while probe and probe not in lines:
+            probe = probe.rsplit('.', 1)[0] if '.' in probe else ''
+        return PlanError(message, file=source, line=lines.get(probe), field=field_path)
+
+    def number(value: Any, where: str, *, positive: bool = True) -> float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or \
+                not math.isfinite(value) or (positive and value <= 0):
+            raise fail(f'expected a {"positive " if positive else ""}number, got {value!r}',
+                       where)
+        return float(value)
+
+    def name(value: Any, where: str) -> str:
+        if not isinstance(value, str) or not IDENTIFIER.match(value):
+            raise fail(f'expected a name of letters, digits and _, got {value!r}', where)
+        return value
+
+    if not isinstance(data, dict):
+        raise fail('a plan file is a mapping with plan, controller and steps', 'plan')
+    unknown = sorted(set(data) - TOP_KEYS)
+    if unknown:
+        raise fail(f'unknown keys {unknown}; expected some of {sorted(TOP_KEYS)}', unknown[0])
+    for key in ('plan', 'steps'):
+        if key not in data:
+            raise fail(f'{key!r} is required', key)
+    controller = data.get('controller', '/constraint_controller')
+    if not isinstance(controller, str) or not controller.startswith('/'):
+        raise fail(f'expected an absolute node name like /constraint_controller, got '
+                   f'{controller!r}', 'controller')
+    raw_steps = data['steps']
+    if not isinstance(raw_steps, list) or not raw_steps:
+        raise fail('expected a non-empty list of steps', 'steps')
+    steps = []
+    for i, raw in enumerate(raw_steps):
+        where = f'steps[{i}]'
+        if not isinstance(raw, dict):
+            raise fail('a step is a mapping with name, skill, done_when and timeout', where)
+        unknown = sorted(set(raw) - STEP_KEYS)
+        if unknown:
+            raise fail(f'unknown keys {unknown}; expected some of {sorted(STEP_KEYS)}',
+                       f'{where}.{unknown[0]}')
+        for key in ('name', 'skill', 'done_when', 'timeout'):
+            if key not in raw:
+                raise fail(f'{key!r} is required', where)
+        settings = raw.get('set', {})
+        if not isinstance(settings, dict):
+            raise fail('expected a mapping of tunable: value', f'{where}.set')
+        values = {str(k): number(v, f'{where}.set.{k}', positive=False)
+                  for k, v in settings.items()}
+        steps.append(Step(
+            name=name(raw['name'], f'{where}.name'), skill=name(raw['skill'], f'{where}.skill'),
+            done_when=name(raw['done_when'], f'{where}.done_when'),
+            timeout=number(raw['timeout'], f'{where}.timeout'), set=values,
+            next=name(raw['next'], f'{where}.next') if raw.get('next') is not None else None,
+            on_timeout=name(raw.get('on_timeout', 'abort'), f'{where}.on_timeout')))
+    names = [s.name for s in steps]
+    for i, step in enumerate(steps):
+        if names.count(step.name) > 1:
+            raise fail(f'step name {step.name!r} is used twice', f'steps[{i}].name')
+        for key, target in (('next', step.next), ('on_timeout', step.on_timeout)):
+            if target is not None and target != 'abort' and target not in names:
+                raise fail(f'{target!r} is not a step of this plan ({", ".join(names)})',
+                           f'steps[{i}].{key}')
+    return Plan(name=name(data['plan'], 'plan'), controller=controller, steps=tuple(steps),
+                watchdog_wait=number(data.get('watchdog_wait', 60.0), 'watchdog_wait'),
+                description=str(data.get('description', '')), source=source)
+
+
+__all__ = ['Plan', 'Step', 'load_plan']
