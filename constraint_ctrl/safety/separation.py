@@ -154,12 +154,17 @@ class SeparationMonitor:
         """Every pair is far enough to count towards resuming after a stop."""
         return self.min_separation >= self.clear_distance
 
-    def measure(self, points: np.ndarray, people: np.ndarray) -> None:
+    def measure(self, points: np.ndarray, people: np.ndarray,
+                moved: np.ndarray | None = None) -> None:
         """Compute separations and distances of every point-person pair.
 
         Args:
             points: monitored point positions in the base frame, shape (k, 3), m.
             people: person positions in the base frame, shape (m, 3), m.
+            moved: how far each person may have come closer since the position was captured,
+                shape (m,), m (human speed times data age); taken off their separations, so
+                old data counts as a person nearer by what they could have walked
+                (safety-facts.md section 6, common practice).
         """
         m = people.shape[0]
         self.n_people = m
@@ -172,6 +177,8 @@ class SeparationMonitor:
         dist = np.add.reduce(diff * diff, axis=2)
         np.sqrt(dist, out=dist)
         sep = dist - self.radii
+        if moved is not None:
+            sep -= moved
         flat = int(sep.argmin())
         self.closest_point, self.closest_person = divmod(flat, m)
         self.min_separation = float(sep.flat[flat])

@@ -331,6 +331,8 @@ class Watchdog:
         self._hi = np.zeros(n)
         self._no_people = np.zeros((0, 3))
         self._people_buf = np.zeros((4, 3))
+        self._moved_buf = np.zeros(4)
+        self._no_moved = np.zeros(0)
         self._tmp = np.zeros(n)
         self._tmp2 = np.zeros(n)
         self._vel: np.ndarray | None = None
@@ -386,40 +388,51 @@ class Watchdog:
         """Switch reduced mode on or off (a node parameter); people in the zone still force it."""
         self._reduced_mode = bool(on)
 
-    def _gather_people(self, people: Mapping[str, PersonSample]) -> tuple[np.ndarray, bool]:
-        """All person positions as (m, 3), and whether every sample was well-formed.
+    def _gather_people(self, people: Mapping[str, PersonSample], now: float
+                       ) -> tuple[np.ndarray, bool, np.ndarray]:
+        """All person positions as (m, 3), whether every sample was well-formed, and how far
+        each person may have walked since capture (human speed x data age, (m,)).
 
         Single positions (the usual case) are copied into a reused buffer; samples holding
         several people take the slower general path. Malformed or non-finite rows are left
         out here and reported as faults by the detector.
         """
         if not people:
-            return self._no_people, True
+            return self._no_people, True, self._no_moved
         buf = self._people_buf
         if len(people) > buf.shape[0]:
             buf = self._people_buf = np.zeros((2 * len(people), 3))
+            self._moved_buf = np.zeros(2 * len(people))
+        moved_buf = self._moved_buf
+        human = self.config.separation.human_speed
         ok = True
         extra = []
+        extra_moved = []
         m = 0
         for sample in people.values():
             pos = sample.position
+            walked = human * max(0.0, now - sample.stamp)
             if pos.shape == (3,):
                 buf[m] = pos
+                moved_buf[m] = walked
                 m += 1
             elif pos.size and pos.size % 3 == 0:
                 extra.append(pos.reshape(-1, 3))
+                extra_moved.append(np.full(pos.size // 3, walked))
             else:
                 ok = False
         rows = buf[:m] if not extra else np.concatenate([buf[:m], *extra])
+        moved = moved_buf[:m] if not extra else np.concatenate([moved_buf[:m], *extra_moved])
         if not math.isfinite(float(rows.sum())):
-            return rows[np.isfinite(rows).all(axis=1)], False
-        return rows, ok
+            keep = np.isfinite(rows).all(axis=1)
+            return rows[keep], False, moved[keep]
+        return rows, ok, moved
 
     def step(self, inp: WatchdogInput) -> WatchdogOutput:
         """Check one tick's inputs and shape the solver command into the published one."""
         now = inp.now
         monitor = self._monitor
-        people, people_ok = self._gather_people(inp.people)
+        people, people_ok, moved = self._gather_people(inp.people, now)
         detected = self._detector.check(inp, people_ok)
         q = inp.q
         jac = None
@@ -432,7 +445,7 @@ class Watchdog:
                                       f'q={q.tolist()}', {}))
                 jac = None
         if jac is not None:
-            monitor.measure(p.T, people)
+            monitor.measure(p.T, people, moved)
             if monitor.too_close:
                 detected.append(self._too_close_fault())
             blocked = () if monitor.clear else (_TOO_CLOSE_KEY,)

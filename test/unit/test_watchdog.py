@@ -448,3 +448,20 @@ def test_config_is_immutable() -> None:
     with pytest.raises(ValueError):
         config.velocity_limits[0] = 10.0
     assert replace(config, reduced_speed=0.1).reduced_speed == 0.1
+
+
+def test_old_person_data_counts_as_a_person_nearer_by_what_they_could_walk() -> None:
+    """A position captured 50 ms ago: the person may be 1.6 m/s x 0.05 s = 80 mm nearer
+    (human speed of ISO 13855; data age handled as in safety-facts.md section 6, common
+    practice), so S = 1.0 m - 0.08 m and vmax follows from the quadratic of section 1.4."""
+    config = make_config(acceleration_limits=[100.0] * 3, reduced_zone=0.5)
+    cell = Cell(config)
+    cell.person = np.array([1.05, 0.0, 0.0])
+    fresh = cell.tick((1.0, 0.0, 0.0))
+    aged = cell.watchdog.step(cell.inputs(np.array([1.0, 0.0, 0.0]), people={
+        'scanner': PersonSample('scanner', cell.person.copy(), cell.now - 0.05)}))
+    assert fresh.min_separation == pytest.approx(1.0)
+    assert aged.min_separation == pytest.approx(1.0 - 0.08)
+    from constraint_ctrl.safety.separation import SeparationParams, max_robot_speed
+    assert aged.command[0] == pytest.approx(max_robot_speed(0.92, SeparationParams()), abs=5e-4)
+    assert aged.command[0] < fresh.command[0]
