@@ -96,6 +96,8 @@ class ControllerNode:
         self.loop = ControlLoop(self.library, self.watchdog, self.dt, person_sources=sources)
         self._initial = str(declare('initial_skill', '', 'skill to activate at start',
                                     read_only=True).value)
+        declare('activate_skill', '', 'write-only: setting it activates that skill at the next '
+                'tick, together with the tunables set in the same (atomic) call')
         self.mappings = parse_input_mappings(
             {k: v.value for k, v in port.get_parameters_by_prefix('inputs').items()})
 
@@ -329,20 +331,24 @@ class ControllerNode:
 
     def _activate_callback(self, name: str) -> Any:
         def callback(request: Any, response: Any) -> Any:
-            loaded = self.library.get(name)
-            if loaded is None:
-                response.success, response.message = False, f'skill {name!r} is not loaded'
-                return response
-            unmapped = [i for i in loaded.compiled.input_names if i not in self.mappings]
-            if unmapped:
-                response.success = False
-                response.message = (f'skill {name!r} reads inputs {unmapped} that no topic is '
-                                    'mapped to (parameters inputs.<input>.topic)')
+            problem = self._cannot_activate(name)
+            if problem:
+                response.success, response.message = False, problem
                 return response
             ok, message = self.loop.request_activation(name, timeout=max(1.0, 20 * self.dt))
             response.success, response.message = ok, message
             return response
         return callback
+
+    def _cannot_activate(self, name: str) -> str | None:
+        loaded = self.library.get(name)
+        if loaded is None:
+            return f'skill {name!r} is not loaded (loaded: {", ".join(self.library.names())})'
+        unmapped = [i for i in loaded.compiled.input_names if i not in self.mappings]
+        if unmapped:
+            return (f'skill {name!r} reads inputs {unmapped} that no topic is mapped to '
+                    '(parameters inputs.<input>.topic)')
+        return None
 
     def _on_reload(self, request: Any, response: Any) -> Any:
         before = set(self._services)
@@ -386,6 +392,14 @@ class ControllerNode:
 
     def _validate_parameters(self, values: dict[str, Any]) -> tuple[bool, str]:
         for name, value in values.items():
+            if name == 'activate_skill':
+                if not isinstance(value, str):
+                    return False, f'activate_skill must be a skill name, got {value!r}'
+                if value:
+                    problem = self._cannot_activate(value)
+                    if problem:
+                        return False, problem
+                continue
             if name in STARTUP_PARAMETERS or (name.startswith('watchdog.')
                                               and name != 'watchdog.reduced_mode'):
                 return False, f'{name} is read at start-up only; restart the node to change it'
@@ -412,6 +426,7 @@ class ControllerNode:
 
     def _apply_parameters(self, values: dict[str, Any]) -> None:
         per_skill: dict[str, dict[int, float]] = {}
+        target = values.get('activate_skill') or None
         for name, value in values.items():
             if name == 'watchdog.reduced_mode':
                 self.watchdog.set_reduced_mode(bool(value))
@@ -424,6 +439,15 @@ class ControllerNode:
             if loaded is None:
                 continue
             per_skill.setdefault(skill, {})[loaded.compiled.param_index(param)] = float(value)
+        if target is not None:
+            # tunables of the skill being activated go in with the switch, in one tick
+            changes = per_skill.pop(target, {})
+            for skill, other in per_skill.items():
+                self.loop.set_parameters(skill, other)
+            ok, message = self.loop.request_activation(target, timeout=max(1.0, 20 * self.dt),
+                                                       params=changes)
+            self.port.log('info' if ok else 'warn', f'activate_skill {target}: {message}')
+            return
         for skill, changes in per_skill.items():
             self.loop.set_parameters(skill, changes)
 

@@ -1,7 +1,8 @@
 """`constraint-ctrl sequence PLAN.yaml`: run a task plan against the controller over ROS.
 
-It uses nothing but the controller's public interface: SetParameters for a step's tunables,
-the ~/skills/<skill>/activate Trigger services, and ~/events. Progress goes to stdout, one line
+It uses nothing but the controller's public interface: SetParametersAtomically for a step's
+tunables together with activate_skill, the ~/skills/<skill>/activate Trigger services for steps
+without tunables, and ~/events. Progress goes to stdout, one line
 per change; --report writes the step durations and the outcome as JSON. Exit code 0 only when
 the plan finished.
 """
@@ -32,8 +33,8 @@ class Sequencer:
         t = port.types
         port.create_subscription(t.String, f'{plan.controller}/events', self._on_event,
                                  'default')
-        self.set_params = port.create_client(t.SetParameters,
-                                             f'{plan.controller}/set_parameters')
+        self.set_params = port.create_client(t.SetParametersAtomically,
+                                             f'{plan.controller}/set_parameters_atomically')
         self.activate = {s.skill: port.create_client(t.Trigger,
                                                      f'{plan.controller}/skills/{s.skill}/activate')
                          for s in plan.steps}
@@ -63,19 +64,30 @@ class Sequencer:
         return None
 
     def _apply(self, step: Any) -> str | None:
+        """Activate the step's skill; with tunables, in one atomic parameter call.
+
+        SetParametersAtomically with the tunables and activate_skill = <skill> makes the
+        controller apply both in the same tick, so a new goal never reaches a skill that is
+        still running (consecutive steps often reuse one skill). Without tunables the skill's
+        Trigger service is used.
+        """
         t = self.port.types
         if step.set:
-            params = [t.Parameter(name=f'{step.skill}.{name}', value=t.ParameterValue(
-                type=t.ParameterType.PARAMETER_DOUBLE, double_value=float(value)))
-                for name, value in step.set.items()]
+            def double(name: str, value: float) -> Any:
+                return t.Parameter(name=name, value=t.ParameterValue(
+                    type=t.ParameterType.PARAMETER_DOUBLE, double_value=float(value)))
+            params = [double(f'{step.skill}.{name}', value) for name, value in step.set.items()]
+            params.append(t.Parameter(name='activate_skill', value=t.ParameterValue(
+                type=t.ParameterType.PARAMETER_STRING, string_value=step.skill)))
             if not self.set_params.wait_for_service(10.0):
-                return f'{self.plan.controller}/set_parameters is not available'
-            reply = self.set_params.call(t.SetParameters.Request(parameters=params), 5.0)
+                return f'{self.plan.controller}/set_parameters_atomically is not available'
+            reply = self.set_params.call(t.SetParametersAtomically.Request(parameters=params),
+                                         5.0)
             if reply is None:
-                return 'no reply to set_parameters'
-            for param, result in zip(params, reply.results):
-                if not result.successful:
-                    return f'{param.name} rejected: {result.reason}'
+                return 'no reply to set_parameters_atomically'
+            if not reply.result.successful:
+                return f'parameters rejected: {reply.result.reason}'
+            return None
         client = self.activate[step.skill]
         if not client.wait_for_service(10.0):
             return f'skill {step.skill!r}: activate service not available'

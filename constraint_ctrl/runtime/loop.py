@@ -56,8 +56,9 @@ class LoopOutput:
 class _Request:
     """A switch asked for by another thread; ``done`` is set once the tick has handled it."""
 
-    def __init__(self, name: str) -> None:
+    def __init__(self, name: str, params: Mapping[int, float] | None = None) -> None:
         self.name = name
+        self.params = dict(params or {})
         self.done = threading.Event()
         self.ok = False
         self.message = ''
@@ -78,12 +79,15 @@ class ControlLoop:
         self._switch_failed = False
 
     # ------------------------------------------------------ other threads
-    def request_activation(self, name: str, timeout: float | None = None) -> tuple[bool, str]:
+    def request_activation(self, name: str, timeout: float | None = None,
+                           params: Mapping[int, float] | None = None) -> tuple[bool, str]:
         """Ask for ``name`` to become active at the next tick; wait for the outcome.
 
+        ``params`` (tunable index -> value of that skill) are applied in the same tick, just
+        before the switch, so a new goal never reaches the skill that is still running.
         Without ``timeout`` it returns at once with (True, 'requested').
         """
-        request = _Request(name)
+        request = _Request(name, params)
         with self._lock:
             if self._switch is not None:
                 self._switch.message = f'superseded by a request for {name!r}'
@@ -171,6 +175,8 @@ class ControlLoop:
             request.done.set()
             return None
         runner = loaded.runner
+        for index, value in request.params.items():
+            runner.solver.set_param(index, value)
         runner.activate(snap.q, self._last_command)
         self.active = runner
         request.ok, request.message = True, f'{request.name} active'
