@@ -18,6 +18,8 @@ setup(
         (os.path.join('share', PACKAGE, 'config'), glob('config/*.yaml')),
         (os.path.join('share', PACKAGE, 'config', 'robots'), glob('config/robots/*.urdf')),
         (os.path.join('share', PACKAGE, 'config', 'skills'), glob('config/skills/*.yaml')),
+        (os.path.join('share', PACKAGE, 'config', 'scenes'), glob('config/scenes/*.yaml')),
+        (os.path.join('share', PACKAGE, 'config', 'plans'), glob('config/plans/*.yaml')),
     ],
     python_requires='>=3.10',
     install_requires=[
@@ -43,6 +45,10 @@ setup(
     entry_points={
         'console_scripts': [
             'constraint-ctrl = constraint_ctrl.cli:main',
+            # Node executables for `ros2 run constraint_ctrl <name>` and launch files.
+            'controller_node = constraint_ctrl.nodes.controller_node:main',
+            'cell_simulator = constraint_ctrl.nodes.sim_node:main',
+            'task_sequencer = constraint_ctrl.nodes.sequencer_node:main',
         ],
     },
 )

@@ -1,0 +1,70 @@
+"""The gearbox work cell under ros2 launch: simulated cell, controller and task sequencer.
+
+It starts the same three nodes as `constraint-ctrl demo` (cell_simulator, the controller through
+controller.launch.py, task_sequencer with the installed plans/gearbox_assembly.yaml) and stops
+all of them as soon as one exits, normally when the sequencer finishes the plan. Unlike
+`constraint-ctrl demo` there is no evaluation step (no summary, criteria or plots) and no random
+ROS_DOMAIN_ID: the nodes use the caller's environment.
+
+Launch arguments:
+  transport    rclpy (default), dds or auto, for all three nodes
+  params_file  controller parameters (default: the installed config/controller.yaml)
+  plan         task plan YAML (default: the installed config/plans/gearbox_assembly.yaml)
+  record       folder for the controller's rosbag2 recording; '' (default) records nothing
+"""
+from __future__ import annotations
+
+import os
+
+from ament_index_python.packages import get_package_share_directory
+from launch import LaunchDescription
+from launch.actions import (DeclareLaunchArgument, EmitEvent, IncludeLaunchDescription,
+                            LogInfo, RegisterEventHandler, TimerAction)
+from launch.event_handlers import OnProcessExit
+from launch.events import Shutdown
+from launch.launch_description_sources import PythonLaunchDescriptionSource
+from launch.substitutions import LaunchConfiguration
+from launch_ros.actions import Node
+
+PACKAGE = 'constraint_ctrl'
+
+#: The sequencer starts this long after the cell and the controller (s), as the demo command
+#: waits before it; the sequencer also waits up to 10 s for the controller's services itself.
+SEQUENCER_DELAY = 2.0
+
+
+def generate_launch_description() -> LaunchDescription:
+    share = get_package_share_directory(PACKAGE)
+    transport = LaunchConfiguration('transport')
+    simulator = Node(package=PACKAGE, executable='cell_simulator', name='cell_simulator',
+                     arguments=['--transport', transport], output='screen')
+    controller = IncludeLaunchDescription(
+        PythonLaunchDescriptionSource(os.path.join(share, 'launch', 'controller.launch.py')),
+        launch_arguments={'transport': transport,
+                          'params_file': LaunchConfiguration('params_file'),
+                          'record': LaunchConfiguration('record')}.items())
+    sequencer = Node(package=PACKAGE, executable='task_sequencer', name='task_sequencer',
+                     arguments=[LaunchConfiguration('plan'), '--transport', transport],
+                     output='screen')
+    # No target: whichever of the three processes exits first ends the demo.
+    stop_all = RegisterEventHandler(OnProcessExit(on_exit=[
+        LogInfo(msg='demo: a node exited (the plan ended or a node stopped); shutting down'),
+        EmitEvent(event=Shutdown(reason='a demo node exited'))]))
+    return LaunchDescription([
+        DeclareLaunchArgument('transport', default_value='rclpy',
+                              choices=['rclpy', 'dds', 'auto'],
+                              description='rclpy, dds (direct Cyclone DDS) or auto'),
+        DeclareLaunchArgument('params_file',
+                              default_value=os.path.join(share, 'config', 'controller.yaml'),
+                              description='ROS 2 parameters file of the controller node'),
+        DeclareLaunchArgument('plan',
+                              default_value=os.path.join(share, 'config', 'plans',
+                                                         'gearbox_assembly.yaml'),
+                              description='task plan run by the sequencer'),
+        DeclareLaunchArgument('record', default_value='',
+                              description="new folder for a rosbag2 recording ('' = none)"),
+        stop_all,
+        simulator,
+        controller,
+        TimerAction(period=SEQUENCER_DELAY, actions=[sequencer]),
+    ])
