@@ -20,7 +20,11 @@ def config_dir() -> Path:
             pass
     except ImportError:
         pass
-    candidates.append(Path(__file__).resolve().parents[2] / 'config')
+    here = Path(__file__).resolve()
+    candidates.append(here.parents[2] / 'config')                 # source tree / editable
+    # a colcon install: <prefix>/lib/pythonX.Y/site-packages/constraint_ctrl/nodes/common.py
+    if len(here.parents) > 5:
+        candidates.append(here.parents[5] / 'share' / 'constraint_ctrl' / 'config')
     candidates.append(Path(sys.prefix) / 'share' / 'constraint_ctrl' / 'config')
     for path in candidates:
         if (path / 'robots').is_dir():

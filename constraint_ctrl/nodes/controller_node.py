@@ -477,15 +477,15 @@ def run(argv: list[str]) -> int:
     args = build_arg_parser().parse_args(ours)
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)
+    node = None
     try:
         node = ControllerNode(port, record=args.record)
-    except (ConstraintCtrlError, TransportError):
-        port.shutdown()
-        raise
-    try:
         port.spin()
+    except KeyboardInterrupt:
+        pass          # SIGINT before spin() took over the signal: a normal stop
     finally:
-        node.close()
+        if node is not None:
+            node.close()
         port.shutdown()
     return 0
 
