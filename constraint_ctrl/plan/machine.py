@@ -69,7 +69,9 @@ class PlanRunner:
         self.armed = False
         self.state = 'paused' if self._watchdog_stopped else 'running'
         step = self.plan.steps[index]
-        self.records.append(StepRecord(step.name, step.skill, now))
+        # A step entered while the watchdog holds the arm starts with a pause (counted).
+        self.records.append(StepRecord(step.name, step.skill, now,
+                                       pauses=int(self._watchdog_stopped)))
         self._paused_since = now if self._watchdog_stopped else None
         return Activate(step, index)
 

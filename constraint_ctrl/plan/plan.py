@@ -13,7 +13,8 @@ Our own YAML format::
         done_when: arrived                # event on ~/events that ends the step
         next: seat                        # optional: the step after (default: the next one)
         timeout: 15                       # s of motion; then on_timeout happens
-        on_timeout: abort                 # abort (default) or the name of a step
+        on_timeout: abort                 # abort (default) or the name of a step (so no step
+                                          # may be named abort)
 
 The sequencer only uses the controller's ROS interface (Trigger services, parameters, events),
 so it stands in for whatever sequencer a user already has.
@@ -69,9 +70,15 @@ def load_plan(path: str | Path) -> Plan:
             probe = probe.rsplit('.', 1)[0] if '.' in probe else ''
         return PlanError(message, file=source, line=lines.get(probe), field=field_path)
 
+    def finite(value: int | float) -> bool:
+        try:
+            return math.isfinite(value)
+        except OverflowError:  # an int beyond the float range
+            return False
+
     def number(value: Any, where: str, *, positive: bool = True) -> float:
         if isinstance(value, bool) or not isinstance(value, (int, float)) or \
-                not math.isfinite(value) or (positive and value <= 0):
+                not finite(value) or (positive and value <= 0):
             raise fail(f'expected a {"positive " if positive else ""}number, got {value!r}',
                        where)
         return float(value)
@@ -111,7 +118,7 @@ def load_plan(path: str | Path) -> Plan:
         settings = raw.get('set', {})
         if not isinstance(settings, dict):
             raise fail('expected a mapping of tunable: value', f'{where}.set')
-        values = {str(k): number(v, f'{where}.set.{k}', positive=False)
+        values = {name(k, f'{where}.set.{k}'): number(v, f'{where}.set.{k}', positive=False)
                   for k, v in settings.items()}
         steps.append(Step(
             name=name(raw['name'], f'{where}.name'), skill=name(raw['skill'], f'{where}.skill'),
@@ -121,7 +128,10 @@ def load_plan(path: str | Path) -> Plan:
             on_timeout=name(raw.get('on_timeout', 'abort'), f'{where}.on_timeout')))
     names = [s.name for s in steps]
     for i, step in enumerate(steps):
-        if names.count(step.name) > 1:
+        if step.name == 'abort':  # on_timeout: abort could not reach it
+            raise fail("'abort' is reserved for on_timeout; name the step differently",
+                       f'steps[{i}].name')
+        if step.name in names[:i]:  # located at the second use, like a duplicate YAML key
             raise fail(f'step name {step.name!r} is used twice', f'steps[{i}].name')
         for key, target in (('next', step.next), ('on_timeout', step.on_timeout)):
             if target is not None and target != 'abort' and target not in names:
