@@ -2,8 +2,10 @@
 
 States of the plan: waiting (not started), running, paused (the controller's watchdog holds the
 arm stopped: the step's timeout does not run), done, aborted. A step's done_when event only
-counts once its skill's activation has been confirmed, so a late event of the previous step
-cannot end the next one.
+counts once its skill's activation has been confirmed and only if it was received after the
+confirmation, so an event of the previous skill (events carry no skill name) cannot end the next
+step. The price: a done event the new skill raises within the activation's round trip (a few ms)
+is missed, so give done events a hold_for.
 """
 from __future__ import annotations
 
@@ -51,6 +53,7 @@ class PlanRunner:
     state: str = 'waiting'
     current: int = -1
     armed: bool = False
+    armed_at: float = float('inf')
     records: list[StepRecord] = field(default_factory=list)
     finish: Finish | None = None
     _paused_since: float | None = None
@@ -67,6 +70,7 @@ class PlanRunner:
     def _enter(self, index: int, now: float) -> Activate:
         self.current = index
         self.armed = False
+        self.armed_at = float('inf')
         self.state = 'paused' if self._watchdog_stopped else 'running'
         step = self.plan.steps[index]
         # A step entered while the watchdog holds the arm starts with a pause (counted).
@@ -76,7 +80,9 @@ class PlanRunner:
         return Activate(step, index)
 
     def activated(self, now: float) -> None:
+        """The controller confirmed the switch at ``now``; earlier events belong to the old skill."""
         self.armed = True
+        self.armed_at = now
 
     def activation_failed(self, reason: str, now: float) -> Finish:
         return self._end('aborted', f'step {self.step.name if self.step else "?"}: '
@@ -98,7 +104,7 @@ class PlanRunner:
                 self._resume(now)
             return None
         step = self.step
-        if step is not None and self.armed and name == step.done_when:
+        if step is not None and self.armed and now >= self.armed_at and name == step.done_when:
             self._close_step('done', now)
             return self._advance(step.next, now)
         return None

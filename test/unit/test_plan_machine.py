@@ -242,3 +242,19 @@ def test_records_stay_consistent_under_any_event_order(script: list[tuple[str, f
         assert runner.finish is not None and runner.finish.reason.startswith('step ')
         if 'watchdog kept' in runner.finish.reason:
             assert runner.records[-1].paused_s > wait
+
+
+def test_done_event_received_before_the_switch_was_confirmed_is_ignored() -> None:
+    """An event queued while the activation call ran belongs to the previous skill."""
+    from constraint_ctrl.plan.machine import Activate, PlanRunner
+    from constraint_ctrl.plan.plan import Plan, Step
+    plan = Plan(name='p', controller='/c', steps=(
+        Step('a', 'move', 'arrived', 10.0), Step('b', 'move', 'arrived', 10.0)))
+    runner = PlanRunner(plan)
+    runner.start(0.0)
+    runner.activated(0.1)
+    assert isinstance(runner.on_event('arrived', 1.0), Activate)   # step a done -> b
+    runner.activated(1.05)                                        # b confirmed at 1.05
+    assert runner.on_event('arrived', 1.02) is None               # sent before: ignored
+    assert runner.step.name == 'b'
+    assert runner.on_event('arrived', 2.0).outcome == 'done'
