@@ -110,6 +110,7 @@ class ControllerNode:
         self._inputs: dict[str, InputSample] = {}
         self._people: dict[str, PersonSample] = {}
         self._last_tick = 0.0
+        self._closing = False
         self._ticks = 0
         self._errors = 0
 
@@ -244,7 +245,7 @@ class ControllerNode:
                             missing_joints=missing if self._js_stamp is not None else [])
 
     def _tick(self) -> None:
-        if not self._tick_lock.acquire(blocking=False):
+        if self._closing or not self._tick_lock.acquire(blocking=False):
             return
         try:
             snap = self._snapshot()
@@ -252,18 +253,18 @@ class ControllerNode:
             if self._initial and snap.q is not None:
                 self.loop.request_activation(self._initial)
                 self._initial = ''
-            try:
-                out = self.loop.step(snap)
-            except Exception:  # noqa: BLE001 - any bug in a tick must end in a zero command
-                self._errors += 1
-                self._send_zero()
-                self.port.log('error', 'tick failed, zero command sent:\n'
-                              + traceback.format_exc())
-                return
+            out = self.loop.step(snap)
             self._send(out)
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
+        except Exception:  # noqa: BLE001 - any failure in a tick must end in a zero command
+            self._errors += 1
+            try:
+                self._send_zero()
+            finally:
+                self.port.log('error', 'tick failed, zero command sent:\n'
+                              + traceback.format_exc())
         finally:
             self._tick_lock.release()
 
@@ -293,9 +294,9 @@ class ControllerNode:
                           self.port.types.String(data=f'activated_{out.activated}'))
         for tr in out.watchdog.transitions:
             values = ', '.join(f'{k}={v:.4g}' for k, v in tr.values.items())
-            self.port.log('warn' if tr.to_state.value != 'normal' else 'info',
-                          f'watchdog {tr.from_state.value} -> {tr.to_state.value}: {tr.reason}'
-                          + (f' ({values})' if values else ''))
+            text = (f'watchdog {tr.from_state.value} -> {tr.to_state.value}: {tr.reason}'
+                    + (f' ({values})' if values else ''))
+            self.port.log('info' if tr.to_state.value == 'normal' else 'warn', text)
 
     def _send_zero(self) -> None:
         array, joint = self._command_messages(np.zeros(self.model.n_joints))
@@ -453,10 +454,8 @@ class ControllerNode:
 
     # ------------------------------------------------------------ shutdown
     def close(self) -> None:
-        try:
-            self.timer.cancel()
-        except Exception:  # noqa: BLE001 - shutting down anyway
-            pass
+        """After spin() returned (callbacks no longer run on either transport): zero, close."""
+        self._closing = True
         with self._tick_lock:
             for _ in range(3):
                 self._send_zero()

@@ -138,7 +138,10 @@ def run(argv: list[str]) -> int:
             report['t0_wall'] = sequencer.t0_wall
             args.report.write_text(json.dumps(report, indent=2) + '\n')
     finally:
-        port.shutdown()
+        port.shutdown()             # ends spin() on the spinner thread ...
+        if spinner.is_alive():
+            spinner.join(timeout=5.0)
+        port.shutdown()             # ... then destroys the node and the middleware context
     return 0 if finish.outcome == 'done' else 1
 
 

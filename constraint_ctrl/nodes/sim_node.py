@@ -176,7 +176,6 @@ class SimNode:
                                   z=float(position[2]))))
 
     def close(self) -> None:
-        self.timer.cancel()
         if self.log is not None:
             self.log.write()
 

@@ -29,7 +29,7 @@ from cyclonedds.pub import DataWriter
 from cyclonedds.topic import Topic
 
 from constraint_ctrl.errors import TransportError
-from constraint_ctrl.transport.dds_qos import writer_qos
+from constraint_ctrl.transport.dds_qos import type_hash_tag, writer_qos
 from constraint_ctrl.transport.qos import DISCOVERY_INFO
 
 LOOPBACK_CONFIG = (
@@ -86,7 +86,10 @@ class NodeAnnouncer:
         self._writers: dict[bytes, Any] = {}
         self._dead: list[bytes] = []
         topic = Topic(participant, DISCOVERY_TOPIC, types.ParticipantEntitiesInfo)
-        self.writer = DataWriter(participant, topic, writer_qos(DISCOVERY_INFO))
+        distro = 'humble' if types.ParticipantEntitiesInfo.__name__.endswith('Humble') \
+            else 'jazzy'
+        self.writer = DataWriter(participant, topic, writer_qos(
+            DISCOVERY_INFO, type_hash_tag('rmw_dds_common/msg/ParticipantEntitiesInfo', distro)))
 
     def update(self, *, readers: tuple[Any, ...] = (), writers: tuple[Any, ...] = (),
                removed: tuple[Any, ...] = ()) -> None:

@@ -42,7 +42,7 @@ from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport.dds_discovery import NodeAnnouncer, domain_id, ensure_cyclone_config
 from constraint_ctrl.transport.dds_dispatch import Dispatcher, FixedRateTimer
 from constraint_ctrl.transport.dds_parameters import ParameterStore
-from constraint_ctrl.transport.dds_qos import reader_qos, writer_qos
+from constraint_ctrl.transport.dds_qos import reader_qos, type_hash_tag, writer_qos
 from constraint_ctrl.transport.dds_services import ServiceClient, ServiceServer
 from constraint_ctrl.transport.dds_types import ros_type_of, types_for
 from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS, ParameterView
@@ -176,7 +176,8 @@ class DdsPort:
 
     def create_publisher(self, msg_type: Any, topic: str, qos: str) -> DdsPublisher:
         fqn, dds_topic = self._topic(msg_type, topic)
-        writer = DataWriter(self._participant, dds_topic, writer_qos(profile(qos)))
+        tag = type_hash_tag(ros_type_of(msg_type), self.distro)
+        writer = DataWriter(self._participant, dds_topic, writer_qos(profile(qos), tag))
         self._writers.append(writer)
         self._announcer.update(writers=(writer,))
         return DdsPublisher(writer, msg_type, fqn)
@@ -184,7 +185,8 @@ class DdsPort:
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
                             qos: str) -> DdsSubscription:
         fqn, dds_topic = self._topic(msg_type, topic)
-        reader = DataReader(self._participant, dds_topic, reader_qos(profile(qos)))
+        tag = type_hash_tag(ros_type_of(msg_type), self.distro)
+        reader = DataReader(self._participant, dds_topic, reader_qos(profile(qos), tag))
         self._topic_dispatch.add(reader, callback, f'subscription {fqn}')
         self._announcer.update(readers=(reader,))
         return DdsSubscription(reader, fqn)

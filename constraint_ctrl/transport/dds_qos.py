@@ -7,6 +7,8 @@ from ROS's.
 """
 from __future__ import annotations
 
+import functools
+
 from cyclonedds.qos import Policy, Qos
 from cyclonedds.util import duration
 
@@ -24,6 +26,22 @@ def _common(p: QosProfile, user_data: bytes) -> list[object]:
     if user_data:
         policies.append(Policy.Userdata(data=user_data))
     return policies
+
+
+@functools.cache
+def type_hash_tag(ros_type: str, distro: str) -> bytes:
+    """Endpoint USER_DATA ``typehash=RIHS01_<sha256>;`` as rmw_cyclonedds_cpp writes it since
+    Iron (ros2-interop.md 4.3); ROS only displays it, but without it a Jazzy peer logs a
+    warning per endpoint. Humble has no type hashes: empty. Hashes come from rosbags' type
+    store (checked against a real Jazzy value for sensor_msgs/msg/JointState)."""
+    if distro == 'humble':
+        return b''
+    from rosbags.typesys import Stores, get_typestore
+    try:
+        value = get_typestore(Stores.ROS2_JAZZY).hash_rihs01(ros_type)
+    except Exception:  # noqa: BLE001 - a type rosbags does not know: no tag, as on Humble
+        return b''
+    return f'typehash={value};'.encode()
 
 
 def writer_qos(p: QosProfile, user_data: bytes = b'') -> Qos:

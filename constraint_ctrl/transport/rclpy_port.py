@@ -172,9 +172,17 @@ class RclpyPort:
         if level not in LOG_LEVELS:
             msg = f'log level {level!r} is unknown; use one of {", ".join(LOG_LEVELS)}'
             raise TransportError(msg)
+        # rclpy remembers the severity of each call site (file and line) and raises if one
+        # site logs at two severities, so every level needs its own line here.
         logger = self.node.get_logger()
-        {'debug': logger.debug, 'info': logger.info, 'warn': logger.warning,
-         'error': logger.error}[level](text)
+        if level == 'debug':
+            logger.debug(text)
+        elif level == 'info':
+            logger.info(text)
+        elif level == 'warn':
+            logger.warning(text)
+        else:
+            logger.error(text)
 
     # --- entities --------------------------------------------------------------------------
 
