@@ -20,6 +20,8 @@ a tick publishes a zero command; so does shutdown.
 from __future__ import annotations
 
 import argparse
+import gc
+import json
 import threading
 import time
 import traceback
@@ -111,6 +113,10 @@ class ControllerNode:
         self._people: dict[str, PersonSample] = {}
         self._last_tick = 0.0
         self._closing = False
+        # arrival of a joint_states sample -> its command published (tick_on joint_states)
+        self._arrived_ns = 0
+        self._latency_ns = np.zeros(1 << 20, dtype=np.int64)
+        self._latency_count = 0
         self._ticks = 0
         self._errors = 0
 
@@ -188,6 +194,7 @@ class ControllerNode:
                             time.monotonic())
 
     def _on_joint_states(self, msg: Any) -> None:
+        arrived = time.perf_counter_ns()
         names = list(msg.name)
         positions = list(msg.position)
         if len(positions) != len(names):
@@ -202,6 +209,7 @@ class ControllerNode:
             self._js_stamp = stamp
             self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
         if self.tick_on == 'joint_states':
+            self._arrived_ns = arrived
             self._tick()
 
     def _input_callback(self, mapping: InputMapping) -> Any:
@@ -255,6 +263,11 @@ class ControllerNode:
                 self._initial = ''
             out = self.loop.step(snap)
             self._send(out)
+            if self._arrived_ns:
+                self._latency_ns[self._latency_count % self._latency_ns.size] = \
+                    time.perf_counter_ns() - self._arrived_ns
+                self._latency_count += 1
+                self._arrived_ns = 0
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
@@ -452,6 +465,24 @@ class ControllerNode:
         for skill, changes in per_skill.items():
             self.loop.set_parameters(skill, changes)
 
+    def stats(self) -> dict[str, Any]:
+        """Measured on the node's monotonic clock: latency sample arrival -> command published
+        (tick_on joint_states only), switch delays in ticks, ticks, missed timer periods."""
+        n = min(self._latency_count, self._latency_ns.size)
+        lat = self._latency_ns[:n] / 1000.0
+        delays = np.array(self.loop.switch_delays) / self.dt
+        pct = (lambda a, q: round(float(np.percentile(a, q)), 2)) if n else None
+        return {
+            'ticks': self._ticks, 'tick_errors': self._errors,
+            'timer_missed': int(getattr(self.timer, 'missed', 0)),
+            'latency_us': None if not n else {
+                'samples': int(n), 'p50': pct(lat, 50), 'p90': pct(lat, 90),
+                'p99': pct(lat, 99), 'max': round(float(lat.max()), 2)},
+            'switch_delay_ticks': None if not delays.size else {
+                'count': int(delays.size), 'p50': round(float(np.median(delays)), 3),
+                'max': round(float(delays.max()), 3)},
+        }
+
     # ------------------------------------------------------------ shutdown
     def close(self) -> None:
         """After spin() returned (callbacks no longer run on either transport): zero, close."""
@@ -468,6 +499,7 @@ def build_arg_parser() -> argparse.ArgumentParser:
                                      description='Start the controller node.')
     transport_options(parser)
     parser.add_argument('--record', type=Path, help='write a rosbag2 (MCAP) to this new folder')
+    parser.add_argument('--stats', type=Path, help='write timing statistics (JSON) at exit')
     return parser
 
 
@@ -479,12 +511,16 @@ def run(argv: list[str]) -> int:
     node = None
     try:
         node = ControllerNode(port, record=args.record)
+        gc.collect()
+        gc.freeze()   # start-up objects leave the collector's work: fewer, shorter pauses
         port.spin()
     except KeyboardInterrupt:
         pass          # SIGINT before spin() took over the signal: a normal stop
     finally:
         if node is not None:
             node.close()
+            if args.stats:
+                args.stats.write_text(json.dumps(node.stats(), indent=2) + '\n')
         port.shutdown()
     return 0
 

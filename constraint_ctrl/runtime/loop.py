@@ -12,6 +12,7 @@ solved, the switch counts as failed and the watchdog stops the arm.
 from __future__ import annotations
 
 import threading
+import time
 from dataclasses import dataclass, field
 from typing import Mapping, Sequence
 
@@ -59,6 +60,7 @@ class _Request:
     def __init__(self, name: str, params: Mapping[int, float] | None = None) -> None:
         self.name = name
         self.params = dict(params or {})
+        self.asked_at = time.monotonic()
         self.done = threading.Event()
         self.ok = False
         self.message = ''
@@ -77,6 +79,8 @@ class ControlLoop:
         self._params: list[tuple[str, int, float]] = []
         self._last_command = np.zeros(watchdog.config.n_joints)
         self._switch_failed = False
+        #: seconds from each activation request to the tick that ran the new skill first
+        self.switch_delays: list[float] = []
 
     # ------------------------------------------------------ other threads
     def request_activation(self, name: str, timeout: float | None = None,
@@ -179,7 +183,10 @@ class ControlLoop:
             runner.solver.set_param(index, value)
         runner.activate(snap.q, self._last_command)
         self.active = runner
-        request.ok, request.message = True, f'{request.name} active'
+        delay = max(0.0, time.monotonic() - request.asked_at)
+        self.switch_delays.append(delay)
+        request.ok = True
+        request.message = f'{request.name} active ({delay * 1000:.2f} ms after the request)'
         request.done.set()
         return request.name
 
