@@ -2,7 +2,9 @@
 from __future__ import annotations
 
 import argparse
+import gc
 import sys
+from typing import Any, Callable
 from pathlib import Path
 
 from ..transport.port import DISTROS, TRANSPORTS
@@ -32,6 +34,27 @@ def config_dir() -> Path:
     return candidates[-1]
 
 
+def serve(port: Any, build: Callable[[], Any]) -> Any | None:
+    """Build a node on ``port``, spin until shutdown or SIGINT, then close node and port.
+
+    ``close()`` of the node runs after spin() has returned (callbacks no longer run) and before
+    the port goes away, so it can still publish its final zero command. Returns the node.
+    """
+    node = None
+    try:
+        node = build()
+        gc.collect()
+        gc.freeze()   # start-up objects leave the collector's work: fewer, shorter pauses
+        port.spin()
+    except KeyboardInterrupt:
+        pass          # SIGINT before spin() took over the signal: a normal stop
+    finally:
+        if node is not None:
+            node.close()
+        port.shutdown()
+    return node
+
+
 def split_ros_args(argv: list[str]) -> tuple[list[str], list[str]]:
     """(our options, ROS arguments from --ros-args on) — ROS arguments go to the port as is."""
     if '--ros-args' in argv:
@@ -47,4 +70,4 @@ def transport_options(parser: argparse.ArgumentParser) -> None:
                         help='ROS 2 wire layout for the DDS transport and bags')
 
 
-__all__ = ['config_dir', 'split_ros_args', 'transport_options']
+__all__ = ['config_dir', 'serve', 'split_ros_args', 'transport_options']

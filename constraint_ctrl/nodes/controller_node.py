@@ -20,7 +20,6 @@ a tick publishes a zero command; so does shutdown.
 from __future__ import annotations
 
 import argparse
-import gc
 import json
 import threading
 import time
@@ -37,7 +36,7 @@ from ..runtime.loop import ControlLoop, InputSample, LoopOutput, Snapshot
 from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
 from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
-from .common import config_dir, split_ros_args, transport_options
+from .common import config_dir, serve, split_ros_args, transport_options
 from .inputs import TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     parse_input_mappings
 from .status import build_status
@@ -398,11 +397,11 @@ class ControllerNode:
         loaded.runner.solver.p[list(values)] = list(values.values())
 
     # ---------------------------------------------------------- parameters
-    def _split(self, name: str) -> tuple[str, str] | None:
+    def _tunable(self, name: str) -> tuple[str, Any, str] | None:
+        """(skill, its LoadedSkill, tunable) for a parameter '<skill>.<tunable>', else None."""
         skill, _, rest = name.partition('.')
-        if rest and self.library.get(skill) is not None:
-            return skill, rest
-        return None
+        loaded = self.library.get(skill) if rest else None
+        return (skill, loaded, rest) if loaded is not None else None
 
     def _validate_parameters(self, values: dict[str, Any]) -> tuple[bool, str]:
         for name, value in values.items():
@@ -421,12 +420,10 @@ class ControllerNode:
                 if not isinstance(value, bool):
                     return False, f'{name} must be true or false, got {value!r}'
                 continue
-            split = self._split(name)
-            if split is None:
+            found = self._tunable(name)
+            if found is None:
                 continue
-            skill, param = split
-            loaded = self.library.get(skill)
-            assert loaded is not None
+            skill, loaded, param = found
             try:
                 info = loaded.compiled.params[loaded.compiled.param_index(param)]
             except KeyError:
@@ -445,13 +442,10 @@ class ControllerNode:
             if name == 'watchdog.reduced_mode':
                 self.watchdog.set_reduced_mode(bool(value))
                 continue
-            split = self._split(name)
-            if split is None:
+            found = self._tunable(name)
+            if found is None:
                 continue
-            skill, param = split
-            loaded = self.library.get(skill)
-            if loaded is None:
-                continue
+            skill, loaded, param = found
             per_skill.setdefault(skill, {})[loaded.compiled.param_index(param)] = float(value)
         if target is not None:
             # tunables of the skill being activated go in with the switch, in one tick
@@ -508,20 +502,9 @@ def run(argv: list[str]) -> int:
     args = build_arg_parser().parse_args(ours)
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)
-    node = None
-    try:
-        node = ControllerNode(port, record=args.record)
-        gc.collect()
-        gc.freeze()   # start-up objects leave the collector's work: fewer, shorter pauses
-        port.spin()
-    except KeyboardInterrupt:
-        pass          # SIGINT before spin() took over the signal: a normal stop
-    finally:
-        if node is not None:
-            node.close()
-            if args.stats:
-                args.stats.write_text(json.dumps(node.stats(), indent=2) + '\n')
-        port.shutdown()
+    node = serve(port, lambda: ControllerNode(port, record=args.record))
+    if node is not None and args.stats:
+        args.stats.write_text(json.dumps(node.stats(), indent=2) + '\n')
     return 0
 
 

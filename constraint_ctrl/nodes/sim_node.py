@@ -28,7 +28,7 @@ from ..errors import ConstraintCtrlError
 from ..model.kinematics import RobotModel
 from ..sim.scene import load_scene
 from ..sim.world import World
-from .common import config_dir, split_ros_args, transport_options
+from .common import config_dir, serve, split_ros_args, transport_options
 
 NODE_NAME = 'cell_simulator'
 RANGE_FRAMES = ('range_left', 'range_right', 'range_front')
@@ -189,16 +189,7 @@ def run(argv: list[str]) -> int:
     args = parser.parse_args(ours)
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)
-    node = None
-    try:
-        node = SimNode(port, log=args.log)
-        port.spin()
-    except KeyboardInterrupt:
-        pass          # SIGINT before spin() took over the signal: a normal stop
-    finally:
-        if node is not None:
-            node.close()
-        port.shutdown()
+    serve(port, lambda: SimNode(port, log=args.log))
     return 0
 
 

@@ -16,30 +16,13 @@ from typing import Any, TypeVar
 
 import yaml
 
-from ..errors import ConstraintCtrlError
+from ..errors import LocatedError
 
 T = TypeVar('T')
 
 
-class SceneError(ConstraintCtrlError):
+class SceneError(LocatedError):
     """A scene file that cannot be used; carries file, line (1-based) and dotted field."""
-
-    def __init__(self, message: str, *, file: str | None = None, line: int | None = None,
-                 field: str | None = None) -> None:
-        self.message = message
-        self.file = file
-        self.line = line
-        self.field = field
-        super().__init__(self.__str__())
-
-    def __str__(self) -> str:
-        where = ''
-        if self.file:
-            where = self.file + (f':{self.line}' if self.line else '') + ': '
-        elif self.line:
-            where = f'line {self.line}: '
-        what = f'{self.field}: ' if self.field else ''
-        return f'{where}{what}{self.message}'
 
 
 # -- plain data -------------------------------------------------------------------------------
