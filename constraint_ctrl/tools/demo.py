@@ -25,6 +25,11 @@ from ..nodes.common import config_dir
 
 #: Wall-clock budget of the whole plan (s); the issue asks for under 3 minutes in all.
 PLAN_BUDGET = 150.0
+#: Demo-only reduced speed at the monitored points (m/s). The arm follows the flange at 25 mm/s,
+#: far below the ISO 10218-1 reduced speed of 0.25 m/s (the node's default), so with the default
+#: an operator entering the zone would change the state but not the motion; 15 mm/s makes the
+#: slowdown visible before the separation stop.
+DEMO_REDUCED_SPEED = 0.015
 
 
 def _spawn(args: list[str], log: Path, env: dict[str, str]) -> subprocess.Popen:
@@ -64,7 +69,9 @@ def run_demo(out: Path, transport: str = 'dds', plan: Path | None = None,
                  logs / 'sim.log', env)
     ctrl = _spawn(['run', '--transport', transport, '--record', str(out / 'bag'),
                    '--ros-args', '--params-file', str(controller_params),
-                   '-p', 'status_rate_hz:=50.0'], logs / 'controller.log', env)
+                   '-p', 'status_rate_hz:=50.0',
+                   '-p', f'watchdog.reduced_speed:={DEMO_REDUCED_SPEED}'],
+                  logs / 'controller.log', env)
     started = time.monotonic()
     try:
         time.sleep(2.0)
