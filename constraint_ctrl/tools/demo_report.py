@@ -162,6 +162,18 @@ def evaluate(out: Path) -> dict[str, Any]:
             'value': {'stopped_at_s': operator_stop, 'resumed_at_s': resumed[:1],
                       'plan': steps['outcome']}},
     }
+    labels = {
+        'seated_within_20_s': 'gear seated within 20 s of simulated time (s)',
+        'standoff_rms_at_most_0_5_mm': 'stand-off error RMS <= 0.5 mm while following (mm)',
+        'every_sensor_in_range_while_following': 'every sensor in its range while following '
+                                                 '(minimum per sensor, mm)',
+        'separation_never_below_protective_distance_while_moving':
+            'separation never below S_p while moving (smallest margin, m)',
+        'stopped_for_operator_then_resumed_and_finished':
+            'stopped for the operator, resumed, finished',
+    }
+    for key, label in labels.items():
+        criteria[key]['label'] = label
     summary = {
         'plan_outcome': steps['outcome'], 'plan_reason': steps.get('reason', ''),
         'steps': steps['steps'],
@@ -187,7 +199,7 @@ def _markdown(s: dict[str, Any]) -> str:
         lines.append(f"| {st['name']} | {st['skill']} | {st['outcome']} | {dur} | "
                      f"{st['paused_s']:.2f} |")
     f = s['following']
-    lines += ['', f"Seated: {s['seated']['seated']} at {s['seated']['simulated_time_s']} s "
+    lines += ['', f"Seated: {s['seated']['seated']} at {_short(s['seated']['simulated_time_s'])} s "
               '(simulated time)',
               f"Stand-off while following (true, tool axis, first {f.get('settle_excluded_s')} s "
               f"excluded): RMS {f.get('rms_error_mm') or float('nan'):.3f} mm, max "
@@ -202,9 +214,20 @@ def _markdown(s: dict[str, Any]) -> str:
                                                   for t, n in s['watchdog_transitions']), '',
               '| criterion | passed | value |', '|---|---|---|']
     for name, c in s['criteria'].items():
-        lines.append(f"| {name.replace('_', ' ')} | {'yes' if c['passed'] else 'NO'} | "
-                     f"{c['value']} |")
+        lines.append(f"| {c.get('label', name)} | {'yes' if c['passed'] else 'NO'} | "
+                     f"{_short(c['value'])} |")
     return '\n'.join(lines) + '\n'
+
+
+def _short(value: Any) -> str:
+    """Readable table cell: floats to 4 significant digits, lists and dicts likewise."""
+    if isinstance(value, float):
+        return f'{value:.4g}'
+    if isinstance(value, list):
+        return '[' + ', '.join(_short(v) for v in value) + ']'
+    if isinstance(value, dict):
+        return ', '.join(f'{k}: {_short(v)}' for k, v in value.items())
+    return str(value)
 
 
 def _mm(values: Any) -> str:
