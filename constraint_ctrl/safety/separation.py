@@ -19,9 +19,11 @@ does not meet ISO 13849-1 / IEC 62061 and must never be the only protection for 
 """
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, fields
 
+import casadi
 import numpy as np
 
 from constraint_ctrl.errors import ConstraintCtrlError
@@ -110,13 +112,86 @@ def max_robot_speed(separation: float, params: SeparationParams) -> float:
     return 2.0 * d / (quad.b + math.sqrt(quad.b * quad.b + 4.0 * quad.a2 * d))
 
 
+@functools.lru_cache(maxsize=64)
+def _pair_functions(k: int, m: int) -> tuple[casadi.Function, casadi.Function]:
+    """The casadi Functions of ``_PairKernel`` for k points and m people.
+
+    Radii and S_p coefficients are inputs, so one build (about a millisecond) serves every
+    monitor of that size in the process.
+    """
+    sx = casadi.SX
+    pts, ppl, mov = sx.sym('points', 3, k), sx.sym('people', 3, m), sx.sym('moved', 1, m)
+    radii, coef = sx.sym('radii', 1, k), sx.sym('coefficients', 4)
+    standstill, a2, quarter_b2, half_b = (coef[i] for i in range(4))
+    point_of = [i for i in range(k) for _ in range(m)]      # pair c = i m + j: row-major (k, m)
+    person_of = list(range(m)) * k
+    diff = ppl[:, person_of] - pts[:, point_of]                           # 3 x km
+    dist = casadi.sqrt(diff[0, :] * diff[0, :] + diff[1, :] * diff[1, :]
+                       + diff[2, :] * diff[2, :])
+    sep = (dist - radii[:, point_of]) - mov[:, person_of]
+    d = casadi.fmax(sep - standstill, 0.0)
+    vmax = d / (casadi.sqrt(d * a2 + quarter_b2) + half_b)
+    measure = casadi.Function('separation_measure', [pts, ppl, mov, radii, coef],
+                              [sep, dist, diff, dist * vmax])
+    diff_in, denom_in = sx.sym('diff', 3, k * m), sx.sym('denom', 1, k * m)
+    vel = sx.sym('velocities', 3, k)
+    v = vel[:, point_of]
+    load = (diff_in[0, :] * v[0, :] + diff_in[1, :] * v[1, :]
+            + diff_in[2, :] * v[2, :]) / denom_in
+    return measure, casadi.Function('separation_load', [diff_in, denom_in, vel], [load])
+
+
+class _PairKernel:
+    """The per-tick separation arithmetic for k points and m people as two compiled casadi
+    evaluations into preallocated buffers (one numpy call costs about as much as the whole
+    evaluation on arrays this small).
+
+    The expressions are the monitor's formulas, operation by operation and in the same order,
+    so the results are those of the elementwise numpy version. Buffers (all C-ordered views):
+    inputs ``points`` (k, 3), ``people`` (m, 3), ``moved`` (m,), ``velocities`` (k, 3); results
+    ``sep``, ``dist``, ``denom`` (k, m), ``diff`` (k, m, 3) from ``measure`` and ``load`` (k, m)
+    from ``load_eval``.
+    """
+
+    def __init__(self, radii: np.ndarray, m: int, coefficients: tuple[float, ...]) -> None:
+        k = radii.size
+        measure, load_fn = _pair_functions(k, m)
+        flat = {name: np.zeros(size) for name, size in (
+            ('points', 3 * k), ('people', 3 * m), ('moved', m), ('sep', k * m),
+            ('dist', k * m), ('diff', 3 * k * m), ('denom', k * m), ('velocities', 3 * k),
+            ('load', k * m))}
+        flat['radii'] = np.array(radii, dtype=float)
+        flat['coefficients'] = np.array(coefficients, dtype=float)
+        self._flat = flat                 # keeps the memory behind the casadi buffers alive
+        self._measure_buf, self.measure = measure.buffer()
+        for i, name in enumerate(('points', 'people', 'moved', 'radii', 'coefficients')):
+            self._measure_buf.set_arg(i, memoryview(flat[name]))
+        for i, name in enumerate(('sep', 'dist', 'diff', 'denom')):
+            self._measure_buf.set_res(i, memoryview(flat[name]))
+        self._load_buf, self.load_eval = load_fn.buffer()
+        for i, name in enumerate(('diff', 'denom', 'velocities')):
+            self._load_buf.set_arg(i, memoryview(flat[name]))
+        self._load_buf.set_res(0, memoryview(flat['load']))
+        self.points = flat['points'].reshape(k, 3)
+        self.people = flat['people'].reshape(m, 3)
+        self.moved = flat['moved']
+        self.velocities = flat['velocities'].reshape(k, 3)
+        self.sep = flat['sep'].reshape(k, m)
+        self.dist = flat['dist'].reshape(k, m)
+        self.diff = flat['diff'].reshape(k, m, 3)
+        self.denom = flat['denom'].reshape(k, m)
+        self.load = flat['load'].reshape(k, m)
+
+
 class SeparationMonitor:
     """Per-tick separation check of k monitored points against m person positions.
 
     ``measure`` does the geometry (depends on q and the people only); ``scale`` then turns a
     candidate command's point velocities into the uniform factor. Splitting them lets the
-    watchdog decide stops and zones before it has shaped the command. Permitted speeds are
-    computed lazily, once per ``measure``, because a stopped robot never needs them.
+    watchdog decide stops and zones before it has shaped the command. The arithmetic runs in a
+    compiled kernel per number of people (``_PairKernel``, built on first use and kept);
+    the full permitted-speed array is computed lazily, because the watchdog needs only the
+    closest pair's.
     """
 
     def __init__(self, params: SeparationParams, radii: np.ndarray, *,
@@ -137,12 +212,21 @@ class SeparationMonitor:
         self.min_separation = math.inf
         self.closest_point = -1
         self.closest_person = -1
+        self._kernels: dict[int, _PairKernel] = {}
+        self._kernel: _PairKernel | None = None      # the one the last ``measure`` filled
         self._diff: np.ndarray = np.empty((0, 0, 3))
         self._dist: np.ndarray = np.empty((0, 0))
         self._sep: np.ndarray = np.empty((0, 0))
         self._vmax: np.ndarray | None = None
-        self._denom: np.ndarray | None = None
         self._load: np.ndarray | None = None
+
+    def prepare(self, n_people: int) -> None:
+        """Set up the kernel for ``n_people`` now instead of in a tick (the first one of a size
+        in the process builds its casadi Functions, about a millisecond)."""
+        if n_people > 0 and n_people not in self._kernels:
+            self._kernels[n_people] = _PairKernel(
+                self.radii[:, 0], n_people,
+                (self.standstill, self._a2, self._quarter_b2, self._half_b))
 
     @property
     def too_close(self) -> bool:
@@ -168,21 +252,28 @@ class SeparationMonitor:
         """
         m = people.shape[0]
         self.n_people = m
-        self._vmax = self._denom = self._load = None
+        self._vmax = self._load = None
         if m == 0:
             self.min_separation = math.inf
             self.closest_point = self.closest_person = -1
             return
-        diff = people - points[:, np.newaxis, :]                           # (k, m, 3)
-        dist = np.add.reduce(diff * diff, axis=2)
-        np.sqrt(dist, out=dist)
-        sep = dist - self.radii
-        if moved is not None:
-            sep -= moved
+        kernel = self._kernels.get(m)
+        if kernel is None:
+            self.prepare(m)
+            kernel = self._kernels[m]
+        kernel.points[:] = points
+        kernel.people[:] = people
+        if moved is None:
+            kernel.moved[:] = 0.0     # x - 0.0 == x: the same separations as not subtracting
+        else:
+            kernel.moved[:] = moved
+        kernel.measure()
+        sep = kernel.sep
         flat = int(sep.argmin())
         self.closest_point, self.closest_person = divmod(flat, m)
-        self.min_separation = float(sep.flat[flat])
-        self._diff, self._dist, self._sep = diff, dist, sep
+        self.min_separation = sep.item(flat)
+        self._kernel = kernel
+        self._diff, self._dist, self._sep = kernel.diff, kernel.dist, sep
 
     def permitted_speeds(self) -> np.ndarray:
         """vmax_ij from the last ``measure``, shape (k, m), m/s (0 at or inside S_p(0))."""
@@ -216,13 +307,14 @@ class SeparationMonitor:
             return 1.0
         if self.too_close:   # some vmax is 0: any approach at all must stop
             return 0.0 if self.directed_speeds(velocities).any() else 1.0
-        if self._denom is None:
-            self._denom = self._dist * self.permitted_speeds()    # > 0 when not too close
-        # speed_ij / vmax_ij = (h_j - p_i) . v_i / (|h_j - p_i| vmax_ij)
-        load = np.matmul(self._diff, velocities[:, :, np.newaxis])[:, :, 0]
-        load /= self._denom
-        self._load = load
-        worst = float(load.flat[load.argmax()])
+        # speed_ij / vmax_ij = (h_j - p_i) . v_i / (|h_j - p_i| vmax_ij); the denominator
+        # |h_j - p_i| vmax_ij (> 0 when not too close) comes from ``measure``.
+        kernel = self._kernel
+        assert kernel is not None
+        kernel.velocities[:] = velocities
+        kernel.load_eval()
+        load = self._load = kernel.load
+        worst = load.item(int(load.argmax()))
         return 1.0 if worst <= 1.0 else 1.0 / worst
 
     def closest_pair_speed(self, velocities: np.ndarray) -> float:
@@ -234,6 +326,14 @@ class SeparationMonitor:
         if dist == 0.0:
             return 0.0
         return max(0.0, float(self._diff[i, j] @ velocities[i]) / dist)
+
+    def closest_pair_permitted_speed(self) -> float:
+        """vmax of the closest pair from the last ``measure`` (m/s); same value as
+        ``permitted_speeds()[closest_point, closest_person]`` without the whole array."""
+        if self._vmax is not None:
+            return float(self._vmax[self.closest_point, self.closest_person])
+        d = max(self.min_separation - self.standstill, 0.0)
+        return d / (math.sqrt(d * self._a2 + self._quarter_b2) + self._half_b)
 
     def closest_pair_load(self) -> float:
         """speed / vmax of the closest pair in the last ``scale`` call (before its factor)."""

@@ -6,14 +6,15 @@ zero within the same tick. Stage order and reasons are in speed_caps.py, fault r
 in faults.py, the separation formula in separation.py.
 
 Hot path: everything that depends only on the configuration is computed in ``__init__``; a
-tick does a handful of small numpy operations, one kinematics evaluation (casadi buffers, no
-allocation) and plain float logic.
+tick does three compiled casadi evaluations into preallocated buffers (kinematics, joint
+stages, separation geometry), a handful of small numpy operations and plain float logic.
 
 This is a supervisory software layer for development and testing, not a safety function: it
 does not meet ISO 13849-1 / IEC 62061 and must never be the only protection for a person.
 """
 from __future__ import annotations
 
+import functools
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -25,9 +26,7 @@ from constraint_ctrl.errors import ConstraintCtrlError
 from constraint_ctrl.safety.faults import Fault, FaultDetector, FaultKind, FaultTracker
 from constraint_ctrl.safety.separation import (
     SeparationMonitor, SeparationParams, protective_distance)
-from constraint_ctrl.safety.speed_caps import (
-    apply_joint_speed_limits, limit_acceleration, point_speed_scale, position_rate_bounds,
-    stop_ramp_factor)
+from constraint_ctrl.safety.speed_caps import JointStage, stop_ramp_factor
 from constraint_ctrl.safety.states import State, Transition
 
 PointsFn = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]
@@ -287,6 +286,46 @@ class BufferedPoints:
         return math.isfinite(float(np.dot(self._out, self._out)))
 
 
+@functools.lru_cache(maxsize=16)
+def _point_velocities_function(k: int, n: int) -> casadi.Function:
+    """``PointVelocities``' casadi Function for k points and n joints (one build per size)."""
+    sx = casadi.SX
+    j_sym, qd_sym, cap = sx.sym('jac', 3 * k, n), sx.sym('qdot', n), sx.sym('cap')
+    vel = casadi.reshape(casadi.mtimes(j_sym, qd_sym), 3, k)
+    top = casadi.sqrt(casadi.mmax(vel[0, :] * vel[0, :] + vel[1, :] * vel[1, :]
+                                  + vel[2, :] * vel[2, :]))
+    factor = casadi.if_else(top <= cap, 1.0, cap / top)
+    return casadi.Function('point_velocities', [j_sym, qd_sym, cap], [vel * factor, factor])
+
+
+class PointVelocities:
+    """Stage 5 for one tick as a single compiled casadi evaluation into fixed buffers.
+
+    v = J qdot of every monitored point, then the reduced-speed factor of
+    ``point_speed_scale`` (1 if the fastest point is within ``cap``, else cap / |v|max) and
+    the scaled velocities; ``cap`` inf means no reduced speed (factor exactly 1).
+
+    Buffers: ``jac`` (3k, n) input (or the array given at construction), ``qdot`` (the array
+    given at construction), ``cap`` (1,); results ``velocities`` (k, 3), ``factor`` (1,).
+    """
+
+    def __init__(self, k: int, qdot: np.ndarray, jac: np.ndarray | None = None) -> None:
+        n = qdot.size
+        self._jac_flat = np.zeros(3 * k * n) if jac is None else jac
+        self.jac = self._jac_flat.reshape(n, 3 * k).T      # column-major, as casadi reads it
+        self.qdot = qdot
+        self.cap = np.full(1, math.inf)
+        self._vel_flat = np.zeros(3 * k)
+        self.velocities = self._vel_flat.reshape(k, 3)
+        self.factor = np.ones(1)
+        self._buf, self.eval = _point_velocities_function(k, n).buffer()
+        self._buf.set_arg(0, memoryview(self._jac_flat))
+        self._buf.set_arg(1, memoryview(qdot))
+        self._buf.set_arg(2, memoryview(self.cap))
+        self._buf.set_res(0, memoryview(self._vel_flat))
+        self._buf.set_res(1, memoryview(self.factor))
+
+
 class Watchdog:
     """Shapes each solver command into one that may be published; see the module docstring."""
 
@@ -327,14 +366,20 @@ class Watchdog:
         self._zero = np.zeros(n)
         self._prev = np.zeros(n)
         self._work = np.zeros(n)
-        self._lo = np.zeros(n)
-        self._hi = np.zeros(n)
+        self._joints = JointStage(self._lower_rate, self._upper_rate, self._inv_dt,
+                                  self._inv_vel, self._prev, self._work)
+        self._joints.step[:] = self._max_step
+        self._rate_limited = True           # what ``_joints.step`` holds: max_step, or inf
+        # With a buffered casadi points function the Jacobian is read in place, else copied.
+        self._motion = PointVelocities(k, self._work, buffered._j if buffered else None)
+        self._copy_jac = buffered is None
         self._no_people = np.zeros((0, 3))
         self._people_buf = np.zeros((4, 3))
+        self._people_flat = self._people_buf.reshape(-1)
         self._moved_buf = np.zeros(4)
         self._no_moved = np.zeros(0)
-        self._tmp = np.zeros(n)
-        self._tmp2 = np.zeros(n)
+        for m in range(1, self._people_buf.shape[0] + 1):   # no kernel build inside a tick
+            self._monitor.prepare(m)
         self._vel: np.ndarray | None = None
         self._sep_factor = 1.0
         self._reduced_mode = config.reduced_mode
@@ -399,31 +444,39 @@ class Watchdog:
         """
         if not people:
             return self._no_people, True, self._no_moved
-        buf = self._people_buf
-        if len(people) > buf.shape[0]:
-            buf = self._people_buf = np.zeros((2 * len(people), 3))
+        if len(people) > self._people_buf.shape[0]:
+            self._people_buf = np.zeros((2 * len(people), 3))
+            self._people_flat = self._people_buf.reshape(-1)
             self._moved_buf = np.zeros(2 * len(people))
-        moved_buf = self._moved_buf
         human = self.config.separation.human_speed
         ok = True
+        coords: list[float] = []     # plain floats: cheaper than one numpy copy per sample
+        walked: list[float] = []
         extra = []
         extra_moved = []
-        m = 0
         for sample in people.values():
             pos = sample.position
-            walked = human * max(0.0, now - sample.stamp)
             if pos.shape == (3,):
-                buf[m] = pos
-                moved_buf[m] = walked
-                m += 1
+                coords += pos.tolist()
+                walked.append(human * max(0.0, now - sample.stamp))
             elif pos.size and pos.size % 3 == 0:
                 extra.append(pos.reshape(-1, 3))
-                extra_moved.append(np.full(pos.size // 3, walked))
+                extra_moved.append(np.full(pos.size // 3,
+                                           human * max(0.0, now - sample.stamp)))
             else:
                 ok = False
-        rows = buf[:m] if not extra else np.concatenate([buf[:m], *extra])
-        moved = moved_buf[:m] if not extra else np.concatenate([moved_buf[:m], *extra_moved])
-        if not math.isfinite(float(rows.sum())):
+        m = len(walked)
+        # A non-finite sum flags a NaN or inf (or an overflow, which the exact test clears).
+        finite = math.isfinite(sum(coords))
+        self._people_flat[:3 * m] = coords
+        self._moved_buf[:m] = walked
+        rows = self._people_buf[:m]
+        moved = self._moved_buf[:m]
+        if extra:
+            rows = np.concatenate([rows, *extra])
+            moved = np.concatenate([moved, *extra_moved])
+            finite = finite and math.isfinite(float(rows.sum()))
+        if not finite:
             keep = np.isfinite(rows).all(axis=1)
             return rows[keep], False, moved[keep]
         return rows, ok, moved
@@ -482,14 +535,14 @@ class Watchdog:
                     # ends in time even if the clock stalls or jumps back.
                     self._stop_elapsed += max(self.dt, now - self._last_now)
                 factor = stop_ramp_factor(self._stop_elapsed, self.config.stopping_time)
-                np.multiply(self._stop_c0, factor, out=out)
+                np.multiply(self._stop_c0, factor, out=self._joints.command)
                 ramp_speed = float(np.abs(self._stop_c0).max()) * factor
                 state = _STOPPING if factor > 0.0 and ramp_speed > 0.0 else _STOPPED
-                self._limit_joints(out, q, out, rate_limit=False)
+                self._limit_joints(None, q, rate_limit=False)
             else:
                 assert inp.command is not None and q is not None
                 state = _REDUCED if reduced else _NORMAL
-                self._limit_joints(inp.command, q, out, rate_limit=True)
+                self._limit_joints(inp.command, q, rate_limit=True)
             speed_scale = self._scale(out, jac, reduced)
         pd = self._report_distance()
         self._prev[:] = out
@@ -524,24 +577,23 @@ class Watchdog:
             self._in_zone = min_separation < zone
         return self._reduced_mode or self._in_zone
 
-    def _limit_joints(self, command: np.ndarray, q: np.ndarray | None, out: np.ndarray, *,
+    def _limit_joints(self, command: np.ndarray | None, q: np.ndarray | None, *,
                       rate_limit: bool) -> None:
-        """Stages 2-3: position limits, then (optionally) the rate limit, then position again.
+        """Stages 2-3 into ``_work``: the rate limit (optional), then the position limits.
 
         Clipping to the position bounds before the rate limit as well would not change the
         result (clamps compose monotonically), so they are applied once, last, where they also
-        override the rate limit.
+        override the rate limit. ``command`` None: already in ``_joints.command``.
         """
         assert q is not None
-        lo, hi = self._lo, self._hi
-        position_rate_bounds(q, self._lower_rate, self._upper_rate, self._inv_dt, lo, hi,
-                             self._tmp)
-        if rate_limit:
-            limit_acceleration(command, self._prev, self._max_step, out, self._tmp, self._tmp2)
-            np.maximum(out, lo, out=out)
-        else:
-            np.maximum(command, lo, out=out)
-        np.minimum(out, hi, out=out)
+        stage = self._joints
+        if rate_limit is not self._rate_limited:
+            stage.step[:] = self._max_step if rate_limit else math.inf
+            self._rate_limited = rate_limit
+        stage.q[:] = q
+        if command is not None:
+            stage.command[:] = command
+        stage.eval()
 
     def _scale(self, out: np.ndarray, jac: np.ndarray | None, reduced: bool) -> float:
         """Stages 4-6: joint speed, reduced speed and separation factors, applied to ``out``.
@@ -549,16 +601,21 @@ class Watchdog:
         Point velocities are computed once and scaled along with the command; the final ones
         are kept in ``_vel`` for the report.
         """
-        joint = apply_joint_speed_limits(out, self._inv_vel, self._tmp)   # scales ``out``
-        if jac is None or not out.any():
+        # Stage 4 (``apply_joint_speed_limits``) from the ratio the joint stage computed.
+        top = self._joints.top.item(0)
+        joint = 1.0
+        if top > 1.0:
+            joint = 1.0 / top
+            out *= joint
+        if jac is None or (top == 0.0 and not out.any()):   # top 0: all zero but underflow
             return joint
-        vel = (jac @ out).reshape(self._k, 3)
-        rest = 1.0
-        if reduced:
-            s = point_speed_scale(vel, self.config.reduced_speed)
-            if s != 1.0:
-                vel *= s
-                rest *= s
+        motion = self._motion
+        if self._copy_jac:
+            motion.jac[:] = jac
+        motion.cap[0] = self.config.reduced_speed if reduced else math.inf
+        motion.eval()                       # v = J out, scaled by the reduced-speed factor
+        vel = motion.velocities
+        rest = motion.factor.item(0)
         s = self._monitor.scale(vel)
         self._sep_factor = s
         if s != 1.0:
@@ -578,7 +635,7 @@ class Watchdog:
         if m.n_people:
             load = m.closest_pair_load()
             if load > 0.0:    # speed / vmax before the separation factor was applied
-                vmax = float(m.permitted_speeds()[m.closest_point, m.closest_person])
+                vmax = m.closest_pair_permitted_speed()
                 speed = load * vmax * self._sep_factor
             else:
                 speed = 0.0

@@ -168,3 +168,47 @@ def test_no_people_means_no_scaling() -> None:
     mon.measure(np.zeros((1, 3)), np.zeros((0, 3)))
     assert mon.min_separation == math.inf
     assert mon.scale(np.array([[3.0, 0.0, 0.0]])) == 1.0
+
+
+def _pair_oracle(points: np.ndarray, radii: np.ndarray, people: np.ndarray,
+                 vel: np.ndarray) -> tuple[float, tuple[int, int], float]:
+    """Pair by pair with the scalar ISO/TS 15066 inversion (``max_robot_speed``, checked above
+    against the table): smallest separation, its pair, and the uniform factor."""
+    best, pair, factor = math.inf, (-1, -1), 1.0
+    for i, p in enumerate(points):
+        for j, h in enumerate(people):
+            d = h - p
+            dist = float(np.linalg.norm(d))
+            sep = dist - radii[i]
+            if sep < best:
+                best, pair = sep, (i, j)
+            speed = float(d @ vel[i]) / dist
+            if speed > 0:
+                factor = min(factor, max_robot_speed(sep, PARAMS) / speed)
+    return best, pair, factor
+
+
+def test_changing_number_of_people_between_measures() -> None:
+    """The geometry is compiled per number of people: 3, 1, then 6 people (a size not seen
+    before) and back to 3 each give the pair-by-pair result of the published formula."""
+    rng = np.random.default_rng(3)
+    radii = np.array([0.05, 0.08, 0.0, 0.03])
+    mon = SeparationMonitor(PARAMS, radii, resume_speed=0.05, clear_margin=0.05)
+    for m in (3, 1, 6, 3, 2):
+        points = rng.uniform(-0.15, 0.15, (4, 3))
+        direction = rng.normal(size=(m, 3))
+        people = direction / np.linalg.norm(direction, axis=1, keepdims=True)
+        people *= rng.uniform(1.0, 1.6, (m, 1))          # S > 0.66 m: never too close
+        vel = rng.uniform(-2.0, 2.0, (4, 3))
+        best, pair, factor = _pair_oracle(points, radii, people, vel)
+        assert factor < 1.0                                # the separation rule binds
+        mon.measure(points, people)
+        assert mon.n_people == m
+        assert mon.min_separation == pytest.approx(best, rel=1e-12)
+        assert (mon.closest_point, mon.closest_person) == pair
+        assert not mon.too_close
+        assert mon.scale(vel) == pytest.approx(factor, rel=1e-12)
+        assert mon.closest_pair_permitted_speed() == pytest.approx(
+            max_robot_speed(best, PARAMS), rel=1e-12)
+        assert mon.closest_pair_permitted_speed() == mon.permitted_speeds()[pair]
+        assert mon.permitted_speeds().shape == (4, m)

@@ -9,6 +9,7 @@ upper, velocity of a joint; from memory).
 """
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
@@ -17,7 +18,7 @@ import pytest
 
 from constraint_ctrl.model.kinematics import RobotModel
 from constraint_ctrl.safety.speed_caps import (
-    apply_joint_speed_limits, limit_acceleration, limit_positions, point_speed_scale,
+    JointStage, apply_joint_speed_limits, limit_acceleration, limit_positions, point_speed_scale,
     stop_ramp_factor)
 from constraint_ctrl.safety.watchdog import (
     MonitoredPoint, Watchdog, WatchdogConfig, WatchdogInput)
@@ -168,3 +169,68 @@ def test_stop_ramp_is_linear_and_ends_at_stopping_time() -> None:
     assert stop_ramp_factor(0.3 - 1e-12, 0.3) == 0.0       # float residue rounds to a full stop
     assert stop_ramp_factor(0.1, 0.0) == 0.0
     assert stop_ramp_factor(5.0, 0.3) == 0.0               # past the end: stays at 0
+
+
+def _joint_stage(lower: list[float], upper: list[float], dt: float, vel: list[float]
+                 ) -> tuple[JointStage, np.ndarray, np.ndarray]:
+    prev, out = np.zeros(len(vel)), np.zeros(len(vel))
+    stage = JointStage(np.array(lower) / dt, np.array(upper) / dt, 1.0 / dt,
+                       1.0 / np.array(vel), prev, out)
+    return stage, prev, out
+
+
+def test_compiled_joint_stage_position_rule_hand_values() -> None:
+    """Without a rate limit (step inf, the stop ramp): the same hand values as the numpy
+    position rule above: at or over a limit only inward, never across within one tick."""
+    stage, _, out = _joint_stage([-1.0] * 4, [1.0, 1.0, 1.0, 1.0], 0.01, [2.0] * 4)
+    stage.step[:] = np.inf
+    stage.q[:] = [1.0, -1.2, 0.0, 0.999]
+    stage.command[:] = [0.5, -0.3, 0.2, 1.0]
+    stage.eval()
+    assert out[:3].tolist() == [0.0, 0.0, 0.2]
+    assert out[3] == pytest.approx(0.1, rel=1e-9)          # 1 mm left at dt = 10 ms
+    stage.command[:] = [-0.5, 0.3, 0.2, -1.0]
+    stage.eval()
+    assert out.tolist() == [-0.5, 0.3, 0.2, -1.0]
+    assert stage.top[0] == 0.5                             # max |qdot_i| / 2 rad/s
+
+
+def test_compiled_joint_stage_rate_limit_follows_v_equals_a_t() -> None:
+    """From rest towards 1 rad/s with a = 2 rad/s^2: v(t) = min(1, a t); an unlimited joint
+    (URDF continuous, +-inf bounds) is rate limited only."""
+    dt, a = 0.01, 2.0
+    stage, prev, out = _joint_stage([-3.0, -math.inf], [3.0, math.inf], dt, [5.0, 5.0])
+    stage.step[:] = a * dt
+    stage.command[:] = [1.0, -0.5]
+    for i in range(1, 80):
+        stage.eval()
+        t = i * dt
+        assert out[0] == pytest.approx(min(1.0, a * t), abs=1e-12)
+        assert out[1] == pytest.approx(-min(0.5, a * t), abs=1e-12)
+        prev[:] = out
+
+
+def test_compiled_joint_stage_equals_the_numpy_stages() -> None:
+    """Random states: the compiled stage gives exactly the numpy functions' result (those are
+    checked against the hand values above), including joints at and beyond their limits."""
+    rng = np.random.default_rng(7)
+    n, dt = 6, 0.004
+    lower = np.array([-2.0, -1.0, -math.inf, -3.0, -0.5, -2.5])
+    upper = np.array([2.0, 1.5, math.inf, 3.0, 0.5, 2.5])
+    vel = np.array([2.0, 2.0, 3.0, 1.5, 4.0, 2.5])
+    stage, prev, out = _joint_stage(list(lower), list(upper), dt, list(vel))
+    for _ in range(200):
+        q = rng.uniform(-3.5, 3.5, n)
+        command = rng.uniform(-6.0, 6.0, n)
+        prev[:] = rng.uniform(-3.0, 3.0, n)
+        step = rng.uniform(0.0, 0.05, n)
+        stage.q[:], stage.command[:], stage.step[:] = q, command, step
+        stage.eval()
+        expected = limit_acceleration(command, prev, step, np.empty(n))
+        expected = limit_positions(expected, q, lower, upper, dt, expected)
+        assert np.array_equal(out, expected)
+        scaled = expected.copy()
+        factor = apply_joint_speed_limits(scaled, 1.0 / vel)
+        top = float(np.max(np.abs(expected) / vel))
+        assert stage.top[0] == pytest.approx(top, rel=1e-15)
+        assert factor == (1.0 if top <= 1.0 else pytest.approx(1.0 / top, rel=1e-15))

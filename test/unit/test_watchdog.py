@@ -465,3 +465,39 @@ def test_old_person_data_counts_as_a_person_nearer_by_what_they_could_walk() -> 
     from constraint_ctrl.safety.separation import SeparationParams, max_robot_speed
     assert aged.command[0] == pytest.approx(max_robot_speed(0.92, SeparationParams()), abs=5e-4)
     assert aged.command[0] < fresh.command[0]
+
+
+def _casadi_gantry() -> ca.Function:
+    """The gantry above as a casadi points function (p_i = q + offset_i, J_i = I)."""
+    q = ca.SX.sym('q', 3)
+    pos = ca.horzcat(*[q + ca.DM(list(o)) for o in OFFSETS])
+    return ca.Function('gantry', [q], [ca.densify(pos), ca.densify(ca.jacobian(ca.vec(pos), q))])
+
+
+def test_casadi_points_function_gives_the_same_commands_as_a_callable() -> None:
+    """The Jacobian of a casadi points function is read in place, a callable's is copied: both
+    give the same commands while a person walks in at 0.5 m/s. Reduced mode caps the point
+    speed at 250 mm/s (ISO 10218-1, from memory; J = I so |v| = |qdot|), then separation
+    scaling binds, then the stop at S_p(0) = 488 mm (safety-facts.md 1.3)."""
+    config = make_config(reduced_mode=True)
+    cells = [Cell(config), Cell(config)]
+    cells[1].watchdog = Watchdog(config, _casadi_gantry(), POINTS, DT)
+    for cell in cells:
+        cell.person = np.array([1.6, 0.0, 0.0])
+    seen = set()
+    for _ in range(250):
+        outs = [cell.tick((0.8, 0.1, 0.0), move=True) for cell in cells]
+        for cell in cells:
+            cell.person = cell.person - [0.5 * DT, 0.0, 0.0]
+        assert outs[0].state is outs[1].state
+        assert np.allclose(outs[0].command, outs[1].command, rtol=1e-12, atol=1e-15)
+        assert outs[0].speed_scale == pytest.approx(outs[1].speed_scale, rel=1e-12)
+        assert np.linalg.norm(outs[1].command) <= 0.25 * (1 + 1e-12)
+        reduced_only = 0.25 / math.hypot(0.8, 0.1)
+        if outs[1].state is State.REDUCED:
+            seen.add('separation' if outs[1].speed_scale < reduced_only * (1 - 1e-9)
+                     else 'reduced')
+        elif outs[1].state is State.STOPPED:
+            assert outs[1].reason.startswith('person too close')
+            seen.add('stop')
+    assert seen == {'reduced', 'separation', 'stop'}
