@@ -113,6 +113,15 @@ class SkillSolver:
         lay = skill.layout
         self._is_eq = np.array([r.kind == 'equal' for r in skill.rows], dtype=bool)
         self._multi_level = len(lay.levels) > 1
+        # row sets of the lower levels: static per skill, so built once here, not per tick
+        rows = skill.rows
+        self._hard_eq = [i for i, r in enumerate(rows) if r.hard and r.kind == 'equal']
+        self._hard_in = [i for i, r in enumerate(rows) if r.hard and r.kind != 'equal']
+        self._level_rows: dict[int, tuple[list[int], list[int], list[int]]] = {}
+        for level in lay.levels:
+            now = [i for i, r in enumerate(rows) if not r.hard and r.level == level]
+            self._level_rows[level] = (now, [i for i in now if rows[i].kind == 'equal'],
+                                       [i for i in now if rows[i].kind != 'equal'])
         self.last_x = np.zeros(lay.n_x)
         self.last_iact = np.zeros(0, dtype=int)
         self.last_status = SolveStatus.OK
@@ -197,12 +206,10 @@ class SkillSolver:
         damping = self.p[skill.damping_param]
         reg = damping * damping * skill.reg_diag
         levels = skill.layout.levels
-        hard_eq = [i for i, r in enumerate(rows) if r.hard and r.kind == 'equal']
-        hard_in = [i for i, r in enumerate(rows) if r.hard and r.kind != 'equal']
-        held_eq = list(hard_eq)
-        held_in: list[tuple[int, float, float]] = [(i, lo[i], hi[i]) for i in hard_in]
+        held_eq = list(self._hard_eq)
+        held_in: list[tuple[int, float, float]] = [(i, lo[i], hi[i]) for i in self._hard_in]
         box_lo, box_hi = out['box_lo'], out['box_hi']
-        done = [i for i, r in enumerate(rows) if not r.hard and r.level == levels[0]]
+        done = self._level_rows[levels[0]][0]
         for level_index in range(1, len(levels)):
             jx = J @ x
             for i in done:
@@ -221,9 +228,7 @@ class SkillSolver:
             if N.shape[1] == 0:
                 break
             level = levels[level_index]
-            now = [i for i, r in enumerate(rows) if not r.hard and r.level == level]
-            eq = [i for i in now if rows[i].kind == 'equal']
-            ineq = [i for i in now if rows[i].kind != 'equal']
+            now, eq, ineq = self._level_rows[level]
             sw = np.sqrt(w[eq])
             H = J[eq] * sw[:, None]
             Gx = H.T @ H + np.diag(reg)

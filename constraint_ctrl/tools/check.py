@@ -181,13 +181,12 @@ def _conflicting_hard_rows(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
     """Name hard rows whose removal makes the start feasible (a hint, not a proof)."""
     from dataclasses import replace
 
-    from ..skill.compile import compile_skill as _compile
     hard = [c for c in skill.spec.constraints if c.hard]
     culprits = []
     for con in hard:
         relaxed = replace(skill.spec, constraints=tuple(
             replace(c, hard=False) if c is con else c for c in skill.spec.constraints))
-        trial = SkillSolver(_compile(relaxed, skill.model))
+        trial = SkillSolver(compile_skill(relaxed, skill.model))
         trial.set_start(q, s)
         if trial.solve(q, s, u, 0.0, 0.002, np.zeros(skill.n_x)).ok:
             culprits.append(con.name)
