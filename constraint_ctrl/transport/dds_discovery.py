@@ -76,7 +76,8 @@ class NodeAnnouncer:
     node dropped) leaves the record with the next update.
     """
 
-    def __init__(self, participant: Any, types: Any, namespace: str, node_name: str) -> None:
+    def __init__(self, participant: Any, types: Any, namespace: str, node_name: str,
+                 distro: str) -> None:
         self._participant = participant
         self._types = types
         self._namespace = namespace
@@ -86,8 +87,6 @@ class NodeAnnouncer:
         self._writers: dict[bytes, Any] = {}
         self._dead: list[bytes] = []
         topic = Topic(participant, DISCOVERY_TOPIC, types.ParticipantEntitiesInfo)
-        distro = 'humble' if types.ParticipantEntitiesInfo.__name__.endswith('Humble') \
-            else 'jazzy'
         self.writer = DataWriter(participant, topic, writer_qos(
             DISCOVERY_INFO, type_hash_tag('rmw_dds_common/msg/ParticipantEntitiesInfo', distro)))
 

@@ -119,7 +119,7 @@ class DdsPort:
         self._service_dispatch = Dispatcher(self._participant, f'{self.node_name}-services',
                                             self._callback_failed)
         self._announcer = NodeAnnouncer(self._participant, self.types, self.namespace,
-                                         self.node_name)
+                                         self.node_name, distro)
         events = self.create_publisher(self.types.ParameterEvent, '/parameter_events',
                                        'parameters')
         self._params = ParameterStore(self.fqn, overrides_for(args, self.fqn), self.types,
