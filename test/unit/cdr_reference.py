@@ -10,6 +10,7 @@ branches, identical).
 """
 from __future__ import annotations
 
+import dataclasses
 import math
 from typing import Any
 
@@ -105,8 +106,11 @@ def rosbags_bytes(obj: Any, distro: str, *, little_endian: bool = True) -> bytes
 def plain(value: Any) -> Any:
     """A comparable form of a message: dataclasses -> dicts, any sequence -> list,
     bytes -> list of ints, NaN -> the string 'nan' (NaN != NaN)."""
-    if hasattr(value, '__dataclass_fields__'):
-        return {name: plain(getattr(value, name)) for name in value.__dataclass_fields__}
+    if dataclasses.is_dataclass(value):
+        # ours, or rosbags' (whose constants and __msgtype__ are dataclass fields too; ROS
+        # field names are lower case, constants upper case)
+        return {f.name: plain(getattr(value, f.name)) for f in dataclasses.fields(value)
+                if not f.name.startswith('__') and not f.name.isupper()}
     if isinstance(value, (bytes, bytearray)):
         return list(value)
     if isinstance(value, (list, tuple, np.ndarray)):
@@ -118,11 +122,3 @@ def plain(value: Any) -> Any:
     if isinstance(value, (int, np.integer)):
         return int(value)
     return value
-
-
-def plain_rosbags(value: Any) -> Any:
-    """plain() for rosbags' messages (their dataclass fields are their message fields)."""
-    if hasattr(value, '__dataclass_fields__'):
-        return {name: plain_rosbags(getattr(value, name))
-                for name in value.__dataclass_fields__ if name != '__msgtype__'}
-    return plain(value)
