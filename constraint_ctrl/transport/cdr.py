@@ -106,7 +106,7 @@ class _Run:
         s = self.structs[e][pos & 7]
         values = s.unpack_from(body, pos)
         if self.flat_shape:
-            out.update(zip(self.names, values))
+            out.update(zip(self.names, values, strict=True))
         else:
             _build(self.shape, values, 0, out)
         return pos + s.size
@@ -122,7 +122,7 @@ class _Run:
 
     def _flatten(self, values: tuple[Any, ...]) -> list[Any]:
         flat: list[Any] = []
-        for leaf, value in zip(self.leaves, values):
+        for leaf, value in zip(self.leaves, values, strict=True):
             if leaf.octets:
                 value = bytes(value)
                 if len(value) != leaf.count:
@@ -571,13 +571,6 @@ def build_codecs(fielddefs: FieldDefs, classes: Mapping[str, type],
     for type_name, codec in codecs.items():
         run_leaves: list[_Leaf] = []
         run_shape: list[tuple[str, int, Any]] = []
-
-        def close_run() -> None:
-            if run_leaves:
-                codec.add(_Run(list(run_leaves), list(run_shape)))
-                run_leaves.clear()
-                run_shape.clear()
-
         for raw_name, desc in fields_of(type_name):
             name = field_name(raw_name)
             part = _fixed_field(name, desc)
@@ -585,9 +578,12 @@ def build_codecs(fielddefs: FieldDefs, classes: Mapping[str, type],
                 run_leaves.extend(part[0])
                 run_shape.append(part[1])
                 continue
-            close_run()
+            if run_leaves:
+                codec.add(_Run(run_leaves, run_shape))
+                run_leaves, run_shape = [], []
             codec.add(_variable_field(name, desc, codecs))
-        close_run()
+        if run_leaves:
+            codec.add(_Run(run_leaves, run_shape))
     return codecs
 
 

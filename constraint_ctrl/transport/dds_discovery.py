@@ -29,7 +29,9 @@ from cyclonedds.pub import DataWriter
 from cyclonedds.topic import Topic
 
 from constraint_ctrl.errors import TransportError
+from constraint_ctrl.transport import dds_raw
 from constraint_ctrl.transport.dds_qos import type_hash_tag, writer_qos
+from constraint_ctrl.transport.dds_types import codec_of
 from constraint_ctrl.transport.qos import DISCOVERY_INFO
 
 LOOPBACK_CONFIG = (
@@ -104,7 +106,8 @@ class NodeAnnouncer:
             for key in gone:
                 self._readers.pop(key, None)
                 self._writers.pop(key, None)
-            self.writer.write(self.sample())
+            sample = self.sample()
+            dds_raw.write(self.writer, codec_of(type(sample)).encode(sample))
 
     def sample(self, *, with_node: bool = True) -> Any:
         t = self._types
@@ -117,4 +120,5 @@ class NodeAnnouncer:
     def withdraw(self) -> None:
         """Announce that the participant has no nodes any more."""
         with self._lock:
-            self.writer.write(self.sample(with_node=False))
+            sample = self.sample(with_node=False)
+            dds_raw.write(self.writer, codec_of(type(sample)).encode(sample))

@@ -19,8 +19,9 @@ from typing import Any
 
 import pytest
 
-DOMAIN = str(random.randint(150, 230))
-os.environ['ROS_DOMAIN_ID'] = DOMAIN    # before the first participant of this process
+# before the first participant of this process; another test module of the same run may
+# have chosen the domain already (the port reads it from the environment)
+os.environ.setdefault('ROS_DOMAIN_ID', str(random.randint(150, 230)))
 
 from cyclonedds.domain import DomainParticipant  # noqa: E402
 from cyclonedds.pub import DataWriter  # noqa: E402
@@ -63,6 +64,7 @@ class Receiver:
         self.port.create_subscription(self.t.JointState, f'{NS}/joint_states', self._on_joints,
                                       'sensor')
         self.port.create_subscription(self.t.Float64, f'{NS}/value', self._on_value, 'default')
+        self.port.create_service(self.t.Trigger, '~/explode', self._explode)
         self.spin_ended = threading.Event()
         self.thread = threading.Thread(target=self._spin, daemon=True)
         self.thread.start()
@@ -84,6 +86,9 @@ class Receiver:
         if first:
             raise RuntimeError('callback fails on its first sample')
 
+    def _explode(self, request: Any, response: Any) -> Any:
+        raise RuntimeError('service callback fails')
+
     def close(self) -> None:
         self.port.shutdown()
         self.thread.join(5.0)
@@ -100,7 +105,7 @@ def receiver() -> Iterator[Receiver]:
 @pytest.fixture(scope='module')
 def sender() -> DomainParticipant:
     """A second participant of this process: writes raw bytes, as any peer could."""
-    return DomainParticipant(int(DOMAIN))
+    return DomainParticipant(int(os.environ['ROS_DOMAIN_ID']))
 
 
 def raw_writer(participant: Any, topic_name: str, topic_type: type, profile: str) -> Any:
@@ -168,4 +173,21 @@ def test_a_raising_callback_is_counted_and_spin_goes_on(
     faults = receiver.port.faults()[f'subscription {NS}/value']
     assert (faults.dropped, faults.callback_errors) == (0, 1)
     assert 'callback fails on its first sample' in faults.last_error
+    assert not receiver.spin_ended.is_set()
+
+
+def test_a_raising_service_callback_gives_an_error_reply(receiver: Receiver) -> None:
+    """The caller gets a reply (success false, the error in message), spin goes on."""
+    t = receiver.t
+    name = f'{NS}/receiver/explode'
+    caller = DdsPort('caller2', ['test'])
+    try:
+        client = caller.create_client(t.Trigger, name)
+        assert client.wait_for_service(10.0)
+        replies = [client.call(t.Trigger.Request(), 10.0) for _ in range(2)]
+    finally:
+        caller.shutdown()
+    assert all(r is not None and not r.success and 'service callback fails' in r.message
+               for r in replies)
+    assert receiver.port.faults()[f'service {name}'].callback_errors == 2
     assert not receiver.spin_ended.is_set()

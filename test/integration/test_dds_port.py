@@ -227,8 +227,9 @@ def test_peer_is_announced_in_ros_discovery_info(node: Node) -> None:
     sample, info = seen[f'{NS}:peer']
     assert bytes(sample.gid.data)[12:] == bytes.fromhex('000001c1')
     # readers: 6 parameter-service requests + ping request; writers: their 7 replies,
-    # joint_states, cmd and /parameter_events (the discovery writer belongs to no node)
-    assert (len(info.reader_gid_seq), len(info.writer_gid_seq)) == (7, 10)
+    # joint_states, cmd, /rosout and /parameter_events (the discovery writer belongs to no
+    # node)
+    assert (len(info.reader_gid_seq), len(info.writer_gid_seq)) == (7, 11)
     assert all(len(bytes(g.data)) == 16 for g in info.writer_gid_seq)
 
 
