@@ -53,7 +53,8 @@ from cyclonedds.util import duration
 
 from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport import dds_raw
-from constraint_ctrl.transport.dds_discovery import NodeAnnouncer, domain_id, ensure_cyclone_config
+from constraint_ctrl.transport.dds_discovery import (NodeAnnouncer, confine_to_loopback, domain_id,
+                                                     ensure_cyclone_config, socket_inodes)
 from constraint_ctrl.transport.dds_dispatch import Dispatcher, FixedRateTimer
 from constraint_ctrl.transport.dds_parameters import ParameterStore
 from constraint_ctrl.transport.dds_qos import reader_qos, type_hash_tag, writer_qos
@@ -131,9 +132,15 @@ class DdsPort:
         self._clock = RosClock()
         self._clock_subscription: DdsSubscription | None = None
         self._faults = FaultLog(self.log)
-        ensure_cyclone_config()
+        ours = ensure_cyclone_config()
+        sockets_before = socket_inodes()
         self._participant = DomainParticipant(domain_id(),
                                               qos=Qos(Policy.Userdata(data=b'enclave=/;')))
+        if ours:
+            _, problem = confine_to_loopback(sockets_before)
+            if problem:
+                self.log('warn', f'DDS receive sockets stay on the any-address ({problem}); '
+                                 'the node may receive from other hosts')
         self._topics: dict[str, Topic] = {}
         self._writers: list[DataWriter] = []
         self._timers: list[FixedRateTimer] = []
