@@ -213,8 +213,14 @@ class _String:
         self.name, self.bound = name, bound
 
     def decode(self, body: bytes, pos: int, e: int, out: dict[str, Any]) -> int:
-        out[self.name], pos = _read_string(body, pos, e, self.bound, self.name)
-        return pos
+        pos += -pos & 3
+        (n,) = _COUNT[e].unpack_from(body, pos)
+        start = pos + 4
+        end = start + n
+        if n < 1 or end > len(body) or body[end - 1] or (self.bound and n - 1 > self.bound):
+            _read_string(body, pos, e, self.bound, self.name)      # raises, says why
+        out[self.name] = body[start:end - 1].decode('utf-8')
+        return end
 
     def encode(self, buf: bytearray, obj: Any) -> None:
         _write_string(buf, getattr(obj, self.name), self.bound, self.name)
@@ -225,9 +231,10 @@ class _Nested:
 
     def __init__(self, name: str, codec: StructCodec) -> None:
         self.name, self.codec = name, codec
+        self.decode_at = codec.decode_at
 
     def decode(self, body: bytes, pos: int, e: int, out: dict[str, Any]) -> int:
-        out[self.name], pos = self.codec.decode_at(body, pos, e)
+        out[self.name], pos = self.decode_at(body, pos, e)
         return pos
 
     def encode(self, buf: bytearray, obj: Any) -> None:
@@ -249,7 +256,11 @@ class _Primitives:
         if self.length:
             n = self.length
         else:
-            n, pos = _read_count(body, pos, e, self.size, self.bound, self.name)
+            pos += -pos & 3
+            (n,) = _COUNT[e].unpack_from(body, pos)
+            pos += 4
+            if self.bound and n > self.bound:
+                _read_count(body, pos - 4, e, self.size, self.bound, self.name)   # raises
         if n:
             pos += -pos % self.size
             end = pos + n * self.size
@@ -436,7 +447,9 @@ class StructCodec:
 
     def decode(self, data: bytes) -> Any:
         """A message from CDR bytes with their encapsulation header (either byte order)."""
-        e = _encapsulation(data, self.ros_type)
+        if len(data) < 4 or data[0] or data[1] > 1:
+            _encapsulation(data, self.ros_type)                     # raises, says why
+        e = data[1]
         body = data[4:] if isinstance(data, bytes) else bytes(data[4:])
         try:
             msg, _ = self.decode_at(body, 0, e)
