@@ -55,15 +55,7 @@ def bench_wire(samples: int = 20000, distro: str = 'jazzy') -> dict[str, object]
         'distro': distro,
     }
     for label, (direction, msg) in _messages(t).items():
-        codec = codec_of(type(msg))
-        data = codec.encode(msg)
-        ours: Callable[[], object]
-        theirs: Callable[[], object]
-        if direction == 'in':
-            ours, theirs = (lambda d=data: codec.decode(d)), \
-                (lambda d=data, c=type(msg): c.deserialize(d))
-        else:
-            ours, theirs = (lambda m=msg: codec.encode(m)), (lambda m=msg: m.serialize())
+        ours, theirs = _calls(direction, msg)
         report[label] = _pair(ours, theirs, samples)
     # names changing with every sample: the codec cannot reuse its last list
     js = _messages(t)['JointState in'][1]
@@ -82,6 +74,15 @@ def bench_wire(samples: int = 20000, distro: str = 'jazzy') -> dict[str, object]
         return type(js).deserialize(variants[flip[0]])
     report['JointState in, names changing'] = _pair(ours_changing, theirs_changing, samples)
     return report
+
+
+def _calls(direction: str, msg: Any) -> tuple[Callable[[], object], Callable[[], object]]:
+    codec = codec_of(type(msg))
+    if direction == 'in':
+        data = codec.encode(msg)
+        cls = type(msg)
+        return (lambda: codec.decode(data)), (lambda: cls.deserialize(data))
+    return (lambda: codec.encode(msg)), (lambda: msg.serialize())
 
 
 def _pair(ours: Callable[[], object], theirs: Callable[[], object],
