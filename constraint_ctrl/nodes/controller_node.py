@@ -319,9 +319,12 @@ class ControllerNode:
         runner = self.loop.active
         rows = runner.diagnostics() if runner is not None and out.tick is not None else None
         names = [r.name for r in runner.skill.rows] if runner is not None else []
+        faults = self.port.faults().values()
         extra = {'missed_ticks': str(getattr(self.timer, 'missed', 0)),
                  'tick_errors': str(self._errors),
-                 'bag_dropped': str(getattr(self.recorder, 'dropped', 0))}
+                 'bag_dropped': str(getattr(self.recorder, 'dropped', 0)),
+                 'samples_dropped': str(sum(f.dropped for f in faults)),
+                 'callback_errors': str(sum(f.callback_errors for f in faults))}
         msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
                            extra)
         self._publish(self._pub_status, '~/status', msg)
