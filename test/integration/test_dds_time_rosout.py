@@ -110,6 +110,7 @@ def test_logs_reach_rosout_with_name_level_and_caller(nodes: list[Spinning]) -> 
     assert lifespans == {10 * 10**9}                        # 10 s, in ns
     assert all(q[Policy.Durability] == Policy.Durability.TransientLocal for q in qos)
     assert all(q[Policy.History] == Policy.History.KeepLast(1000) for q in qos)
+    assert all(q[Policy.Userdata].data.startswith(b'typehash=RIHS01_') for q in qos)
 
 
 def test_sim_time_follows_clock_and_timers_wait_for_it(nodes: list[Spinning]) -> None:
