@@ -205,8 +205,8 @@ class DdsPort:
                 level=_ROSOUT_LEVELS[level], name=self._logger_name, msg=text,
                 file=os.path.basename(caller.f_code.co_filename),
                 function=caller.f_code.co_name, line=caller.f_lineno))
-        except DDSException:
-            pass   # the participant is going away: stderr has the line
+        except (DDSException, TransportError):
+            pass   # participant going away, or text that is not valid Unicode: stderr has it
 
     # --- topics ----------------------------------------------------------------------------
 

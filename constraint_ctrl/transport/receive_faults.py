@@ -11,6 +11,7 @@ next sample, as the user's rules require (bad input never ends the node).
 """
 from __future__ import annotations
 
+import sys
 import threading
 import time
 import traceback
@@ -74,14 +75,18 @@ class FaultLog:
                  f'{counts.callback_errors} callback errors in all)' if last is not None
                  else '')
         if dropped:
+            level = 'warn'
             text = (f'{source}: dropped a sample that cannot be read: {line}{since}; further '
                     f'failures are counted and reported at most every {self._interval:g} s')
-            self._log('warn', text)
         else:
+            level = 'error'
             detail = ''.join(traceback.format_exception(exc)).rstrip()
             text = (f'{source}: callback raised, the node goes on{since}; further failures '
                     f'are counted and reported at most every {self._interval:g} s:\n{detail}')
-            self._log('error', text)
+        try:
+            self._log(level, text)
+        except Exception:  # noqa: BLE001 - reporting must never end the receive path
+            sys.stderr.write(f'[{level.upper()}] {text}\n')
 
     def guard_service(self, source: str,
                       callback: Callable[[object, object], object]) -> Callable[..., object]:

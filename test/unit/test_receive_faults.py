@@ -76,3 +76,15 @@ def test_a_failing_service_callback_still_gets_an_error_reply() -> None:
     assert log.snapshot()['service /ctrl/activate'].callback_errors == 1
     ok = log.guard_service('service /x', lambda q, r: r)(1, SimpleNamespace(success=True))
     assert ok.success is True and len(lines) == 1
+
+
+def test_a_failing_log_never_escapes() -> None:
+    """The log call itself may fail (e.g. /rosout refusing text that is not Unicode): the
+    failure is still counted and the caller (a dispatch thread) is not interrupted."""
+    def broken_log(level: str, text: str) -> None:
+        raise UnicodeEncodeError('utf-8', '\udcff', 0, 1, 'surrogates not allowed')
+    log = FaultLog(broken_log, clock=FakeClock())
+    log.dropped('subscription /x', ValueError('\udcff'))
+    log.callback_failed('timer 0', RuntimeError('x'))
+    assert log.snapshot()['subscription /x'].dropped == 1
+    assert log.snapshot()['timer 0'].callback_errors == 1
