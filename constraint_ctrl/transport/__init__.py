@@ -6,6 +6,7 @@ needs. The bag recorder lives in `constraint_ctrl.transport.bag` (needs `rosbags
 from constraint_ctrl.transport.port import (Client, ParameterView, Port, Publisher, Timer,
                                             open_port)
 from constraint_ctrl.transport.qos import PROFILES, QosProfile
+from constraint_ctrl.transport.receive_faults import SourceFaults
 
-__all__ = ['PROFILES', 'Client', 'ParameterView', 'Port', 'Publisher', 'QosProfile', 'Timer',
-           'open_port']
+__all__ = ['PROFILES', 'Client', 'ParameterView', 'Port', 'Publisher', 'QosProfile',
+           'SourceFaults', 'Timer', 'open_port']

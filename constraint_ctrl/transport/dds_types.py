@@ -26,6 +26,7 @@ from __future__ import annotations
 
 import dataclasses
 import functools
+import keyword
 from collections.abc import Iterable
 from types import SimpleNamespace
 from typing import Any
@@ -33,7 +34,6 @@ from typing import Any
 from cyclonedds.idl import IdlMeta, IdlStruct
 from cyclonedds.idl import types as t
 from rosbags.typesys import Stores, get_typestore, get_types_from_msg
-from rosbags.typesys.base import normalize_fieldname
 
 from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport.cdr import (ARRAY, BASE, NAME, OCTETS, SEQUENCE, ServiceCodec,
@@ -107,6 +107,12 @@ _IDL_PRIMITIVES: dict[str, Any] = {
     'uint64': t.uint64, 'int64': t.int64, 'float32': t.float32, 'float64': t.float64,
 }
 _EMPTY_MEMBER = ('structure_needs_at_least_one_member', (BASE, ('uint8', 0)))
+
+
+def normalize_fieldname(name: str) -> str:
+    """A ROS field name that is a Python keyword gets a trailing '_' (as rosbags and rclpy
+    spell it), so it can be an attribute."""
+    return f'{name}_' if keyword.iskeyword(name) else name
 
 
 def body_key(srv: str, half: str) -> str:
