@@ -304,6 +304,9 @@ class _Primitives:
         if self.octets and isinstance(value, (bytes, bytearray)):
             buf += value
         elif hasattr(value, 'dtype'):              # numpy array: one conversion, no unpacking
+            if value.ndim != 1:
+                msg = f'{self.name}: a {value.ndim}-d array, a sequence needs 1-d'
+                raise ValueError(msg)
             buf += value.astype(self.dtype, copy=False).tobytes()
         else:
             buf += struct.pack(self.formats[1].format(n), *value)

@@ -186,6 +186,8 @@ def test_numpy_arrays_and_tuples_are_accepted_for_sequences() -> None:
     for data in (np.array([0.25, -1.0, 3.5]), np.array([0.25, -1.0, 3.5], dtype=np.float32),
                  (0.25, -1.0, 3.5)):
         assert codec.encode(t.Float64MultiArray(data=data)) == codec.encode(as_list)
+    with pytest.raises(CdrError, match='1-d'):
+        codec.encode(t.Float64MultiArray(data=np.zeros((2, 3))))
 
 
 def _valid(t: Any) -> bytes:
