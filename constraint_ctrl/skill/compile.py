@@ -1,6 +1,6 @@
 """Compile a SkillSpec into one CasADi function evaluated once per tick.
 
-Row convention. Each constraint gives one row per component of its expression f(q, s, u, t).
+Row convention. Each constraint gives one row per component of its task function f(q, s, u, t).
 With the bound b (target, lower or upper; a formula, may depend on time, inputs and tunables) the
 task function is e = f - b, and its rate is de/dt = J x + e_t with x = [q_dot, s_dot],
 J = de/d(q, s) and e_t = de/dt|explicit (the feedforward of a moving target). Inputs are held
@@ -16,9 +16,9 @@ Behaviours turn e into a bound on J x (the row's velocity target):
   With e_{k+1} = e_k + dt * e_dot_k this is the symplectic Euler discretisation of the damped
   oscillator, so the closed loop converges to the continuous response as dt -> 0.
 - 'within' uses the lower bound's row for its >= side and the upper bound's for its <= side; its
-  bounds may not depend on joints or features, so both sides share one Jacobian row.
+  bounds may not depend on joints or unknowns, so both sides share one Jacobian row.
 
-Joint and feature limits become box bounds on x: speed limits, first-order position-limit rows
+Joint and unknown limits become box bounds on x: speed limits, first-order position-limit rows
 (q_dot <= K_p (q_max - q)) and, when the skill sets one, an acceleration limit relative to x_prev.
 When they conflict the position limit wins (the box is never empty).
 
@@ -126,7 +126,7 @@ class CompiledSkill:
     params: tuple[ParamInfo, ...]
     layout: QpLayout
     joint_names: tuple[str, ...]
-    feature_names: tuple[str, ...]
+    unknown_names: tuple[str, ...]
     input_names: tuple[str, ...]
     event_names: tuple[str, ...]
     reg_diag: np.ndarray            # (n_x,) lambda**2-free regularisation weights per variable
@@ -139,7 +139,7 @@ class CompiledSkill:
 
     @property
     def n_s(self) -> int:
-        return len(self.feature_names)
+        return len(self.unknown_names)
 
     @property
     def n_x(self) -> int:
@@ -159,8 +159,8 @@ class CompiledSkill:
     def default_params(self) -> np.ndarray:
         return np.array([info.value for info in self.params], dtype=float)
 
-    def initial_features(self) -> np.ndarray:
-        return np.array([f.initial for f in self.spec.features], dtype=float)
+    def start_unknowns(self) -> np.ndarray:
+        return np.array([f.start for f in self.spec.unknowns], dtype=float)
 
 
 class _ParamTable:
@@ -201,7 +201,7 @@ class _Builder:
         self.spec = spec
         self.model = model
         self.q = model.q
-        n_s = len(spec.features)
+        n_s = len(spec.unknowns)
         self.s = ca.SX.sym('s', n_s)
         self.q_now = ca.SX.sym('q_now', model.n_joints)
         self.s_now = ca.SX.sym('s_now', n_s)
@@ -219,7 +219,7 @@ class _Builder:
         names: dict[str, Quantity] = {'time': Quantity('scalar', self.t)}
         for i, inp in enumerate(self.spec.inputs):
             names[inp.name] = Quantity('scalar', self.u[i])
-        for i, feat in enumerate(self.spec.features):
+        for i, feat in enumerate(self.spec.unknowns):
             names[feat.name] = Quantity('scalar', self.s[i])
         for tun in self.spec.tunables:
             sym = self.params.add(ParamInfo(tun.name, tun.value, tun.lower, tun.upper,
@@ -252,8 +252,8 @@ class _Builder:
     def build(self) -> CompiledSkill:
         spec = self.spec
         scope = self._scope()
-        for name, text in spec.expressions:
-            scope.names[name] = self._formula(text, scope, f'expressions.{name}')
+        for name, text in spec.formulas:
+            scope.names[name] = self._formula(text, scope, f'formulas.{name}')
 
         rows: list[RowInfo] = []
         pending: list[tuple[ca.SX | None, ca.SX | None, ConstraintSpec, tuple[ca.SX, ...]]] = []
@@ -282,7 +282,7 @@ class _Builder:
                                  f'got a {cond.kind}', path)
             events.append(cond.sx)
 
-        n_x = self.model.n_joints + len(spec.features)
+        n_x = self.model.n_joints + len(spec.unknowns)
         if rows:
             # Reference task function of each row: its >= side, else its <= side. Both sides
             # share J (checked for 'within'); they differ only in explicit time dependence.
@@ -328,7 +328,7 @@ class _Builder:
             spec=spec, model=self.model, function=fn, rows=tuple(rows),
             params=tuple(self.params.infos), layout=layout,
             joint_names=tuple(self.model.joint_names),
-            feature_names=tuple(f.name for f in spec.features),
+            unknown_names=tuple(f.name for f in spec.unknowns),
             input_names=tuple(i.name for i in spec.inputs),
             event_names=tuple(ev.name for ev in spec.events),
             reg_diag=reg_diag, damping_param=damping)
@@ -336,10 +336,10 @@ class _Builder:
     def _constraint_rows(self, con: ConstraintSpec, scope: FormulaScope, path: str
                          ) -> list[tuple[ca.SX | None, ca.SX | None, ca.SX]]:
         """Per component: (task function of the >= side, of the <= side, raw value f)."""
-        f = self._formula(con.expression, scope, f'{path}.expression')
+        f = self._formula(con.function, scope, f'{path}.function')
         if f.kind not in ('scalar', 'vector'):
-            raise self.spec.error(f'a constraint expression must be a number or a vector, '
-                                  f'got a {f.kind}', f'{path}.expression')
+            raise self.spec.error(f'a task function must be a number or a vector, '
+                                  f'got a {f.kind}', f'{path}.function')
         size = f.sx.numel()
 
         def bound(value: float | str | None, key: str) -> ca.SX:
@@ -351,7 +351,7 @@ class _Builder:
             if sx.numel() == 1 and size > 1:
                 sx = ca.repmat(sx, size, 1)
             if sx.numel() != size:
-                raise self.spec.error(f'bound has {sx.numel()} components but the expression has '
+                raise self.spec.error(f'bound has {sx.numel()} components but the function has '
                                       f'{size}', f'{path}.{key}')
             return sx
 
@@ -370,8 +370,8 @@ class _Builder:
             for key, sx in (('lower', lower), ('upper', upper)):
                 if ca.depends_on(sx, self.x_sym):
                     raise self.spec.error('the bounds of a "within" constraint may not depend on '
-                                          'joints or features; move that part into the '
-                                          'expression', f'{path}.{key}')
+                                          'joints or unknowns; move that part into the '
+                                          'function', f'{path}.{key}')
             sides = [(f.sx[i] - lower[i], f.sx[i] - upper[i]) for i in range(size)]
         return [(lo_e, hi_e, f.sx[i]) for i, (lo_e, hi_e) in enumerate(sides)]
 
@@ -427,10 +427,10 @@ class _Builder:
         kp = self.params.add(ParamInfo('limits.position_gain', lim.position_gain, 0.0,
                                        float('inf'), '1/s', 'gain of the position-limit rows',
                                        strictly_positive=True))
-        feat_speed = ca.SX(ca.DM([f.max_speed for f in spec.features])) if spec.features \
+        feat_speed = ca.SX(ca.DM([f.max_speed for f in spec.unknowns])) if spec.unknowns \
             else ca.SX(0, 1)
-        lower = np.concatenate([model.lower, [f.lower for f in spec.features]])
-        upper = np.concatenate([model.upper, [f.upper for f in spec.features]])
+        lower = np.concatenate([model.lower, [f.lower for f in spec.unknowns]])
+        upper = np.concatenate([model.upper, [f.upper for f in spec.unknowns]])
         vmax = ca.vertcat(speed_sx, feat_speed)
         pos = ca.vertcat(self.q, self.s)
         lo = -vmax
@@ -454,13 +454,13 @@ class _Builder:
             hi = ca.vertcat(ca.fmax(hi_q, lo[:n_q]), hi[n_q:])
         # a joint already past a limit gets lo > hi from the position rows: keep it moving inward
         lo = ca.fmin(lo, hi)
-        reg = np.ones(model.n_joints + len(spec.features))
+        reg = np.ones(model.n_joints + len(spec.unknowns))
         for joint, value in spec.regularisation.joint_weights.items():
             if joint not in model.joint_names:
                 raise spec.error(f'{joint!r} is not a joint of the robot',
                                  f'regularisation.joint_weights.{joint}')
             reg[model.joint_names.index(joint)] = value
-        reg[model.n_joints:] = spec.regularisation.feature_weight
+        reg[model.n_joints:] = spec.regularisation.unknown_weight
         self.params.add(ParamInfo('regularisation.damping', spec.regularisation.damping, 0.0,
                                   float('inf'), '', 'damping of the velocity regularisation',
                                   strictly_positive=True))

@@ -17,17 +17,17 @@ The skill file format (our own)::
     inputs:                              # scalar sensor signals, keyed by name
       range_left: {unit: m, rate_hz: 100, timeout: 0.05}
       range_right: {unit: m, rate_hz: 100}   # timeout default: max(0.1, 3 / rate_hz)
-    features:                            # extra unknowns, integrated like joints
-      gear_turn: {initial: 0.0, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
+    unknowns:                            # extra unknowns, integrated like joints
+      gear_turn: {start: 0.0, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
     tunables:                            # run-time adjustable values; `value` required
       standoff: {value: 0.008, lower: 0.003, upper: 0.02, unit: m,
                  description: gap between sensors and surface}
       follow_gain: {value: 8.0, lower: 1.0, upper: 20.0, unit: 1/s}
-    expressions:                         # named formulas other formulas can use
+    formulas:                         # named formulas other formulas can use
       mean_range: (range_left + range_right) / 2
-    constraints:                         # task functions; `name` and `expression` required
+    constraints:                         # task functions; `name` and `function` required
       - name: keep_standoff
-        expression: mean_range
+        function: mean_range
         kind: equal                      # equal | at_most | at_least | within
         target: standoff                 # number or formula
         behaviour: {order: 1, gain: follow_gain}   # number or tunable name
@@ -35,7 +35,7 @@ The skill file format (our own)::
         weight: 100.0                    # number or tunable name
         priority: 1                      # 1 is the most important level
       - name: turn_in_range
-        expression: gear_turn
+        function: gear_turn
         kind: within                     # at_least takes lower, at_most upper
         lower: -0.5
         upper: 0.5
@@ -53,13 +53,13 @@ The skill file format (our own)::
     regularisation:
       damping: 0.01                      # > 0 keeps the QP strictly convex
       joint_weights: {joint_1: 2.0}
-      feature_weight: 1.0
+      unknown_weight: 1.0
     offline:                             # only for the offline tools (check, simulate)
       start: {joint_2: -0.5, joint_3: 1.0}   # joint positions, by URDF joint name
       inputs: {range_left: 0.008, range_right: 0.009}   # constant values of declared inputs
       scene: ../scenes/cell.yaml         # optional; relative to this file, must exist
 
-Inputs, features, tunables and expressions share one namespace (the names formulas use), which
+Inputs, unknowns, tunables and formulas share one namespace (the names formulas use), which
 must not contain ``time``, ``pi``, Python keywords or the formula functions. Formulas are only
 checked for syntax here; names inside them are resolved when the skill is compiled.
 """
@@ -85,7 +85,7 @@ from .schema import (
     BehaviourSpec,
     ConstraintSpec,
     EventSpec,
-    FeatureSpec,
+    UnknownSpec,
     InputSpec,
     LimitsSpec,
     OfflineSpec,
@@ -133,12 +133,12 @@ _SCALARS: dict[str, Callable[[ScalarNode], object]] = {
     _TAG + 'null': _CONSTRUCTOR.construct_yaml_null,
 }
 
-_TOP_KEYS = ('skill', 'description', 'robot', 'base_link', 'inputs', 'features', 'tunables',
-             'expressions', 'constraints', 'events', 'limits', 'regularisation', 'offline')
+_TOP_KEYS = ('skill', 'description', 'robot', 'base_link', 'inputs', 'unknowns', 'tunables',
+             'formulas', 'constraints', 'events', 'limits', 'regularisation', 'offline')
 _INPUT_KEYS = ('unit', 'rate_hz', 'timeout')
-_FEATURE_KEYS = ('initial', 'lower', 'upper', 'max_speed', 'unit')
+_UNKNOWN_KEYS = ('start', 'lower', 'upper', 'max_speed', 'unit')
 _TUNABLE_KEYS = ('value', 'lower', 'upper', 'unit', 'description')
-_CONSTRAINT_KEYS = ('name', 'expression', 'kind', 'target', 'lower', 'upper', 'behaviour', 'hard',
+_CONSTRAINT_KEYS = ('name', 'function', 'kind', 'target', 'lower', 'upper', 'behaviour', 'hard',
                     'weight', 'priority')
 _BEHAVIOUR_KEYS = ('order', 'gain', 'natural_frequency', 'damping_ratio')
 _ORDER_KEYS = {1: ('gain',), 2: ('natural_frequency', 'damping_ratio')}
@@ -146,7 +146,7 @@ _KIND_KEYS = {'equal': ('target',), 'at_most': ('upper',), 'at_least': ('lower',
               'within': ('lower', 'upper')}
 _EVENT_KEYS = ('name', 'condition', 'hold_for')
 _LIMITS_KEYS = ('joint_speed', 'joint_speeds', 'joint_acceleration', 'position_gain')
-_REGULARISATION_KEYS = ('damping', 'joint_weights', 'feature_weight')
+_REGULARISATION_KEYS = ('damping', 'joint_weights', 'unknown_weight')
 _OFFLINE_KEYS = ('start', 'inputs', 'scene')
 
 
@@ -533,9 +533,9 @@ class _Reader:
         spec['tunables'] = tunables
         inputs = self.each_entry(top.get('inputs'), self.input)
         spec['inputs'] = inputs
-        spec['features'] = self.each_entry(top.get('features'), self.feature)
-        spec['expressions'] = self.each_entry(top.get('expressions'), self.expression)
-        self.unique_names([top[key] for key in ('inputs', 'features', 'tunables', 'expressions')
+        spec['unknowns'] = self.each_entry(top.get('unknowns'), self.unknown)
+        spec['formulas'] = self.each_entry(top.get('formulas'), self.named_formula)
+        self.unique_names([top[key] for key in ('inputs', 'unknowns', 'tunables', 'formulas')
                            if key in top])
         by_name = {tunable.name: tunable for tunable in tunables}
         spec['constraints'] = self.each_item(top.get('constraints'),
@@ -593,7 +593,7 @@ class _Reader:
             if item.key in first:
                 earlier = first[item.key]
                 msg = (f'the name {item.key!r} is already used by {earlier.path} (line '
-                       f'{earlier.line}); inputs, features, tunables and expressions share one '
+                       f'{earlier.line}); inputs, unknowns, tunables and formulas share one '
                        'namespace')
                 self.fail(item, msg)
             first[item.key] = item
@@ -609,18 +609,18 @@ class _Reader:
         timeout = self.positive(f['timeout']) if 'timeout' in f else max(0.1, 3.0 / rate)
         return InputSpec(name=name, rate_hz=rate, timeout=timeout, **spec)  # type: ignore[arg-type]
 
-    def feature(self, at: _Field) -> FeatureSpec:
+    def unknown(self, at: _Field) -> UnknownSpec:
         name = self.name(at, at.key, formula_name=True)
-        f = self.fields(at, _FEATURE_KEYS)
-        initial = self.number(f['initial']) if 'initial' in f else _default(FeatureSpec, 'initial')
+        f = self.fields(at, _UNKNOWN_KEYS)
+        start = self.number(f['start']) if 'start' in f else _default(UnknownSpec, 'start')
         lower, upper = self.bounds(f)
-        self.inside(at, f, 'initial', initial, lower, upper)
+        self.inside(at, f, 'start', start, lower, upper)
         spec: dict[str, object] = {}
         if 'max_speed' in f:
             spec['max_speed'] = self.positive(f['max_speed'])
         if 'unit' in f:
             spec['unit'] = self.text(f['unit'])
-        return FeatureSpec(name=name, initial=initial, lower=lower, upper=upper,
+        return UnknownSpec(name=name, start=start, lower=lower, upper=upper,
                            **spec)  # type: ignore[arg-type]
 
     def tunable(self, at: _Field) -> TunableSpec:
@@ -632,7 +632,7 @@ class _Reader:
         spec = {key: self.text(f[key]) for key in ('unit', 'description') if key in f}
         return TunableSpec(name=name, value=value, lower=lower, upper=upper, **spec)
 
-    def expression(self, at: _Field) -> tuple[str, str]:
+    def named_formula(self, at: _Field) -> tuple[str, str]:
         return self.name(at, at.key, formula_name=True), self.formula(at)
 
     def bounds(self, f: Mapping[str, _Field]) -> tuple[float, float]:
@@ -653,9 +653,9 @@ class _Reader:
         self.fail(f.get(key, at), msg, path=at.child(key))
 
     def constraint(self, at: _Field, tunables: Mapping[str, TunableSpec]) -> ConstraintSpec:
-        f = self.fields(at, _CONSTRAINT_KEYS, ('name', 'expression'))
+        f = self.fields(at, _CONSTRAINT_KEYS, ('name', 'function'))
         spec: dict[str, object] = {'name': self.name(f['name']),
-                                   'expression': self.formula(f['expression'])}
+                                   'function': self.formula(f['function'])}
         kind = self.kind(f['kind']) if 'kind' in f else 'equal'
         spec['kind'] = kind
         needed = _KIND_KEYS[kind]
@@ -735,7 +735,7 @@ class _Reader:
     def regularisation(self, at: _Field) -> RegularisationSpec:
         f = self.fields(at, _REGULARISATION_KEYS)
         spec: dict[str, object] = {key: self.positive(f[key]) for key in
-                                   ('damping', 'feature_weight') if key in f}
+                                   ('damping', 'unknown_weight') if key in f}
         if 'joint_weights' in f:
             spec['joint_weights'] = self.per_joint(f['joint_weights'])
         return RegularisationSpec(**spec)  # type: ignore[arg-type]

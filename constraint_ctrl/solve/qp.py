@@ -136,7 +136,7 @@ class SkillSolver:
         self.p[index] = value
 
     def set_start(self, q: np.ndarray, s: np.ndarray) -> None:
-        """Joint and feature values at activation, read by start_value() in formulas."""
+        """Joint and unknown values at activation, read by start_value() in formulas."""
         self._inputs['q_start'][:] = q
         self._inputs['s_start'][:] = s
 

@@ -71,7 +71,7 @@ def _interleaved(fns: list[Callable[[], object]], n: int) -> list[np.ndarray]:
 def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict[str, object]:
     """Engine tick (evaluate + assemble + solve) against the raw bound on identical matrices."""
     solver = SkillSolver(skill)
-    s = skill.initial_features()
+    s = skill.start_unknowns()
     solver.set_start(q, s)
     u = np.array([skill.spec.offline.inputs.get(name, 0.0) for name in skill.input_names])
     x = np.zeros(skill.n_x)
@@ -110,7 +110,7 @@ def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict
     return {
         'skill': skill.spec.name,
         'joints': skill.n_q,
-        'features': skill.n_s,
+        'unknowns': skill.n_s,
         'rows': skill.n_rows,
         'qp_variables': skill.layout.n_z,
         'qp_constraints': skill.layout.n_con,
@@ -149,11 +149,11 @@ def generated_skill(urdf_path: Path, n_joints: int, n_rows: int) -> SkillSpec:
         other = 1 + int(rng.integers(0, n_joints // 2))
         axis = k % 3
         kind = kinds[k % 3]
-        value = f'origin(link_{link})[{axis}] - 0.3 * origin(link_{other})[{axis}]'
+        value = f'position(link_{link})[{axis}] - 0.3 * position(link_{other})[{axis}]'
         bound = f'{0.05 * float(rng.standard_normal()):.4f}'
         fields: dict[str, object] = {'target': bound} if kind == 'equal' else \
             ({'upper': bound} if kind == 'at_most' else {'lower': bound})
-        constraints.append(ConstraintSpec(name=f'row_{k}', expression=value, kind=kind,
+        constraints.append(ConstraintSpec(name=f'row_{k}', function=value, kind=kind,
                                           behaviour=BehaviourSpec(order=1, gain=2.0),
                                           weight=float(1 + k % 5), **fields))
     return SkillSpec(name=f'chain_{n_joints}_{n_rows}', robot=urdf_path,

@@ -56,7 +56,7 @@ def check_file(path: Path) -> CheckReport:
 def check_compiled(skill: CompiledSkill) -> CheckReport:
     spec = skill.spec
     report = CheckReport(skill=spec.name, source=spec.source)
-    report.notes.append(f'{skill.n_rows} rows, {skill.n_q} joints, {skill.n_s} features, '
+    report.notes.append(f'{skill.n_rows} rows, {skill.n_q} joints, {skill.n_s} unknowns, '
                         f'levels {list(skill.layout.levels)}, compiled in '
                         f'{skill.compile_seconds * 1000:.0f} ms')
     q = np.array([float(spec.offline.start.get(j, 0.0)) for j in skill.joint_names])
@@ -73,7 +73,7 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
             report.warnings.append(f'input {name!r} has no offline value; checked with 0')
     if spec.offline.scene is not None:
         u = _scene_values(skill, q, u, report)
-    s = skill.initial_features()
+    s = skill.start_unknowns()
     _check_limits(skill, q, s, report)
     solver = SkillSolver(skill)
     solver.set_start(q, s)
@@ -123,9 +123,9 @@ def _check_limits(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
         if q[j] < model.lower[j] or q[j] > model.upper[j]:
             report.warnings.append(f'joint {name} starts at {q[j]:.4g}, outside its limits '
                                    f'[{model.lower[j]:.4g}, {model.upper[j]:.4g}]')
-    for k, feat in enumerate(skill.spec.features):
+    for k, feat in enumerate(skill.spec.unknowns):
         if s[k] < feat.lower or s[k] > feat.upper:
-            report.warnings.append(f'feature {feat.name} starts at {s[k]:.4g}, outside '
+            report.warnings.append(f'unknown {feat.name} starts at {s[k]:.4g}, outside '
                                    f'[{feat.lower:.4g}, {feat.upper:.4g}]')
     for info in skill.params:
         problem = info.check(info.value)
@@ -192,7 +192,7 @@ def _conflicting_hard_rows(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
             culprits.append(con.name)
     if culprits:
         return 'making any one of ' + ', '.join(culprits) + ' soft resolves it'
-    return 'the joint/feature limits conflict with the hard rows ' + \
+    return 'the joint/unknown limits conflict with the hard rows ' + \
         ', '.join(c.name for c in hard)
 
 

@@ -60,9 +60,9 @@ def plot_simulation(skill: CompiledSkill, trace: Trace, out_dir: Path) -> list[P
     axes[0].grid(True, alpha=0.3)
     axes[0].legend(fontsize=8, ncol=3)
     if skill.n_s:
-        for j, name in enumerate(skill.feature_names):
-            axes[1].plot(t, trace.feature_velocity[:, j], label=name)
-        axes[1].set_ylabel('feature velocity')
+        for j, name in enumerate(skill.unknown_names):
+            axes[1].plot(t, trace.unknown_velocity[:, j], label=name)
+        axes[1].set_ylabel('unknown velocity')
         axes[1].grid(True, alpha=0.3)
         axes[1].legend(fontsize=8)
     axes[-1].set_xlabel('time (s)')

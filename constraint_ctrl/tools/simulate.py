@@ -26,8 +26,8 @@ class Trace:
     time: np.ndarray
     q: np.ndarray
     joint_velocity: np.ndarray
-    feature_velocity: np.ndarray
-    features: np.ndarray
+    unknown_velocity: np.ndarray
+    unknowns: np.ndarray
     error: np.ndarray
     slack: np.ndarray
     active: np.ndarray
@@ -113,7 +113,7 @@ def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
     rows = skill.n_rows
     trace = Trace(time=np.arange(n) * dt, q=np.zeros((n, skill.n_q)),
                   joint_velocity=np.zeros((n, skill.n_q)),
-                  feature_velocity=np.zeros((n, skill.n_s)), features=np.zeros((n, skill.n_s)),
+                  unknown_velocity=np.zeros((n, skill.n_s)), unknowns=np.zeros((n, skill.n_s)),
                   error=np.zeros((n, rows)), slack=np.zeros((n, rows)),
                   active=np.zeros((n, rows), dtype=bool), solve_us=np.zeros(n))
     bar = _progress(n) if progress and n >= 5000 else None
@@ -123,9 +123,9 @@ def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
         result = runner.tick(q, u, dt)
         report = runner.diagnostics()
         trace.q[k] = plant.true_q()
-        trace.features[k] = runner.features
+        trace.unknowns[k] = runner.unknowns
         trace.joint_velocity[k] = result.joint_velocity
-        trace.feature_velocity[k] = result.feature_velocity
+        trace.unknown_velocity[k] = result.unknown_velocity
         trace.error[k] = report.error
         trace.slack[k] = report.slack
         trace.active[k] = report.active
@@ -177,7 +177,7 @@ def summarise(skill: CompiledSkill, trace: Trace, duration: float, dt: float) ->
             'note': 'evaluate + solve per tick, wall clock on this machine',
         },
         'final_joint_positions': dict(zip(skill.joint_names, trace.q[-1].tolist())),
-        'final_features': dict(zip(skill.feature_names, trace.features[-1].tolist())),
+        'final_unknowns': dict(zip(skill.unknown_names, trace.unknowns[-1].tolist())),
     }
 
 

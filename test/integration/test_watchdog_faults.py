@@ -44,13 +44,13 @@ inputs:
   offset: {{unit: m, rate_hz: 100, timeout: 0.1}}
 constraints:
   - name: sweep
-    expression: origin(tool_tip)
+    function: position(tool_tip)
     kind: equal
     target: vector(0.45 + 0.05 * sin(2 * pi * time / 2), 0.05 * cos(2 * pi * time / 2), 0.35 + offset)
     behaviour: {{order: 1, gain: 4.0}}
     weight: 100.0
   - name: tool_down
-    expression: cross(axis_z(tool_tip), vector(0, 0, -1))
+    function: cross(axis_z(tool_tip), vector(0, 0, -1))
     kind: equal
     target: 0
     behaviour: {{order: 1, gain: 4.0}}
