@@ -51,6 +51,9 @@ FUNCTION_OUTPUTS = ('value', 'error', 'J', 'e_t', 'jdx', 'lo', 'hi', 'weight', '
 #: Below this many Jacobian entries the whole tick function is flattened into one SX graph
 #: (fastest to evaluate); above it, G = H^T H stays a dense matrix product (fastest to build).
 EXPAND_LIMIT = 4000
+#: Most QP rows one skill may have (a vector function counts its components): about 10 s of
+#: compile time on a busy 2-core machine (measured: 2000 rows of position(tool_tip), 9 s).
+MAX_ROWS = 2000
 
 
 @dataclass(frozen=True, slots=True)
@@ -262,6 +265,10 @@ class _Builder:
         for index, con in enumerate(spec.constraints):
             path = f'constraints[{index}]'
             made = self._constraint_rows(con, scope, path)
+            if len(rows) + len(made) > MAX_ROWS:
+                raise spec.error(f'more than {MAX_ROWS} rows: a skill is limited to {MAX_ROWS} '
+                                 'rows (a vector function counts its components)',
+                                 f'{path}.function')
             gains = self._behaviour_params(con, path)
             weight = self._number_or_tunable(con.weight, f'{con.name}.weight', f'{path}.weight',
                                              description=f'weight of {con.name}')
@@ -560,5 +567,5 @@ def _level_one_blocks(layout: QpLayout, J: ca.SX, lo: ca.SX, hi: ca.SX, w: ca.SX
     return hj, hv, C, b
 
 
-__all__ = ['CompiledSkill', 'ParamInfo', 'QpLayout', 'RowInfo', 'compile_skill',
+__all__ = ['MAX_ROWS', 'CompiledSkill', 'ParamInfo', 'QpLayout', 'RowInfo', 'compile_skill',
            'FUNCTION_INPUTS', 'FUNCTION_OUTPUTS', 'FormulaError']
