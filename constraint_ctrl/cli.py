@@ -15,13 +15,22 @@ from .errors import ConstraintCtrlError
 
 
 def _check(args: argparse.Namespace) -> int:
+    """Check every file named; one that cannot be loaded is reported and the others still run.
+
+    Exit code: 0 all clean, 1 warnings or errors found, 2 a file could not be loaded.
+    """
     from .tools.check import check_file
     status = 0
     for path in args.skills:
-        report = check_file(Path(path))
+        try:
+            report = check_file(Path(path))
+        except ConstraintCtrlError as err:
+            print(f'error: {err}', file=sys.stderr)
+            status = 2
+            continue
         print('\n'.join(report.lines()))
         if not report.clean:
-            status = 1
+            status = max(status, 1)
     return status
 
 

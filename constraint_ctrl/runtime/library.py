@@ -16,6 +16,7 @@ from ..errors import ConstraintCtrlError
 from ..model.kinematics import RobotModel
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
+from ..skill.robot import robot_model
 from .runner import SkillRunner
 
 
@@ -80,7 +81,7 @@ class SkillLibrary:
         key = (spec.robot.resolve(), spec.base_link)
         model = self._models.get(key)
         if model is None:
-            model = RobotModel.from_urdf(spec.robot, base_link=spec.base_link)
+            model = robot_model(spec)   # URDF and base_link errors located in the file
             self._models[key] = model
         if set(model.joint_names) != set(self.joint_names):
             msg = (f'{path}: robot {spec.robot.name} has joints {list(model.joint_names)}, '

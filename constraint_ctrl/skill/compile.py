@@ -36,6 +36,7 @@ import numpy as np
 from ..errors import FormulaError, SkillError
 from ..model.kinematics import RobotModel
 from .formula import FormulaScope, Quantity, compile_formula
+from .robot import robot_model
 from .schema import ConstraintSpec, SkillSpec
 
 #: Stand-in for an infinite speed limit, so the QP never sees inf (rad/s or m/s).
@@ -192,7 +193,7 @@ def compile_skill(spec: SkillSpec, model: RobotModel | None = None) -> CompiledS
 
     started = _time.perf_counter()
     if model is None:
-        model = RobotModel.from_urdf(spec.robot, base_link=spec.base_link)
+        model = robot_model(spec)   # URDF and base_link problems located in the skill file
     builder = _Builder(spec, model)
     compiled = builder.build()
     compiled.compile_seconds = _time.perf_counter() - started
@@ -356,6 +357,12 @@ class _Builder:
                                       f'{quantity.kind}', f'{path}.{key}')
             sx = quantity.sx
             if sx.numel() == 1 and size > 1:
+                # A number bound of an inequality bounds every component (a box), and the
+                # number 0 is the zero vector; any other single target is ambiguous.
+                if key == 'target' and not (isinstance(value, (int, float)) and value == 0):
+                    raise self.spec.error(f'the target is 1 value but the function has {size} '
+                                          f'components; give a vector of {size} (vector(x, y, '
+                                          'z)), or 0 for the zero vector', f'{path}.{key}')
                 sx = ca.repmat(sx, size, 1)
             if sx.numel() != size:
                 raise self.spec.error(f'bound has {sx.numel()} components but the function has '

@@ -15,6 +15,7 @@ import numpy as np
 from ..errors import ConstraintCtrlError
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
+from ..skill.schema import SkillSpec
 from ..solve.qp import SkillSolver, SolveStatus
 
 #: Smallest singular value (relative to the largest) below which a Jacobian counts as
@@ -59,10 +60,16 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
     report.notes.append(f'{skill.n_rows} rows, {skill.n_q} joints, {skill.n_s} unknowns, '
                         f'levels {list(skill.layout.levels)}, compiled in '
                         f'{skill.compile_seconds * 1000:.0f} ms')
+    if not spec.constraints:
+        report.errors.append(located(spec, 'the skill has no constraints: it would only hold '
+                                           'the arm still; give it at least one', 'constraints'))
+    _check_limits_given(skill, report)
     q = np.array([float(spec.offline.start.get(j, 0.0)) for j in skill.joint_names])
-    unknown = sorted(set(spec.offline.start) - set(skill.joint_names))
-    if unknown:
-        report.errors.append(f'offline.start names unknown joints {unknown}')
+    for joint in spec.offline.start:
+        if joint not in skill.joint_names:
+            report.errors.append(located(
+                spec, f'{joint!r} is not a joint of the robot (joints: '
+                      f'{", ".join(skill.joint_names)})', f'offline.start.{joint}'))
     if not spec.offline.start:
         report.notes.append('no offline.start: checking at all joints = 0')
     u = np.zeros(len(skill.input_names))
@@ -77,18 +84,16 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
     _check_limits(skill, q, s, report)
     solver = SkillSolver(skill)
     solver.set_start(q, s)
-    result = solver.solve(q, s, u, 0.0, 0.002, np.zeros(skill.n_x))
+    with np.errstate(invalid='ignore', over='ignore'):   # non-finite rows are reported below
+        result = solver.solve(q, s, u, 0.0, 0.002, np.zeros(skill.n_x))
     out = solver.outputs
+    not_finite = _check_finite(skill, out, report)
     if result.status is SolveStatus.INFEASIBLE:
         report.errors.append('the hard rows and limits cannot all hold at the start: '
                              + _conflicting_hard_rows(skill, q, s, u))
-    elif not result.ok:
+    elif not result.ok and not not_finite:
         report.errors.append(f'solve failed at the start: {result.status.value} '
                              f'{result.message}')
-    for i, row in enumerate(skill.rows):
-        if not np.isfinite(out['value'][i]) or not np.isfinite(out['J'][i]).all():
-            report.errors.append(f'row {row.name}: not finite at the start pose '
-                                 '(e.g. normalising a zero vector)')
     diag = solver.diagnostics()
     if result.ok:
         _check_singular(skill, solver, q, s, u, report)
@@ -97,6 +102,60 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
             report.warnings.append(f'row {row.name} ({row.kind}) is already violated at the '
                                    f'start by {diag.error[i]:.4g}')
     return report
+
+
+def located(spec: SkillSpec, message: str, field_path: str) -> str:
+    """``file:line: field: message`` for a finding that belongs to one field of the file."""
+    return str(spec.error(message, field_path))
+
+
+def _constraint_index(skill: CompiledSkill, name: str) -> int:
+    return [c.name for c in skill.spec.constraints].index(name)
+
+
+def _check_finite(skill: CompiledSkill, out: dict[str, np.ndarray], report: CheckReport) -> bool:
+    """Name each row whose value, error or Jacobian is NaN or inf at the start, with its line.
+
+    The value and Jacobian come from the task function, the error also from the target or
+    bounds: the field named is the one that made the number. Returns whether any row was.
+    """
+    found = False
+    for i, row in enumerate(skill.rows):
+        con = _constraint_index(skill, row.constraint)
+        function_bad = not (np.isfinite(out['value'][i]) and np.isfinite(out['J'][i]).all())
+        if function_bad:
+            field = 'function'
+        elif not np.isfinite(out['error'][i]):
+            field = {'equal': 'target', 'at_most': 'upper', 'at_least': 'lower'}.get(
+                row.kind, 'lower')
+        else:
+            continue
+        found = True
+        report.errors.append(located(
+            skill.spec, f'row {row.name}: not finite at the start pose (value '
+                        f'{out["value"][i]:.4g}, error {out["error"][i]:.4g}); e.g. an overflow '
+                        'such as 10 ** 400, 0 / 0, or normalising a zero vector',
+            f'constraints[{con}].{field}'))
+    return found
+
+
+def _check_limits_given(skill: CompiledSkill, report: CheckReport) -> None:
+    """Warn when the skill leaves its speeds to the robot: name the limits that then apply."""
+    limits = skill.spec.limits
+    if limits.joint_speed is not None or limits.joint_speeds or \
+            limits.joint_acceleration is not None:
+        return
+    from ..runtime.watchdog_setup import DEFAULTS
+    model = skill.model
+    units = ['m/s' if p else 'rad/s' for p in model.is_prismatic]
+    speeds = ', '.join(f'{j} {v:g} {unit}' for j, v, unit in
+                       zip(skill.joint_names, model.velocity_limit, units))
+    report.warnings.append(
+        'the skill sets no limits: the solver may command up to the URDF velocity limits '
+        f'({speeds}) and any acceleration; on the robot (and in simulate) the watchdog then caps '
+        f'the acceleration at {DEFAULTS["joint_acceleration"]:g} rad/s^2 (the node\'s default '
+        'watchdog.joint_acceleration). Set limits.joint_speed and limits.joint_acceleration '
+        'for the task')
 
 
 def _scene_values(skill: CompiledSkill, q: np.ndarray, u: np.ndarray,
@@ -148,7 +207,8 @@ def _check_singular(skill: CompiledSkill, solver: SkillSolver, q: np.ndarray, s:
     the tool axis is no row's business); only a rank *drop* at the start pose, relative to the
     generic rank seen at nearby poses, marks a singular configuration.
     """
-    J_start = solver.outputs['J'][:, :skill.n_q].copy()
+    # All columns: a row that only moves unknowns (d s / d s = 1) is driven by them
+    J_start = solver.outputs['J'].copy()
     groups = {con.name: [i for i, r in enumerate(skill.rows) if r.constraint == con.name]
               for con in skill.spec.constraints}
     groups['all soft equality rows'] = [i for i, r in enumerate(skill.rows)
@@ -159,7 +219,7 @@ def _check_singular(skill: CompiledSkill, solver: SkillSolver, q: np.ndarray, s:
         q_near = q + rng.uniform(-0.2, 0.2, q.size)
         if not solver.solve(q_near, s, u, 0.0, 0.002, np.zeros(skill.n_x)).ok:
             continue
-        J = solver.outputs['J'][:, :skill.n_q]
+        J = solver.outputs['J']
         for name, idx in groups.items():
             generic[name] = max(generic[name], _rank(J[idx]))
     for name, idx in groups.items():
