@@ -94,7 +94,8 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
     elif not result.ok and not not_finite:
         report.errors.append(f'solve failed at the start: {result.status.value} '
                              f'{result.message}')
-    diag = solver.diagnostics()
+    with np.errstate(invalid='ignore', over='ignore'):
+        diag = solver.diagnostics()
     if result.ok:
         _check_singular(skill, solver, q, s, u, report)
     for i, row in enumerate(skill.rows):
