@@ -28,7 +28,7 @@ def _check(args: argparse.Namespace) -> int:
     status = 0
     for path in args.skills:
         try:
-            report = check_file(Path(path))
+            report = check_file(Path(path), rate_hz=args.rate)
         except ConstraintCtrlError as err:
             print(f'error: {err}', file=sys.stderr)
             status = 2
@@ -136,6 +136,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     p = sub.add_parser('check', help='validate skill files and inspect them at their start pose')
     p.add_argument('skills', nargs='+', help='skill YAML files')
+    p.add_argument('--rate', type=float, default=500.0, metavar='HZ',
+                   help="control rate the behaviours are checked against (default: the node's "
+                        'rate_hz, 500)')
     p.set_defaults(func=_check)
 
     p = sub.add_parser('simulate', help='lockstep kinematic simulation of one skill')

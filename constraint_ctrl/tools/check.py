@@ -2,20 +2,34 @@
 
 Beyond loading and compiling (which already name file, line and field of any mistake), the check
 evaluates the skill once at its offline start pose and reports what would bite at run time:
-hard rows that cannot hold together, near-singular Jacobians, limits already violated, and
-inputs without a value to check with. The result is clean only when there is nothing to report.
+hard rows that cannot hold together, near-singular Jacobians, limits already violated, inputs
+without a value to check with, no limits set, and behaviours too fast for the control rate and
+the inputs' delay (skill/stability.py). The result is clean only when there is nothing to
+report (notes do not count).
+
+Behaviours against the control rate: each row's delay is that of the slowest input its error
+depends on (found from the compiled function's sparsity), taken as one sample period 1 / rate_hz
+(a held sample is up to one period old when the next one arrives; its timeout is the age at
+which the node stops, not the age it runs with), in whole ticks of the control period (rows of
+joints and unknowns only: no delay). A first-order gain or a second-order natural frequency at
+or beyond the discrete stability limit is a warning naming the largest stable value; within a
+factor 2 of it, a note (the response rings). Gains given as tunables are checked at their value
+and at their upper bound (a value they may be set to at run time).
 """
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import casadi as ca
 import numpy as np
 
 from ..errors import ConstraintCtrlError
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
 from ..skill.schema import SkillSpec
+from ..skill.stability import delay_ticks, first_order_limit, second_order_limit
 from ..solve.qp import SkillSolver, SolveStatus
 
 #: Smallest singular value (relative to the largest) below which a Jacobian counts as
@@ -47,14 +61,21 @@ class CheckReport:
         return out
 
 
-def check_file(path: Path) -> CheckReport:
+#: The controller node's default control rate (parameter rate_hz), Hz.
+NODE_RATE_HZ = 500.0
+
+
+def check_file(path: Path, rate_hz: float = NODE_RATE_HZ) -> CheckReport:
     """Load, compile and inspect one skill file. Loading errors propagate (SkillError)."""
+    if not (math.isfinite(rate_hz) and rate_hz > 0):
+        msg = f'--rate must be a finite number > 0 (Hz), got {rate_hz!r}'
+        raise ConstraintCtrlError(msg)
     spec = load_skill(path)
     skill = compile_skill(spec)
-    return check_compiled(skill)
+    return check_compiled(skill, rate_hz)
 
 
-def check_compiled(skill: CompiledSkill) -> CheckReport:
+def check_compiled(skill: CompiledSkill, rate_hz: float = NODE_RATE_HZ) -> CheckReport:
     spec = skill.spec
     report = CheckReport(skill=spec.name, source=spec.source)
     report.notes.append(f'{skill.n_rows} rows, {skill.n_q} joints, {skill.n_s} unknowns, '
@@ -64,6 +85,7 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
         report.errors.append(located(spec, 'the skill has no constraints: it would only hold '
                                            'the arm still; give it at least one', 'constraints'))
     _check_limits_given(skill, report)
+    _check_behaviours(skill, 1.0 / rate_hz, report)
     q = np.array([float(spec.offline.start.get(j, 0.0)) for j in skill.joint_names])
     for joint in spec.offline.start:
         if joint not in skill.joint_names:
@@ -138,6 +160,83 @@ def _check_finite(skill: CompiledSkill, out: dict[str, np.ndarray], report: Chec
                         'such as 10 ** 400, 0 / 0, or normalising a zero vector',
             f'constraints[{con}].{field}'))
     return found
+
+
+def _row_delays(skill: CompiledSkill) -> tuple[np.ndarray, list[str]]:
+    """Per row: the sample period of the slowest input its error depends on (s, 0 if none),
+    and that input's name ('' if none)."""
+    n_u = len(skill.input_names)
+    delays = np.zeros(skill.n_rows)
+    names = [''] * skill.n_rows
+    if not n_u or not skill.n_rows:
+        return delays, names
+    fn = skill.function
+    pattern = fn.jac_sparsity(fn.index_out('error'), fn.index_in('u'))
+    depends = np.array(ca.DM(pattern, 1).full(), dtype=bool)
+    periods = np.array([1.0 / inp.rate_hz for inp in skill.spec.inputs])
+    for i in range(skill.n_rows):
+        used = np.flatnonzero(depends[i])
+        if used.size:
+            worst = used[np.argmax(periods[used])]
+            delays[i], names[i] = periods[worst], skill.input_names[worst]
+    return delays, names
+
+
+def _behaviour_values(skill: CompiledSkill, value: float | str) -> list[tuple[float, str]]:
+    """(value, how it is given) to check: a number, or a tunable's value and its upper bound."""
+    if not isinstance(value, str):
+        return [(float(value), '')]
+    info = skill.params[skill.param_index(value)]
+    checked = [(info.value, f' (tunable {value})')]
+    if math.isfinite(info.upper) and info.upper > info.value:
+        checked.append((info.upper, f' (tunable {value} at its upper bound, settable at run '
+                                    'time)'))
+    return checked
+
+
+def _check_behaviours(skill: CompiledSkill, dt: float, report: CheckReport) -> None:
+    """Each behaviour against the discrete stability limit at the control rate (module doc)."""
+    delays, inputs = _row_delays(skill)
+    rate = 1.0 / dt
+    for index, con in enumerate(skill.spec.constraints):
+        rows = [i for i, r in enumerate(skill.rows) if r.constraint == con.name]
+        if not rows:
+            continue
+        worst = max(rows, key=lambda i: delays[i])
+        ticks = delay_ticks(delays[worst], dt)
+        why = (f'at {rate:g} Hz with {ticks} tick(s) of input delay (input {inputs[worst]!r} '
+               f'at {1.0 / delays[worst]:g} Hz: a sample is up to {delays[worst] * 1000:g} ms '
+               'old)' if ticks else f'at {rate:g} Hz (no input in this row: no delay)')
+        beh = con.behaviour
+        if beh.order == 1:
+            limit = first_order_limit(ticks) / dt
+            for gain, given in _behaviour_values(skill, beh.gain):
+                _compare(report, skill, f'constraints[{index}].behaviour.gain',
+                         f'first-order gain {gain:g} 1/s{given}', gain, limit, '1/s', why)
+            continue
+        for zeta, zeta_given in _behaviour_values(skill, beh.damping_ratio):
+            limit = second_order_limit(zeta, ticks) / dt
+            for omega, given in _behaviour_values(skill, beh.natural_frequency):
+                _compare(report, skill, f'constraints[{index}].behaviour.natural_frequency',
+                         f'natural frequency {omega:g} rad/s{given} with damping ratio '
+                         f'{zeta:g}{zeta_given}', omega, limit, 'rad/s', why)
+
+
+def _compare(report: CheckReport, skill: CompiledSkill, field_path: str, what: str,
+             value: float, limit: float, unit: str, why: str) -> None:
+    if limit <= 0.0:
+        report.warnings.append(located(
+            skill.spec, f'{what} {why}: an undamped second-order row with input delay grows '
+                        'at any frequency; give it a damping ratio > 0', field_path))
+    elif value >= limit:
+        report.warnings.append(located(
+            skill.spec, f'{what} {why} is beyond the discrete stability limit: the error would '
+                        f'oscillate and grow; the largest stable value is {limit:.4g} {unit} '
+                        '(skill/stability.py)', field_path))
+    elif value > 0.5 * limit:
+        report.notes.append(located(
+            skill.spec, f'{what} {why} is within a factor 2 of the stability limit '
+                        f'{limit:.4g} {unit}: the response will ring', field_path))
 
 
 def _check_limits_given(skill: CompiledSkill, report: CheckReport) -> None:

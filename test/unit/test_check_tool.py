@@ -15,6 +15,7 @@ import re
 import textwrap
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from constraint_ctrl.errors import SkillError
@@ -193,3 +194,46 @@ def test_check_lines_show_errors_before_warnings(tmp_path: Path) -> None:
     order = [m.group(1) for m in kinds if m]
     assert order == sorted(order, key=['error', 'warning', 'note'].index)
     assert lines[-1].strip().endswith('warning(s)')
+
+
+# -- issue 10 section 2: behaviours against the control rate and input delay ----------------------
+
+SENSED = """\
+inputs:
+  gap: {unit: m, rate_hz: 100}
+tunables:
+  follow_gain: {value: 40.0, lower: 1.0, upper: 400.0, unit: 1/s}
+constraints:
+  - name: follow                                   # through the 100 Hz input
+    function: joint(joint_1) - value_now(joint(joint_1)) + gap
+    target: 0
+    behaviour: {order: 1, gain: follow_gain}       # <-
+  - name: wrist                                    # joints only: no delay
+    function: joint(joint_5)
+    target: 0.8
+    behaviour: {order: 2, natural_frequency: 600.0, damping_ratio: 0.7}
+offline:
+  start: {joint_5: 0.8}
+  inputs: {gap: 0.0}
+"""
+
+
+def test_behaviours_are_checked_against_the_rate_and_the_input_delay(tmp_path: Path) -> None:
+    # 500 Hz, a 100 Hz input: a sample is up to 10 ms = 5 ticks old; first-order limit
+    # K dt < 2 sin(pi / 22) (skill/stability.py), i.e. K < 142.3 1/s. The gain 40 is fine, its
+    # tunable upper bound 400 is not. The wrist row has no input: w dt < 2 / (0.7 +
+    # sqrt(1.49)) = 1.0413, w < 520.7 rad/s at 500 Hz, so 600 is beyond.
+    path = write(tmp_path, SENSED)
+    report = check_file(path)
+    limit = 2 * np.sin(np.pi / 22) * 500
+    gain = [w for w in report.warnings if 'behaviour.gain' in w]
+    assert len(gain) == 1 and 'upper bound' in gain[0] and f'{limit:.4g} 1/s' in gain[0]
+    assert gain[0].startswith(f'{path}:{marked_line(path)}: constraints[0].behaviour.gain')
+    assert "5 tick(s) of input delay (input 'gap' at 100 Hz" in gain[0]
+    omega = [w for w in report.warnings if 'natural_frequency' in w]
+    assert len(omega) == 1 and '520.7 rad/s' in omega[0] and 'no delay' in omega[0]
+    # at 2 kHz the wrist row is fine (limit 2083 rad/s) and the gain limit is 20 ticks:
+    # 2 sin(pi / 82) * 2000 = 153.2 1/s
+    report = check_file(path, rate_hz=2000.0)
+    assert not [w for w in report.warnings if 'natural_frequency' in w]
+    assert any(f'{2 * np.sin(np.pi / 82) * 2000:.4g} 1/s' in w for w in report.warnings)
