@@ -166,7 +166,7 @@ def start_pose(skill: CompiledSkill) -> np.ndarray:
     unknown = sorted(set(start) - set(skill.joint_names))
     if unknown:
         raise skill.spec.error(f'unknown joints {unknown}; the robot has {list(skill.joint_names)}',
-                               'offline.start')
+                               f'offline.start.{unknown[0]}')
     return np.array([float(start.get(j, 0.0)) for j in skill.joint_names])
 
 
