@@ -130,3 +130,15 @@ def test_functions_lists_every_name_a_formula_may_use(capsys: pytest.CaptureFixt
     assert set(FUNCTIONS) <= names
     assert {'time', 'pi'} <= names and set(CONSTANTS) <= names
     assert 'seconds since the skill was activated' in out
+
+
+def test_simulate_refuses_a_trace_larger_than_the_memory_bound(
+        tmp_path: Path, capsys: pytest.CaptureFixture[str],
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # move_to_point: 6 joints, 0 unknowns, 8 rows -> 4 * 6 + 3 * 8 + 2 = 50 numbers per tick
+    monkeypatch.setattr(simulate, 'MAX_TRACE_VALUES', 50 * 100)
+    argv = ['simulate', str(SKILL), '--out', str(tmp_path / 'o'), '--quiet', '--tick', '0.01']
+    assert cli.main([*argv, '--duration', '1.01']) == 2      # 101 ticks: 5050 numbers
+    line = one_error_line(capsys)
+    assert '50 numbers each' in line and 'at most 5,000' in line
+    assert not (tmp_path / 'o').exists()
