@@ -102,6 +102,7 @@ def node_settings(params_file: Path | None) -> NodeSettings:
         return NodeSettings()
     from ..transport.ros_args import load_params_file, node_key_matches
 
+    _bounded_yaml(params_file)
     try:
         table = load_params_file(params_file)
     except ConstraintCtrlError as err:
@@ -128,6 +129,31 @@ def node_settings(params_file: Path | None) -> NodeSettings:
                 raise SimulateError(msg)
             setattr(settings, attr, float(value))
     return settings
+
+
+def _bounded_yaml(path: Path) -> None:
+    """Refuse a parameters file over the limits of our YAML formats before PyYAML expands it
+    (located_yaml: 1,000,000 bytes, 100,000 values with aliases written out)."""
+    import yaml
+
+    from ..errors import LocatedError
+    from ..located_yaml import CountingLoader, TooManyNodes, check_expansion, read_limited
+
+    try:
+        text = read_limited(path, LocatedError).decode('utf-8')
+        loader = CountingLoader(text)
+        try:
+            root = loader.get_single_node()
+        finally:
+            loader.dispose()
+        if root is not None:
+            check_expansion(root, LocatedError, str(path))
+    except LocatedError as err:
+        raise SimulateError(str(err)) from None
+    except TooManyNodes as err:
+        raise SimulateError(f'{path}:{err.problem_mark.line + 1}: {err.problem}') from None
+    except (yaml.YAMLError, UnicodeDecodeError, RecursionError):
+        return                          # load_params_file reports what is wrong with it
 
 
 @dataclass(slots=True)

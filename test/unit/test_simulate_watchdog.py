@@ -213,3 +213,15 @@ def test_unknown_watchdog_parameter_in_the_file_is_refused(tmp_path: Path) -> No
     with pytest.raises(simulate.SimulateError, match='reduced_sped'):
         simulate.node_settings(params)
     shutil.rmtree(tmp_path / 'skills', ignore_errors=True)
+
+
+def test_a_parameters_file_that_expands_beyond_the_budget_is_refused(tmp_path: Path) -> None:
+    # nested aliases (10 per level) stand for 10**7 numbers: the parameter reader quotes a
+    # bad list value in its message, a repr of all of them
+    lines = ['constraint_controller:', '  ros__parameters:',
+             '    l0: &l0 [1, 1, 1, 1, 1, 1, 1, 1, 1, 1]']
+    lines += [f'    l{i}: &l{i} [' + ', '.join([f'*l{i - 1}'] * 10) + ']' for i in range(1, 7)]
+    params = tmp_path / 'p.yaml'
+    params.write_text('\n'.join(lines) + '\n')
+    with pytest.raises(simulate.SimulateError, match='expands to more than 100,000 values'):
+        simulate.node_settings(params)
