@@ -216,11 +216,13 @@ def test_unknown_watchdog_parameter_in_the_file_is_refused(tmp_path: Path) -> No
 
 
 def test_a_parameters_file_that_expands_beyond_the_budget_is_refused(tmp_path: Path) -> None:
-    # nested aliases (10 per level) stand for 10**7 numbers: the parameter reader quotes a
-    # bad list value in its message, a repr of all of them
+    # nested mapping aliases (10 keys per level) stand for 10**6 parameters: the parameter
+    # reader flattens every one of them into its own dotted name
+    keys = 'abcdefghij'
     lines = ['constraint_controller:', '  ros__parameters:',
-             '    l0: &l0 [1, 1, 1, 1, 1, 1, 1, 1, 1, 1]']
-    lines += [f'    l{i}: &l{i} [' + ', '.join([f'*l{i - 1}'] * 10) + ']' for i in range(1, 7)]
+             '    m0: &m0 {' + ', '.join(f'{k}: 1' for k in keys) + '}']
+    lines += [f'    m{i}: &m{i} {{' + ', '.join(f'{k}: *m{i - 1}' for k in keys) + '}'
+              for i in range(1, 7)]
     params = tmp_path / 'p.yaml'
     params.write_text('\n'.join(lines) + '\n')
     with pytest.raises(simulate.SimulateError, match='expands to more than 100,000 values'):
