@@ -16,9 +16,15 @@ from scipy.spatial.transform import Rotation
 
 from constraint_ctrl.frames import buffer as fb
 from constraint_ctrl.frames.buffer import LookupFailure, Transform, TransformBuffer
-from constraint_ctrl.frames.messages import (MALFORMED, add_tf_message, make_edge,
-                                             edge_from_transform_stamped, ns_to_stamp,
-                                             stamp_to_ns, tf_message)
+from constraint_ctrl.frames.messages import (
+    MALFORMED,
+    add_tf_message,
+    edge_from_transform_stamped,
+    make_edge,
+    ns_to_stamp,
+    stamp_to_ns,
+    tf_message,
+)
 
 SEC = 1_000_000_000
 ID = (0.0, 0.0, 0.0, 1.0)
@@ -30,7 +36,7 @@ def failure(result: object) -> str:
     return result.kind
 
 
-# -- lookups that fail, each for its own reason ------------------------------------------------
+# -- lookups that fail, each for its own reason ----------------------------------------------
 
 def test_unknown_not_connected_and_invalid_frames() -> None:
     b = TransformBuffer()
@@ -77,7 +83,7 @@ def test_a_loop_is_reported_not_followed_forever() -> None:
     assert failure(b.lookup('c', 'b', 0)) == fb.LOOP
 
 
-# -- the tree: replacement, history, same stamps -------------------------------------------------
+# -- the tree: replacement, history, same stamps -----------------------------------------------
 
 def test_a_second_parent_replaces_the_edge_and_its_history() -> None:
     b = TransformBuffer()
@@ -137,7 +143,7 @@ def test_many_samples_stay_correct_across_compaction() -> None:
                 fb.BEFORE_HISTORY
 
 
-# -- insertion checks (tf2 setTransformImpl) ------------------------------------------------------
+# -- insertion checks (tf2 setTransformImpl) ----------------------------------------------------
 
 @pytest.mark.parametrize(('parent', 'child', 'translation', 'rotation', 'kind'), [
     ('a', 'a', (0, 0, 0), ID, fb.SELF_TRANSFORM),                  # TF_SELF_TRANSFORM
@@ -168,7 +174,7 @@ def test_leading_slash_is_stripped_and_near_unit_quaternions_normalised() -> Non
                                atol=1e-12)
 
 
-# -- messages ---------------------------------------------------------------------------------------
+# -- messages ------------------------------------------------------------------------------------
 
 @dataclass
 class Time:
