@@ -420,7 +420,7 @@ class TransformBuffer:
             stamp: int | None = None
             for edges, up in ((path.up, True), (path.down, False)):
                 q_acc, t_acc = _IDENTITY_Q, _ZERO
-                for edge in edges:
+                for i, edge in enumerate(edges):
                     if edge.static:
                         q, t = edge.values[0]
                     else:
@@ -429,14 +429,15 @@ class TransformBuffer:
                             return found
                         q, t, used = found
                         stamp = used if stamp is None else min(stamp, used)
-                    q_acc, t_acc = _compose(q, t, q_acc, t_acc)
+                    q_acc, t_acc = (q, t) if i == 0 else _compose(q, t, q_acc, t_acc)
                 if up:
                     q_src, t_src = q_acc, t_acc
                 else:
                     q_tgt, t_tgt = q_acc, t_acc
-        q_inv, t_inv = _invert(q_tgt, t_tgt)
-        q, t = _compose(q_inv, t_inv, q_src, t_src)
-        return Transform(target, source, t, q, time_ns, stamp)
+        if path.down:
+            q_inv, t_inv = _invert(q_tgt, t_tgt)
+            q_src, t_src = _compose(q_inv, t_inv, q_src, t_src) if path.up else (q_inv, t_inv)
+        return Transform(target, source, t_src, q_src, time_ns, stamp)
 
     def transform_point(self, point: Sequence[float], target: str, source: str,
                         time_ns: int | None = None, tolerance_s: float | None = None
