@@ -28,6 +28,7 @@ setup(
         'scipy>=1.10',
         'casadi>=3.6',
         'quadprog>=0.1.11',
+        'daqp>=0.11',
         'pyyaml>=6',
         'cyclonedds>=0.10.5',
         'rosbags>=0.10',
