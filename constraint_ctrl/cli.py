@@ -18,6 +18,9 @@ from pathlib import Path
 
 from .errors import ConstraintCtrlError
 
+#: solve/qp.py: QP_SOLVERS (spelled out so the command line does not import the solver early)
+QP_SOLVER_CHOICES = ('quadprog', 'daqp')
+
 
 def _check(args: argparse.Namespace) -> int:
     """Check every file named; one that cannot be loaded is reported and the others still run.
@@ -44,7 +47,7 @@ def _simulate(args: argparse.Namespace) -> int:
     summary, written = simulate_file(Path(args.skill), args.duration, Path(args.out),
                                      dt=args.tick, progress=not args.quiet,
                                      params_file=Path(args.params_file) if args.params_file
-                                     else None)
+                                     else None, qp_solver=args.qp_solver)
     cons = summary['constraints']
     assert isinstance(cons, dict)
     print(f"simulated {summary['skill']} for {args.duration} s "
@@ -76,10 +79,24 @@ def _bench(args: argparse.Namespace) -> int:
     extra = {}
     if not args.core_only:
         extra = _bench_sections(args)
+    cells = tuple(args.cells) if args.cells else None
     report = run(Path(args.json) if args.json else None, quick=args.quick,
-                 scaling=not args.no_scaling, extra=extra)
+                 scaling=not args.no_scaling, extra=extra, qp_solver=args.qp_solver,
+                 cells=cells)
     print(json.dumps(report, indent=2))
     return 0
+
+
+def _cell(text: str) -> tuple[int, int]:
+    """'48x200' -> (48, 200): one cell of the scaling table."""
+    try:
+        joints, rows = (int(part) for part in text.lower().split('x'))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f'expected JOINTSxROWS such as 48x200, got {text!r}') \
+            from None
+    if joints < 2 or rows < 1:
+        raise argparse.ArgumentTypeError(f'a cell needs >= 2 joints and >= 1 row, got {text!r}')
+    return joints, rows
 
 
 def _bench_sections(args: argparse.Namespace) -> dict:
@@ -152,6 +169,8 @@ def build_parser() -> argparse.ArgumentParser:
                         'people.timeout and rate_hz as the node would use them (default: the '
                         "node's defaults)")
     p.add_argument('--quiet', action='store_true', help='no progress bar')
+    p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
+                   help='QP solver of every level (same matrices, same answers)')
     p.set_defaults(func=_simulate)
 
     p = sub.add_parser('bench', help='measure tick cost, scaling, watchdog and end-to-end latency')
@@ -161,6 +180,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument('--core-only', action='store_true', help='engine sections only')
     p.add_argument('--e2e-seconds', type=float, default=60.0)
     p.add_argument('--e2e-rate', type=float, default=1000.0)
+    p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
+                   help='QP solver of the example ticks (the scaling table runs both)')
+    p.add_argument('--cells', nargs='+', metavar='JxR', type=_cell,
+                   help='only these cells of the scaling table, e.g. 6x200 48x200')
     p.set_defaults(func=_bench)
 
     p = sub.add_parser('functions', help='list the functions of the formula language')

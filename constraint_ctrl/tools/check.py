@@ -113,9 +113,18 @@ def check_compiled(skill: CompiledSkill, rate_hz: float = NODE_RATE_HZ) -> Check
     if result.status is SolveStatus.INFEASIBLE:
         report.errors.append('the hard rows and limits cannot all hold at the start: '
                              + _conflicting_hard_rows(skill, q, s, u))
-    elif not result.ok and not not_finite:
-        report.errors.append(f'solve failed at the start: {result.status.value} '
-                             f'{result.message}')
+    elif not result.ok:
+        if not not_finite:       # else the rows that are not finite already say why
+            report.errors.append(f'solve failed at the start: {result.status.value} '
+                                 f'{result.message}')
+    elif result.levels_solved < len(skill.layout.levels):
+        # only a lower priority level failed: the tick runs on the levels above, and the hard
+        # rows are not to blame (they are part of level 1, which was solved)
+        with np.errstate(invalid='ignore', over='ignore'):
+            solved = solver.diagnostics().solved
+        missed = [r.name for r, ok in zip(skill.rows, solved) if not ok]
+        report.warnings.append(f'at the start {result.message}: rows {", ".join(missed)} are '
+                               'not served there')
     with np.errstate(invalid='ignore', over='ignore'):
         diag = solver.diagnostics()
     if result.ok:
@@ -293,8 +302,8 @@ def _check_limits(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
 
 
 def _rank(block: np.ndarray) -> int:
-    if block.size == 0:
-        return 0
+    if block.size == 0 or not np.isfinite(block).all():
+        return 0   # a non-finite row is reported on its own ('not finite at the start pose')
     sv = np.linalg.svd(block, compute_uv=False)
     return int((sv > SINGULAR_RATIO * max(sv[0], ZERO_ROW)).sum())
 
@@ -324,7 +333,7 @@ def _check_singular(skill: CompiledSkill, solver: SkillSolver, q: np.ndarray, s:
             generic[name] = max(generic[name], _rank(J[idx]))
     for name, idx in groups.items():
         at_start = _rank(J_start[idx])
-        if at_start < generic[name]:
+        if at_start < generic[name] and np.isfinite(J_start[idx]).all():
             sv = np.linalg.svd(J_start[idx], compute_uv=False)
             report.warnings.append(
                 f'{name}: Jacobian loses rank at the start pose ({at_start} < {generic[name]} '

@@ -273,7 +273,8 @@ class _OneSkill:
 
 
 def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
-        progress: bool = False, settings: NodeSettings | None = None) -> Trace:
+        progress: bool = False, settings: NodeSettings | None = None,
+        qp_solver: str = 'quadprog') -> Trace:
     """Run the skill through the node's ControlLoop and watchdog for ``duration`` seconds."""
     settings = settings or NodeSettings()
     n = check_arguments(duration, dt)
@@ -286,7 +287,7 @@ def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
     _, points_fn = points_function(model, settings.watchdog)
     stages = StageRecorder(watchdog, points_fn, tuple(model.joint_names))
     loaded = LoadedSkill(path=Path(skill.spec.source), digest='', compiled=skill,
-                         runner=SkillRunner(skill))
+                         runner=SkillRunner(skill, qp_solver))
     loop = ControlLoop(_OneSkill(loaded), watchdog, dt,  # type: ignore[arg-type]
                        person_sources=sources)
     loop.request_activation(skill.spec.name)
@@ -438,7 +439,8 @@ def write_outputs(skill: CompiledSkill, trace: Trace, summary: dict[str, object]
 
 
 def simulate_file(path: Path, duration: float, out_dir: Path, dt: float | None = None,
-                  progress: bool = True, params_file: Path | None = None
+                  progress: bool = True, params_file: Path | None = None,
+                  qp_solver: str = 'quadprog'
                   ) -> tuple[dict[str, object], list[Path]]:
     """Check the arguments, load, run and write report.json and the plots into ``out_dir``.
 
@@ -455,7 +457,7 @@ def simulate_file(path: Path, duration: float, out_dir: Path, dt: float | None =
                f'record {values:,} numbers; simulate records at most {MAX_TRACE_VALUES:,}: '
                'shorten --duration or lengthen --tick')
         raise SimulateError(msg)
-    trace = run(skill, duration, dt, progress=progress, settings=settings)
+    trace = run(skill, duration, dt, progress=progress, settings=settings, qp_solver=qp_solver)
     summary = summarise(skill, trace, duration, dt)
     return summary, write_outputs(skill, trace, summary, out_dir)
 
