@@ -101,8 +101,9 @@ class _Expansion:
         raise self.error(message, file=self.source, line=node.start_mark.line + 1, field=field)
 
     def too_big(self, node: Node) -> None:
-        self.fail(node, f'this value expands to more than {self.budget:,} values (aliases and '
-                        'merge keys written out); files of our formats are limited to that')
+        self.fail(node, f'this value holds more than {self.budget:,} values (scalars, lists and '
+                        'mappings, with aliases and merge keys written out); files of our '
+                        'formats are limited to that')
 
     def size(self, node: Node) -> int:
         key = id(node)
@@ -199,7 +200,7 @@ class TooManyNodes(yaml.YAMLError):
 
     def __init__(self, mark: yaml.Mark) -> None:
         self.problem_mark = mark
-        self.problem = (f'the file expands to more than {MAX_EXPANDED_VALUES:,} values; files '
+        self.problem = (f'the file holds more than {MAX_EXPANDED_VALUES:,} values; files '
                         'of our formats are limited to that')
         super().__init__(self.problem)
 

@@ -244,7 +244,7 @@ def test_alias_bomb_is_not_expanded(folder: Path) -> None:
     error = load_or_error(text, folder)
     # a5 (597,871 values) is the first item over the 100,000-value budget (README, File limits)
     assert isinstance(error, SkillError) and error.field == 'description[5]'
-    assert 'expands to more than 100,000 values' in error.message
+    assert 'holds more than 100,000 values' in error.message
 
 
 # -- (b) structure-aware mutations --------------------------------------------------------------

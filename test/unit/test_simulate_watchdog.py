@@ -225,5 +225,5 @@ def test_a_parameters_file_that_expands_beyond_the_budget_is_refused(tmp_path: P
               for i in range(1, 7)]
     params = tmp_path / 'p.yaml'
     params.write_text('\n'.join(lines) + '\n')
-    with pytest.raises(simulate.SimulateError, match='expands to more than 100,000 values'):
+    with pytest.raises(simulate.SimulateError, match='holds more than 100,000 values'):
         simulate.node_settings(params)
