@@ -93,7 +93,8 @@ class ControllerNode:
                                   'folder of skill files', read_only=True).value))
         self.library = SkillLibrary(folder, self.model.joint_names)
         report = self.library.reload()
-        port.log('info' if report.ok else 'warn', f'skills: {report.summary()}')
+        for line in report.log_lines():   # one failed file per line
+            port.log('info' if report.ok else 'warn', f'skills: {line}')
         self.loop = ControlLoop(self.library, self.watchdog, self.dt, person_sources=sources)
         self._initial = str(declare('initial_skill', '', 'skill to activate at start',
                                     read_only=True).value)
@@ -377,7 +378,8 @@ class ControllerNode:
                 self.port.destroy_service(handle)
         response.success = report.ok
         response.message = report.summary()
-        self.port.log('info' if report.ok else 'warn', f'reload: {report.summary()}')
+        for line in report.log_lines():   # one failed file per line
+            self.port.log('info' if report.ok else 'warn', f'reload: {line}')
         return response
 
     def _reapply_parameters(self, name: str) -> None:
