@@ -484,6 +484,8 @@ class ControllerNode:
         with self._tick_lock:
             for _ in range(3):
                 self._send_zero()
+        self.port.log('info', 'shutting down: zero command sent'
+                      + (', closing the bag' if self.recorder is not None else ''))
         if self.recorder is not None:
             self.recorder.close()
 
