@@ -179,12 +179,16 @@ def cell(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Peer, Path,
     (work / 'skills').mkdir()
     (work / 'skills' / 'circle_tool.yaml').write_text(
         SKILL.format(robot=ROOT / 'config' / 'robots' / 'six_axis_arm.urdf'))
-    domain = str(random.randint(1, 100))
-    os.environ['ROS_DOMAIN_ID'] = domain       # before this process's first participant
+    domain = str(random.randint(101, 200))
+    before = os.environ.get('ROS_DOMAIN_ID')
+    os.environ['ROS_DOMAIN_ID'] = domain       # the peer's participant joins this domain
     try:
         peer = Peer()
     finally:
-        os.environ.pop('ROS_DOMAIN_ID', None)
+        if before is None:
+            os.environ.pop('ROS_DOMAIN_ID', None)
+        else:
+            os.environ['ROS_DOMAIN_ID'] = before
     yield peer, work, domain
     peer.port.shutdown()
 
