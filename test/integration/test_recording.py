@@ -71,8 +71,8 @@ def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
 
 class Peer:
     """Robot driver stand-in: integrates the commands it receives into joint_states, which it
-    publishes on /joint_states and /robot/joint_states; keeps commands and statuses of the
-    node in the root namespace and in /cell1."""
+    publishes on /joint_states and /robot/joint_states, with a wrench on /cell1/tool/wrench;
+    keeps commands and statuses of the node in the root namespace and in /cell1."""
 
     def __init__(self) -> None:
         self.port = open_port('dds', 'recording_peer', ['--ros-args'])
@@ -88,6 +88,8 @@ class Peer:
                                           self._on_status, 'default')
         self.publishers = [self.port.create_publisher(t.JointState, topic, 'sensor')
                            for topic in ('/joint_states', '/robot/joint_states')]
+        self.wrench = self.port.create_publisher(t.WrenchStamped, '/cell1/tool/wrench', 'sensor')
+        self.wrenches_sent = 0
         self.port.create_timer(0.004, self._publish)
         threading.Thread(target=self.port.spin, daemon=True).start()
 
@@ -112,6 +114,9 @@ class Peer:
             name=JOINTS, position=q, velocity=[], effort=[])
         for pub in self.publishers:
             pub.publish(msg)
+        self.wrenches_sent += 1                  # numbered, to find a message recorded twice
+        self.wrench.publish(self.t.WrenchStamped(header=msg.header, wrench=self.t.Wrench(
+            force=self.t.Vector3(x=float(self.wrenches_sent), y=0.0, z=0.0))))
 
     def reset(self) -> None:
         with self.lock:
@@ -198,19 +203,22 @@ def _node_args(work: Path, bag: Path, *extra: str) -> list[str]:
             '-p', 'rate_hz:=250.0', '-p', 'initial_skill:=circle_tool', *extra]
 
 
-def _read_bag(bag: Path) -> tuple[dict[str, int], dict]:
-    """(messages per topic as rosbags reads them, metadata.yaml)"""
+def _read_bag(bag: Path, keep: str = '') -> tuple[dict[str, int], dict, list[Any]]:
+    """(messages per topic as rosbags reads them, metadata.yaml, the messages of `keep`)"""
     from rosbags.highlevel import AnyReader
     from rosbags.typesys import Stores, get_typestore
     meta = yaml.safe_load((bag / 'metadata.yaml').read_text())['rosbag2_bagfile_information']
     counts: dict[str, int] = {}
+    kept = []
     with AnyReader([bag], default_typestore=get_typestore(Stores.ROS2_JAZZY)) as reader:
         for conn in reader.connections:
             counts.setdefault(conn.topic, 0)
         for conn, _, raw in reader.messages():
-            reader.deserialize(raw, conn.msgtype)       # every message decodes
+            msg = reader.deserialize(raw, conn.msgtype)       # every message decodes
             counts[conn.topic] += 1
-    return counts, meta
+            if conn.topic == keep:
+                kept.append(msg)
+    return counts, meta, kept
 
 
 def test_record_folder_that_cannot_be_created(cell, tmp_path: Path) -> None:
@@ -262,7 +270,7 @@ def test_recorder_failure_while_running(cell, tmp_path: Path) -> None:
     reasons = [line for line in node.lines if 'recording stopped' in line]
     assert len(reasons) == 1 and 'File too large' in reasons[0], node.log()
     assert not peer.last_command().any(), 'the last command was not zero'
-    counts, meta = _read_bag(bag)
+    counts, meta, _ = _read_bag(bag)
     assert sum(counts.values()) == meta['message_count'] > 0
     assert counts[f'/{NODE}/command'] > 0 and counts['/joint_states'] > 0
     assert (bag / 'bag.mcap').stat().st_size <= limit
@@ -294,19 +302,25 @@ def test_second_signal_during_shutdown(cell, tmp_path: Path, first: signal.Signa
         if node.proc.poll() is None:
             node.proc.kill()
     assert not peer.last_command().any(), 'the last command was not zero'
-    counts, meta = _read_bag(bag)
+    counts, meta, _ = _read_bag(bag)
     assert sum(counts.values()) == meta['message_count']
     assert counts[f'/{NODE}/command'] > 0
 
 
 def test_bag_topic_names_follow_remapping(cell, tmp_path: Path) -> None:
     """With -r __ns:=/cell1 -r joint_states:=/robot/joint_states the node reads
-    /robot/joint_states and publishes under /cell1: the bag names exactly those topics."""
+    /robot/joint_states and publishes under /cell1: the bag names exactly those topics. Two
+    skill inputs read one topic (tool/wrench, relative: /cell1/tool/wrench): recorded once."""
     peer, work, domain = cell
     peer.reset()
     bag = tmp_path / 'bag'
+    inputs = []
+    for name, field in (('push', 'wrench.force.z'), ('twist', 'wrench.torque.z')):
+        inputs += ['-p', f'inputs.{name}.topic:=tool/wrench',
+                   '-p', f'inputs.{name}.type:=geometry_msgs/msg/WrenchStamped',
+                   '-p', f'inputs.{name}.field:={field}']
     node = Node(work, domain, _node_args(work, bag, '-r', '__ns:=/cell1',
-                                         '-r', 'joint_states:=/robot/joint_states'))
+                                         '-r', 'joint_states:=/robot/joint_states', *inputs))
     try:
         assert wait_until(peer.moving, 60), 'the controller never started moving\n' + node.log()
         node.proc.send_signal(signal.SIGINT)
@@ -314,8 +328,11 @@ def test_bag_topic_names_follow_remapping(cell, tmp_path: Path) -> None:
     finally:
         if node.proc.poll() is None:
             node.proc.kill()
-    counts, _ = _read_bag(bag)
-    assert set(counts) == {'/robot/joint_states', f'/cell1/{NODE}/command',
+    counts, _, wrenches = _read_bag(bag, keep='/cell1/tool/wrench')
+    assert set(counts) == {'/robot/joint_states', '/cell1/tool/wrench', f'/cell1/{NODE}/command',
                            f'/cell1/{NODE}/joint_command', f'/cell1/{NODE}/events',
                            f'/cell1/{NODE}/status'}
     assert counts['/robot/joint_states'] > 0 and counts[f'/cell1/{NODE}/command'] > 0
+    numbers = [m.wrench.force.x for m in wrenches]
+    assert numbers and len(set(numbers)) == len(numbers), 'a wrench was recorded twice'
+

@@ -150,6 +150,10 @@ def test_metadata_names_the_ros_distro(tmp_path: Path, distro: str, version: int
         bag.write('/x', 5, bytes(types_for(distro).String(data='a').serialize()))
     meta = _metadata(path)
     assert (meta['version'], meta['ros_distro']) == (version, distro)
+    # the copy rosbag2's MCAP plugin reads when metadata.yaml is missing (rosbag2
+    # mcap_storage.cpp: metadata record 'rosbag2', key 'serialized_metadata')
+    data = (path / f'{distro}.mcap').read_bytes()
+    assert f'ros_distro: {distro}'.encode() in data and b'ros_distro: rosbags' not in data
     with Reader(path) as reader:                 # still a bag rosbags reads
         assert reader.message_count == 1
 
