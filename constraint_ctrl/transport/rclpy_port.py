@@ -15,7 +15,11 @@ project's CI (no ROS install); every call below is one rclpy documents:
 * validator -> add_on_set_parameters_callback returning SetParametersResult; listeners ->
   add_post_set_parameters_callback (Jazzy), or called from the on-set callback after the
   validator accepted (Humble has no post-set callbacks);
-* timers use a steady clock (Clock(clock_type=ClockType.STEADY_TIME)), as the DDS port's do.
+* timers use a steady clock (Clock(clock_type=ClockType.STEADY_TIME)), as the DDS port's do;
+* publishers and subscriptions are rclpy's own: their topic_name property (Humble and Jazzy)
+  is the fully qualified name after remapping;
+* the distro is the installed ROS 2's (port.detect_distro: ROS_DISTRO and the installed
+  sensor_msgs/Range fields), never a flag's.
 
 Additions over plain rclpy, kept identical to the DDS port: declare_parameter adopts a value
 that a launch override already declared (rclpy would raise ParameterAlreadyDeclaredException),
