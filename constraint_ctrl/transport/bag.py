@@ -169,13 +169,25 @@ class _Writer(Writer):
         try:
             super().write(connection, timestamp, data)
         except BaseException:
-            # the storage forgot the chunk it could not write: count only what it kept
-            storage = self.storage
-            self.counts = {cid: storage.channel_stats.get(cid, 0)  # type: ignore[union-attr]
-                           for cid in self.counts}
-            self.min_timestamp = storage.message_start_time  # type: ignore[union-attr]
-            self.max_timestamp = storage.message_end_time    # type: ignore[union-attr]
+            self._count_what_was_kept()
             raise
+
+    def write_pending(self) -> None:
+        """Put the last, incomplete chunk on disk, before close() summarises the bag."""
+        storage: Any = self.storage
+        if storage is not None and storage.chunk.bio.tell():
+            try:
+                storage.close_chunk()
+            except BaseException:
+                self._count_what_was_kept()
+                raise
+
+    def _count_what_was_kept(self) -> None:
+        """The storage forgot the chunk it could not write: count only what it kept."""
+        storage: Any = self.storage
+        self.counts = {cid: storage.channel_stats.get(cid, 0) for cid in self.counts}
+        self.min_timestamp = storage.message_start_time
+        self.max_timestamp = storage.message_end_time
 
     def close(self) -> None:
         super().close()
@@ -276,19 +288,33 @@ class BagRecorder:
                 with self._lock:
                     self._writer.write(connection, stamp_ns, cdr)
             except Exception as exc:  # noqa: BLE001 - any storage failure stops the recorder
-                kept = sum(self._writer.counts.values())
-                self._drop(self.written + 1 - kept)
-                self.written = kept
-                self._fail(f'writing failed: {exc}')
+                self._write_failed(exc, 1)
                 continue
             self.written += 1
             if storage.commits != self._commits:      # a chunk reached the disk
                 self._commits = storage.commits
                 if storage.bio.unlinked():
                     self._fail('the bag folder was removed', keep=False)
-        if self.state == RECORDING:
+        if self.state != RECORDING:
+            return
+        try:
             with self._lock:
-                self._finish()
+                self._writer.write_pending()
+        except Exception as exc:  # noqa: BLE001 - the last chunk failed: close without it
+            self._write_failed(exc, 0)
+            return
+        if storage.bio.unlinked():
+            self._fail('the bag folder was removed', keep=False)
+            return
+        with self._lock:
+            self._finish()
+
+    def _write_failed(self, exc: Exception, failed: int) -> None:
+        """The writer kept fewer messages than it was given (+ `failed` it refused)."""
+        kept = sum(self._writer.counts.values())
+        self._drop(self.written + failed - kept)
+        self.written = kept
+        self._fail(f'writing failed: {exc}')
 
     def _fail(self, reason: str, *, keep: bool = True) -> None:
         """Stop recording; close the bag with what is on disk (keep) or give it up."""
@@ -334,7 +360,12 @@ class BagRecorder:
         if self._closing:
             return
         self._closing = True
-        self._queue.put(_CLOSE)
+        while self._thread.is_alive():
+            try:
+                self._queue.put(_CLOSE, timeout=0.1)
+                break
+            except queue.Full:
+                continue
         self._thread.join()
 
     def __enter__(self) -> BagRecorder:
