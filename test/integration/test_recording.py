@@ -199,8 +199,11 @@ def cell(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Peer, Path,
 
 
 def _node_args(work: Path, bag: Path, *extra: str) -> list[str]:
+    # joint_state_timeout well above the peer's period, so that a loaded machine does not
+    # stop the arm for stale joint states (the recorder is under test here, not the watchdog)
     return ['--record', str(bag), '--ros-args', '-p', f'skills_folder:={work / "skills"}',
-            '-p', 'rate_hz:=250.0', '-p', 'initial_skill:=circle_tool', *extra]
+            '-p', 'rate_hz:=250.0', '-p', 'initial_skill:=circle_tool',
+            '-p', 'watchdog.joint_state_timeout:=0.5', *extra]
 
 
 def _read_bag(bag: Path, keep: str = '') -> tuple[dict[str, int], dict, list[Any]]:
@@ -255,12 +258,15 @@ def test_recorder_failure_while_running(cell, tmp_path: Path) -> None:
         # status keeps coming with more and more recorder drops
         count = peer.count()
         assert wait_until(lambda: peer.count() > count + 100, 30)
-        assert peer.moving()
+        assert wait_until(peer.moving, 30)
         assert wait_until(lambda: int(peer.last_status()['recorder_dropped']) >
                           int(failed['recorder_dropped']), 30)
+
+        def running(status: dict[str, str]) -> bool:
+            return (status['skill'], status['solve_status'], status['recorder']) == \
+                ('circle_tool', 'ok', 'failed')
+        assert wait_until(lambda: running(peer.last_status()), 30), peer.last_status()
         later = peer.last_status()
-        assert (later['skill'], later['solve_status'], later['recorder']) == \
-            ('circle_tool', 'ok', 'failed')
         node.proc.send_signal(signal.SIGINT)
         assert node.finish() == 0, node.log()
     finally:
