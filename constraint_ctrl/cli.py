@@ -13,6 +13,9 @@ from pathlib import Path
 
 from .errors import ConstraintCtrlError
 
+#: solve/qp.py: QP_SOLVERS (spelled out so the command line does not import the solver early)
+QP_SOLVER_CHOICES = ('quadprog', 'daqp')
+
 
 def _check(args: argparse.Namespace) -> int:
     from .tools.check import check_file
@@ -28,7 +31,8 @@ def _check(args: argparse.Namespace) -> int:
 def _simulate(args: argparse.Namespace) -> int:
     from .tools.simulate import simulate_file
     summary, written = simulate_file(Path(args.skill), args.duration, Path(args.out),
-                                     dt=args.tick, progress=not args.quiet)
+                                     dt=args.tick, progress=not args.quiet,
+                                     qp_solver=args.qp_solver)
     cons = summary['constraints']
     assert isinstance(cons, dict)
     print(f"simulated {summary['skill']} for {args.duration} s "
@@ -49,10 +53,24 @@ def _bench(args: argparse.Namespace) -> int:
     extra = {}
     if not args.core_only:
         extra = _bench_sections(args)
+    cells = tuple(args.cells) if args.cells else None
     report = run(Path(args.json) if args.json else None, quick=args.quick,
-                 scaling=not args.no_scaling, extra=extra)
+                 scaling=not args.no_scaling, extra=extra, qp_solver=args.qp_solver,
+                 cells=cells)
     print(json.dumps(report, indent=2))
     return 0
+
+
+def _cell(text: str) -> tuple[int, int]:
+    """'48x200' -> (48, 200): one cell of the scaling table."""
+    try:
+        joints, rows = (int(part) for part in text.lower().split('x'))
+    except ValueError:
+        raise argparse.ArgumentTypeError(f'expected JOINTSxROWS such as 48x200, got {text!r}') \
+            from None
+    if joints < 2 or rows < 1:
+        raise argparse.ArgumentTypeError(f'a cell needs >= 2 joints and >= 1 row, got {text!r}')
+    return joints, rows
 
 
 def _bench_sections(args: argparse.Namespace) -> dict:
@@ -107,6 +125,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument('--out', default='out/simulate', help='output folder')
     p.add_argument('--tick', type=float, default=0.002, help='control period, s')
     p.add_argument('--quiet', action='store_true', help='no progress bar')
+    p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
+                   help='QP solver of every level (same matrices, same answers)')
     p.set_defaults(func=_simulate)
 
     p = sub.add_parser('bench', help='measure tick cost, scaling, watchdog and end-to-end latency')
@@ -116,6 +136,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument('--core-only', action='store_true', help='engine sections only')
     p.add_argument('--e2e-seconds', type=float, default=60.0)
     p.add_argument('--e2e-rate', type=float, default=1000.0)
+    p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
+                   help='QP solver of the example ticks (the scaling table runs both)')
+    p.add_argument('--cells', nargs='+', metavar='JxR', type=_cell,
+                   help='only these cells of the scaling table, e.g. 6x200 48x200')
     p.set_defaults(func=_bench)
 
     p = sub.add_parser('functions', help='list the functions of the formula language')

@@ -57,9 +57,12 @@ class ReloadReport:
 class SkillLibrary:
     """Skills by name. ``reload`` may run on any thread; lookups are cheap and thread-safe."""
 
-    def __init__(self, folder: Path, joint_names: tuple[str, ...]) -> None:
+    def __init__(self, folder: Path, joint_names: tuple[str, ...],
+                 qp_solver: str = 'quadprog') -> None:
+        """``qp_solver``: 'quadprog' (default) or 'daqp', the QP solver of every skill."""
         self.folder = Path(folder)
         self.joint_names = tuple(joint_names)
+        self.qp_solver = qp_solver
         self._skills: dict[str, LoadedSkill] = {}
         self._by_path: dict[Path, str] = {}
         self._lock = threading.Lock()
@@ -88,7 +91,7 @@ class SkillLibrary:
             raise ConstraintCtrlError(msg)
         compiled = compile_skill(spec, model)
         return LoadedSkill(path=path, digest=hashlib.sha256(data).hexdigest(),
-                           compiled=compiled, runner=SkillRunner(compiled))
+                           compiled=compiled, runner=SkillRunner(compiled, self.qp_solver))
 
     def reload(self) -> ReloadReport:
         report = ReloadReport()

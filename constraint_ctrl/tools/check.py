@@ -85,6 +85,12 @@ def check_compiled(skill: CompiledSkill) -> CheckReport:
     elif not result.ok:
         report.errors.append(f'solve failed at the start: {result.status.value} '
                              f'{result.message}')
+    elif result.levels_solved < len(skill.layout.levels):
+        # only a lower priority level failed: the tick runs on the levels above, and the hard
+        # rows are not to blame (they are part of level 1, which was solved)
+        missed = [r.name for r, ok in zip(skill.rows, solver.diagnostics().solved) if not ok]
+        report.warnings.append(f'at the start {result.message}: rows {", ".join(missed)} are '
+                               'not served there')
     for i, row in enumerate(skill.rows):
         if not np.isfinite(out['value'][i]) or not np.isfinite(out['J'][i]).all():
             report.errors.append(f'row {row.name}: not finite at the start pose '
@@ -134,8 +140,8 @@ def _check_limits(skill: CompiledSkill, q: np.ndarray, s: np.ndarray,
 
 
 def _rank(block: np.ndarray) -> int:
-    if block.size == 0:
-        return 0
+    if block.size == 0 or not np.isfinite(block).all():
+        return 0   # a non-finite row is reported on its own ('not finite at the start pose')
     sv = np.linalg.svd(block, compute_uv=False)
     return int((sv > SINGULAR_RATIO * max(sv[0], ZERO_ROW)).sum())
 
@@ -164,7 +170,7 @@ def _check_singular(skill: CompiledSkill, solver: SkillSolver, q: np.ndarray, s:
             generic[name] = max(generic[name], _rank(J[idx]))
     for name, idx in groups.items():
         at_start = _rank(J_start[idx])
-        if at_start < generic[name]:
+        if at_start < generic[name] and np.isfinite(J_start[idx]).all():
             sv = np.linalg.svd(J_start[idx], compute_uv=False)
             report.warnings.append(
                 f'{name}: Jacobian loses rank at the start pose ({at_start} < {generic[name]} '

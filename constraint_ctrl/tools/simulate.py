@@ -105,9 +105,9 @@ class ScenePlant:
 
 
 def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
-        progress: bool = False) -> Trace:
+        progress: bool = False, qp_solver: str = 'quadprog') -> Trace:
     plant = ScenePlant(skill) if skill.spec.offline.scene is not None else ExactPlant(skill)
-    runner = SkillRunner(skill)
+    runner = SkillRunner(skill, qp_solver)
     runner.activate(plant.measured()[0], np.zeros(skill.n_q))
     n = int(round(duration / dt))
     rows = skill.n_rows
@@ -192,13 +192,14 @@ def write_outputs(skill: CompiledSkill, trace: Trace, summary: dict[str, object]
 
 
 def simulate_file(path: Path, duration: float, out_dir: Path, dt: float = 0.002,
-                  progress: bool = True) -> tuple[dict[str, object], list[Path]]:
+                  progress: bool = True, qp_solver: str = 'quadprog'
+                  ) -> tuple[dict[str, object], list[Path]]:
     spec = load_skill(path)
     skill = compile_skill(spec)
     if duration <= 0 or dt <= 0:
         msg = f'duration and tick must be > 0, got {duration} and {dt}'
         raise ConstraintCtrlError(msg)
-    trace = run(skill, duration, dt, progress=progress)
+    trace = run(skill, duration, dt, progress=progress, qp_solver=qp_solver)
     summary = summarise(skill, trace, duration, dt)
     return summary, write_outputs(skill, trace, summary, out_dir)
 
