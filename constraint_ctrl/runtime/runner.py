@@ -1,4 +1,4 @@
-"""Runs one active skill tick by tick: its clock, feature variables and events.
+"""Runs one active skill tick by tick: its clock, unknowns and events.
 
 The skill clock advances by dt times the speed scale the watchdog applied to the last command
 (``commit``), so when the arm is slowed or stopped near a person, time-based targets (ramps,
@@ -21,7 +21,7 @@ class TickResult:
 
     skill: str
     joint_velocity: np.ndarray
-    feature_velocity: np.ndarray
+    unknown_velocity: np.ndarray
     status: SolveStatus
     message: str
     skill_time: float
@@ -61,50 +61,50 @@ class EventTracker:
 class SkillRunner:
     """State of one skill while it is active; built when the skill is loaded, reset on activation."""
 
-    def __init__(self, skill: CompiledSkill) -> None:
+    def __init__(self, skill: CompiledSkill, qp_solver: str = 'quadprog') -> None:
         self.skill = skill
-        self.solver = SkillSolver(skill)
-        self.features = skill.initial_features()
+        self.solver = SkillSolver(skill, qp_solver=qp_solver)
+        self.unknowns = skill.start_unknowns()
         self.time = 0.0
         self.x_prev = np.zeros(skill.n_x)
         self.events = EventTracker(skill.event_names,
                                    tuple(ev.hold_for for ev in skill.spec.events))
-        self._last_feature_velocity = np.zeros(skill.n_s)
+        self._last_unknown_velocity = np.zeros(skill.n_s)
 
     @property
     def name(self) -> str:
         return self.skill.spec.name
 
     def activate(self, q: np.ndarray, joint_velocity: np.ndarray) -> None:
-        """Start from the skill's initial features, its clock at 0, continuing the last command.
+        """Start from the skill's unknowns at their start values, its clock at 0, continuing the last command.
 
         ``q`` is remembered as the start pose that start_value() in formulas refers to.
         """
-        self.features = self.skill.initial_features()
-        self.solver.set_start(q, self.features)
+        self.unknowns = self.skill.start_unknowns()
+        self.solver.set_start(q, self.unknowns)
         self.time = 0.0
         self.x_prev = np.concatenate([joint_velocity, np.zeros(self.skill.n_s)])
         self.events = EventTracker(self.skill.event_names,
                                    tuple(ev.hold_for for ev in self.skill.spec.events))
 
     def tick(self, q: np.ndarray, u: np.ndarray, dt: float) -> TickResult:
-        result: SolveResult = self.solver.solve(q, self.features, u, self.time, dt, self.x_prev)
+        result: SolveResult = self.solver.solve(q, self.unknowns, u, self.time, dt, self.x_prev)
         n_q = self.skill.n_q
         events: list[str] = []
         if result.ok:
             events = self.events.update(self.time, self.solver.outputs['events'])
-        self._last_feature_velocity = result.x[n_q:]
+        self._last_unknown_velocity = result.x[n_q:]
         return TickResult(skill=self.name, joint_velocity=result.x[:n_q],
-                          feature_velocity=result.x[n_q:], status=result.status,
+                          unknown_velocity=result.x[n_q:], status=result.status,
                           message=result.message, skill_time=self.time, events=events,
                           eval_ns=result.eval_ns, solve_ns=result.solve_ns)
 
     def commit(self, sent_joint_velocity: np.ndarray, scale: float, dt: float) -> None:
-        """Record what was actually sent; advance the clock and features by the applied scale."""
+        """Record what was actually sent; advance the clock and unknowns by the applied scale."""
         scale = float(min(max(scale, 0.0), 1.0))
         self.x_prev[:self.skill.n_q] = sent_joint_velocity
-        self.x_prev[self.skill.n_q:] = scale * self._last_feature_velocity
-        self.features += dt * scale * self._last_feature_velocity
+        self.x_prev[self.skill.n_q:] = scale * self._last_unknown_velocity
+        self.unknowns += dt * scale * self._last_unknown_velocity
         self.time += dt * scale
 
     def diagnostics(self) -> RowReport:

@@ -15,7 +15,7 @@ Language summary (also in ``FUNCTIONS``):
   their result is a 'boolean', which is not allowed in arithmetic. ``==``/``!=`` are not
   offered: exact equality of measured numbers is fragile, compare with a tolerance instead.
 * calls: only the functions of ``FUNCTIONS``, positional arguments only. Link names appear only
-  as frame arguments (``origin(tool_tip)``) and joint names only in ``joint(joint_3)``.
+  as frame arguments (``position(tool_tip)``) and joint names only in ``joint(joint_3)``.
 """
 from __future__ import annotations
 
@@ -147,8 +147,8 @@ _TABLE: dict[str, _Function] = {
     # frames ('frame' arguments take a link name or a frame value)
     'frame': _Function((('link', _F),), _F, 'pose of the link frame in base_link',
                        lambda f: f),
-    'origin': _Function((('link', _F),), _V, 'position of the link frame origin in base_link',
-                        lambda f: f[:3, 3]),
+    'position': _Function((('link', _F),), _V,
+                          'position of the link frame origin in base_link', lambda f: f[:3, 3]),
     'point': _Function((('link', _F), ('x', _S), ('y', _S), ('z', _S)), _V,
                        'point fixed in the link frame at (x, y, z), in base_link',
                        lambda f, x, y, z: f[:3, :3] @ ca.vertcat(x, y, z) + f[:3, 3]),
@@ -217,12 +217,12 @@ _TABLE: dict[str, _Function] = {
         uses_time=True),
     # holding
     'start_value': _Function((('expr', 'any'),), 'same kind as expr',
-                             "expr's value when the skill was activated (joints, features and "
+                             "expr's value when the skill was activated (joints, unknowns and "
                              'time as they were then; inputs as they are now), as a constant',
                              lambda x: x),   # see _Translator.call
     'value_now': _Function((('expr', 'any'),), 'same kind as expr',
                            "expr's value at this tick, as a constant (no derivative wrt "
-                           'joints and features)', lambda x: x),   # see _Translator.call
+                           'joints and unknowns)', lambda x: x),   # see _Translator.call
 }
 
 
@@ -494,7 +494,7 @@ class _Translator:
             return Quantity('scalar', ca.SX(CONSTANTS[name]))
         if name in self.scope.model.link_names:
             raise self.fail(f'{name!r} is a link; use it inside a frame function, '
-                            f'e.g. origin({name})', node)
+                            f'e.g. position({name})', node)
         if name in self.scope.model.joint_names:
             raise self.fail(f'{name!r} is a joint; write joint({name}) for its position', node)
         if name in _TABLE:

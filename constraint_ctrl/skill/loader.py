@@ -17,17 +17,17 @@ The skill file format (our own)::
     inputs:                              # scalar sensor signals, keyed by name
       range_left: {unit: m, rate_hz: 100, timeout: 0.05}
       range_right: {unit: m, rate_hz: 100}   # timeout default: max(0.1, 3 / rate_hz)
-    features:                            # extra unknowns, integrated like joints
-      gear_turn: {initial: 0.0, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
+    unknowns:                            # extra unknowns, integrated like joints
+      gear_turn: {start: 0.0, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
     tunables:                            # run-time adjustable values; `value` required
       standoff: {value: 0.008, lower: 0.003, upper: 0.02, unit: m,
                  description: gap between sensors and surface}
       follow_gain: {value: 8.0, lower: 1.0, upper: 20.0, unit: 1/s}
-    expressions:                         # named formulas other formulas can use
+    formulas:                         # named formulas other formulas can use
       mean_range: (range_left + range_right) / 2
-    constraints:                         # task functions; `name` and `expression` required
+    constraints:                         # task functions; `name` and `function` required
       - name: keep_standoff
-        expression: mean_range
+        function: mean_range
         kind: equal                      # equal | at_most | at_least | within
         target: standoff                 # number or formula
         behaviour: {order: 1, gain: follow_gain}   # number or tunable name
@@ -35,7 +35,7 @@ The skill file format (our own)::
         weight: 100.0                    # number or tunable name
         priority: 1                      # 1 is the most important level
       - name: turn_in_range
-        expression: gear_turn
+        function: gear_turn
         kind: within                     # at_least takes lower, at_most upper
         lower: -0.5
         upper: 0.5
@@ -53,13 +53,13 @@ The skill file format (our own)::
     regularisation:
       damping: 0.01                      # > 0 keeps the QP strictly convex
       joint_weights: {joint_1: 2.0}
-      feature_weight: 1.0
+      unknown_weight: 1.0
     offline:                             # only for the offline tools (check, simulate)
       start: {joint_2: -0.5, joint_3: 1.0}   # joint positions, by URDF joint name
       inputs: {range_left: 0.008, range_right: 0.009}   # constant values of declared inputs
       scene: ../scenes/cell.yaml         # optional; relative to this file, must exist
 
-Inputs, features, tunables and expressions share one namespace (the names formulas use), which
+Inputs, unknowns, tunables and formulas share one namespace (the names formulas use), which
 must not contain ``time``, ``pi``, Python keywords or the formula functions. Formulas are only
 checked for syntax here; names inside them are resolved when the skill is compiled.
 """
@@ -80,12 +80,13 @@ from yaml.constructor import SafeConstructor
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
 from ..errors import FormulaError, SkillError
+from ..located_yaml import MAX_FILE_BYTES, check_expansion
 from .schema import (
     CONSTRAINT_KINDS,
     BehaviourSpec,
     ConstraintSpec,
     EventSpec,
-    FeatureSpec,
+    UnknownSpec,
     InputSpec,
     LimitsSpec,
     OfflineSpec,
@@ -97,7 +98,7 @@ from .schema import (
 if TYPE_CHECKING:
     from collections.abc import Callable, Iterable, Mapping, Sequence
 
-__all__ = ['DOCUMENT', 'RESERVED_NAMES', 'load_skill', 'load_skill_text']
+__all__ = ['DOCUMENT', 'MAX_CONSTRAINTS', 'RESERVED_NAMES', 'load_skill', 'load_skill_text']
 
 #: Field path used for problems that belong to the file as a whole (syntax, top level, I/O).
 DOCUMENT = '<document>'
@@ -133,12 +134,12 @@ _SCALARS: dict[str, Callable[[ScalarNode], object]] = {
     _TAG + 'null': _CONSTRUCTOR.construct_yaml_null,
 }
 
-_TOP_KEYS = ('skill', 'description', 'robot', 'base_link', 'inputs', 'features', 'tunables',
-             'expressions', 'constraints', 'events', 'limits', 'regularisation', 'offline')
+_TOP_KEYS = ('skill', 'description', 'robot', 'base_link', 'inputs', 'unknowns', 'tunables',
+             'formulas', 'constraints', 'events', 'limits', 'regularisation', 'offline')
 _INPUT_KEYS = ('unit', 'rate_hz', 'timeout')
-_FEATURE_KEYS = ('initial', 'lower', 'upper', 'max_speed', 'unit')
+_UNKNOWN_KEYS = ('start', 'lower', 'upper', 'max_speed', 'unit')
 _TUNABLE_KEYS = ('value', 'lower', 'upper', 'unit', 'description')
-_CONSTRAINT_KEYS = ('name', 'expression', 'kind', 'target', 'lower', 'upper', 'behaviour', 'hard',
+_CONSTRAINT_KEYS = ('name', 'function', 'kind', 'target', 'lower', 'upper', 'behaviour', 'hard',
                     'weight', 'priority')
 _BEHAVIOUR_KEYS = ('order', 'gain', 'natural_frequency', 'damping_ratio')
 _ORDER_KEYS = {1: ('gain',), 2: ('natural_frequency', 'damping_ratio')}
@@ -146,8 +147,10 @@ _KIND_KEYS = {'equal': ('target',), 'at_most': ('upper',), 'at_least': ('lower',
               'within': ('lower', 'upper')}
 _EVENT_KEYS = ('name', 'condition', 'hold_for')
 _LIMITS_KEYS = ('joint_speed', 'joint_speeds', 'joint_acceleration', 'position_gain')
-_REGULARISATION_KEYS = ('damping', 'joint_weights', 'feature_weight')
+_REGULARISATION_KEYS = ('damping', 'joint_weights', 'unknown_weight')
 _OFFLINE_KEYS = ('start', 'inputs', 'scene')
+#: Most constraints one skill may have (each costs compile time; see compile.MAX_ROWS).
+MAX_CONSTRAINTS = 2000
 
 
 def load_skill(path: str | os.PathLike[str]) -> SkillSpec:
@@ -158,11 +161,13 @@ def load_skill(path: str | os.PathLike[str]) -> SkillSpec:
     """
     source = os.fspath(path)
     try:
-        data = Path(source).read_bytes()
+        with open(source, 'rb') as handle:
+            data = handle.read(MAX_FILE_BYTES + 1)   # never more than the limit, whatever it is
     except (OSError, ValueError) as exc:
         reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
         msg = f'cannot read skill file {source!r}: {reason}'
         raise SkillError(msg, file=source, field=DOCUMENT) from None
+    _check_size(len(data), source)
     try:
         text = data.decode('utf-8')
     except UnicodeDecodeError as exc:
@@ -181,14 +186,24 @@ def load_skill_text(text: str, *, source: str = '<string>',
     Raises:
         SkillError: the text is not a valid skill (file, line and field set).
     """
+    if len(text) > MAX_FILE_BYTES // 4:   # four bytes per character at most in UTF-8
+        _check_size(len(text.encode('utf-8', 'surrogatepass')), source)
     try:
         root = _compose(text, source)
+        check_expansion(root, SkillError, source, field=DOCUMENT)
         reader = _Reader(text, source, Path.cwd() if base_dir is None else Path(base_dir),
                          frozenset(RESERVED_NAMES) | _formula_functions())
         return reader.skill(root)
     except RecursionError:
         msg = 'the YAML is nested too deeply to be a skill file'
         raise SkillError(msg, file=source, line=1, field=DOCUMENT) from None
+
+
+def _check_size(size: int, source: str) -> None:
+    if size > MAX_FILE_BYTES:
+        msg = (f'the file is larger than the limit of {MAX_FILE_BYTES:,} bytes for skill files; '
+               'split the skill or remove what it does not need')
+        raise SkillError(msg, file=source, line=1, field=DOCUMENT)
 
 
 def _line_at(text: str, index: int) -> int:
@@ -294,6 +309,7 @@ class _Reader:
         self.reserved = reserved
         self.locations: dict[str, int] = {}
         self.check_formula = _formula_checker()
+        self._merged: dict[int, list[tuple[Node, Node]]] = {}
 
     # -- errors -------------------------------------------------------------------------------
 
@@ -340,9 +356,25 @@ class _Reader:
 
     def merged(self, at: _Field, node: MappingNode,
                visiting: set[int]) -> list[tuple[Node, Node]]:
-        """Key/value pairs a mapping takes in through ``<<`` merge keys (earlier ones win)."""
+        """Key/value pairs a mapping takes in through ``<<`` merge keys (earlier ones win).
+
+        Each mapping's merged pairs are worked out once and reused (an anchored mapping merged
+        in many places, or merged twice at every level of a chain, costs one expansion), and a
+        key already taken in is not taken again: linear in the size of the text.
+        """
+        known = self._merged.get(id(node))
+        if known is not None:
+            return known
         visiting.add(id(node))
         pairs: list[tuple[Node, Node]] = []
+        taken: set[object] = set()
+
+        def take(key_node: Node, value_node: Node) -> None:
+            ident = key_node.value if isinstance(key_node, ScalarNode) else id(key_node)
+            if ident not in taken:
+                taken.add(ident)
+                pairs.append((key_node, value_node))
+
         for key_node, value_node in node.value:
             if key_node.tag != _MERGE:
                 continue
@@ -356,9 +388,13 @@ class _Reader:
                     self.unsupported_tag(_Field(at.path, _line(key_node), source))
                 if id(source) in visiting:
                     self.fail(here, 'a merge key << refers to the mapping it is part of')
-                pairs.extend((k, v) for k, v in source.value if k.tag != _MERGE)
-                pairs.extend(self.merged(at, source, visiting))
+                for key, value in source.value:
+                    if key.tag != _MERGE:
+                        take(key, value)
+                for key, value in self.merged(at, source, visiting):
+                    take(key, value)
         visiting.discard(id(node))
+        self._merged[id(node)] = pairs
         return pairs
 
     def key(self, at: _Field, key_node: Node) -> str:
@@ -399,6 +435,13 @@ class _Reader:
         for item in result:
             self.locations[item.path] = item.line
         return result
+
+    def not_too_many(self, at: _Field, limit: int, what: str) -> None:
+        """Refuse a list longer than ``limit`` at its first item too many (before building any)."""
+        if isinstance(at.node, SequenceNode) and len(at.node.value) > limit:
+            extra = self.items(at)[limit]
+            self.fail(extra, f'more than {limit} {what}: a skill file is limited to {limit} '
+                             f'{what} (see the README, "File limits")')
 
     # -- scalars ------------------------------------------------------------------------------
 
@@ -533,11 +576,13 @@ class _Reader:
         spec['tunables'] = tunables
         inputs = self.each_entry(top.get('inputs'), self.input)
         spec['inputs'] = inputs
-        spec['features'] = self.each_entry(top.get('features'), self.feature)
-        spec['expressions'] = self.each_entry(top.get('expressions'), self.expression)
-        self.unique_names([top[key] for key in ('inputs', 'features', 'tunables', 'expressions')
+        spec['unknowns'] = self.each_entry(top.get('unknowns'), self.unknown)
+        spec['formulas'] = self.each_entry(top.get('formulas'), self.named_formula)
+        self.unique_names([top[key] for key in ('inputs', 'unknowns', 'tunables', 'formulas')
                            if key in top])
         by_name = {tunable.name: tunable for tunable in tunables}
+        if 'constraints' in top:
+            self.not_too_many(top['constraints'], MAX_CONSTRAINTS, 'constraints')
         spec['constraints'] = self.each_item(top.get('constraints'),
                                              lambda item: self.constraint(item, by_name))
         spec['events'] = self.each_item(top.get('events'), self.event)
@@ -593,7 +638,7 @@ class _Reader:
             if item.key in first:
                 earlier = first[item.key]
                 msg = (f'the name {item.key!r} is already used by {earlier.path} (line '
-                       f'{earlier.line}); inputs, features, tunables and expressions share one '
+                       f'{earlier.line}); inputs, unknowns, tunables and formulas share one '
                        'namespace')
                 self.fail(item, msg)
             first[item.key] = item
@@ -609,18 +654,18 @@ class _Reader:
         timeout = self.positive(f['timeout']) if 'timeout' in f else max(0.1, 3.0 / rate)
         return InputSpec(name=name, rate_hz=rate, timeout=timeout, **spec)  # type: ignore[arg-type]
 
-    def feature(self, at: _Field) -> FeatureSpec:
+    def unknown(self, at: _Field) -> UnknownSpec:
         name = self.name(at, at.key, formula_name=True)
-        f = self.fields(at, _FEATURE_KEYS)
-        initial = self.number(f['initial']) if 'initial' in f else _default(FeatureSpec, 'initial')
+        f = self.fields(at, _UNKNOWN_KEYS)
+        start = self.number(f['start']) if 'start' in f else _default(UnknownSpec, 'start')
         lower, upper = self.bounds(f)
-        self.inside(at, f, 'initial', initial, lower, upper)
+        self.inside(at, f, 'start', start, lower, upper)
         spec: dict[str, object] = {}
         if 'max_speed' in f:
             spec['max_speed'] = self.positive(f['max_speed'])
         if 'unit' in f:
             spec['unit'] = self.text(f['unit'])
-        return FeatureSpec(name=name, initial=initial, lower=lower, upper=upper,
+        return UnknownSpec(name=name, start=start, lower=lower, upper=upper,
                            **spec)  # type: ignore[arg-type]
 
     def tunable(self, at: _Field) -> TunableSpec:
@@ -632,7 +677,7 @@ class _Reader:
         spec = {key: self.text(f[key]) for key in ('unit', 'description') if key in f}
         return TunableSpec(name=name, value=value, lower=lower, upper=upper, **spec)
 
-    def expression(self, at: _Field) -> tuple[str, str]:
+    def named_formula(self, at: _Field) -> tuple[str, str]:
         return self.name(at, at.key, formula_name=True), self.formula(at)
 
     def bounds(self, f: Mapping[str, _Field]) -> tuple[float, float]:
@@ -653,9 +698,9 @@ class _Reader:
         self.fail(f.get(key, at), msg, path=at.child(key))
 
     def constraint(self, at: _Field, tunables: Mapping[str, TunableSpec]) -> ConstraintSpec:
-        f = self.fields(at, _CONSTRAINT_KEYS, ('name', 'expression'))
+        f = self.fields(at, _CONSTRAINT_KEYS, ('name', 'function'))
         spec: dict[str, object] = {'name': self.name(f['name']),
-                                   'expression': self.formula(f['expression'])}
+                                   'function': self.formula(f['function'])}
         kind = self.kind(f['kind']) if 'kind' in f else 'equal'
         spec['kind'] = kind
         needed = _KIND_KEYS[kind]
@@ -735,7 +780,7 @@ class _Reader:
     def regularisation(self, at: _Field) -> RegularisationSpec:
         f = self.fields(at, _REGULARISATION_KEYS)
         spec: dict[str, object] = {key: self.positive(f[key]) for key in
-                                   ('damping', 'feature_weight') if key in f}
+                                   ('damping', 'unknown_weight') if key in f}
         if 'joint_weights' in f:
             spec['joint_weights'] = self.per_joint(f['joint_weights'])
         return RegularisationSpec(**spec)  # type: ignore[arg-type]

@@ -30,11 +30,11 @@ class InputSpec:
 
 
 @dataclass(frozen=True, slots=True)
-class FeatureSpec:
+class UnknownSpec:
     """An extra unknown of the task, integrated from its velocity like a joint."""
 
     name: str
-    initial: float = 0.0
+    start: float = 0.0
     lower: float = float('-inf')
     upper: float = float('inf')
     max_speed: float = 1.0
@@ -68,7 +68,7 @@ class ConstraintSpec:
     """One task function and the behaviour asked of it."""
 
     name: str
-    expression: str
+    function: str
     kind: ConstraintKind = 'equal'
     target: Value | None = None     # kind == 'equal'
     lower: Value | None = None      # kind in ('at_least', 'within')
@@ -104,7 +104,7 @@ class RegularisationSpec:
 
     damping: float = 0.01
     joint_weights: Mapping[str, float] = field(default_factory=dict)
-    feature_weight: float = 1.0
+    unknown_weight: float = 1.0
 
 
 @dataclass(frozen=True, slots=True)
@@ -126,9 +126,9 @@ class SkillSpec:
     description: str = ''
     base_link: str | None = None
     inputs: tuple[InputSpec, ...] = ()
-    features: tuple[FeatureSpec, ...] = ()
+    unknowns: tuple[UnknownSpec, ...] = ()
     tunables: tuple[TunableSpec, ...] = ()
-    expressions: tuple[tuple[str, str], ...] = ()   # (name, formula) in file order
+    formulas: tuple[tuple[str, str], ...] = ()   # (name, formula) in file order
     constraints: tuple[ConstraintSpec, ...] = ()
     events: tuple[EventSpec, ...] = ()
     limits: LimitsSpec = field(default_factory=LimitsSpec)

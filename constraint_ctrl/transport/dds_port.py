@@ -31,12 +31,12 @@ spin() runs. A sample that cannot be decoded is dropped; an exception raised by 
 caught; both are counted per source (`faults()`) and logged at most once a minute per source,
 and spin() goes on (receive_faults.py). This differs from rclpy, where an exception in a
 callback ends executor.spin(): the nodes already turn their own failures into safe outputs,
-and one bad sample from a peer must not end the node.
+and one bad sample from a peer must not end the node. SIGINT and SIGTERM end spin(); from
+then until shutdown() has finished they are only counted (transport/signals.py).
 """
 from __future__ import annotations
 
 import os
-import signal
 import sys
 import threading
 import time
@@ -67,6 +67,7 @@ from constraint_ctrl.transport.receive_faults import FaultLog, SourceFaults
 from constraint_ctrl.transport.ros_args import (node_fqn, node_identity, overrides_for,
                                                 parse_ros_args, resolve_name, topic_dds_name,
                                                 validate_node_name)
+from constraint_ctrl.transport.signals import StopSignals
 
 _PARAMETER_SERVICES = (
     ('describe_parameters', 'DescribeParameters', 'on_describe_parameters'),
@@ -96,6 +97,11 @@ class DdsPublisher:
         self._type = msg_type
         self._encode = codec_of(msg_type).encode
 
+    @property
+    def topic_name(self) -> str:
+        """The fully qualified topic name after remapping, as rclpy's Publisher.topic_name."""
+        return self.name
+
     def publish(self, msg: Any) -> None:
         if not isinstance(msg, self._type):
             text = (f'publisher {self.name}: message is {type(msg).__name__}, expected '
@@ -108,6 +114,11 @@ class DdsSubscription:
     def __init__(self, reader: DataReader, name: str) -> None:
         self.reader = reader
         self.name = name
+
+    @property
+    def topic_name(self) -> str:
+        """The fully qualified topic name after remapping, as rclpy's Subscription.topic_name."""
+        return self.name
 
 
 class DdsPort:
@@ -145,6 +156,7 @@ class DdsPort:
         self._writers: list[DataWriter] = []
         self._timers: list[FixedRateTimer] = []
         self._stop = threading.Event()
+        self._signals = StopSignals(self._stop.set)
         self._spinning = False
         self._closed = False
         self._topic_dispatch = Dispatcher(self._participant, f'{self.node_name}-topics',
@@ -334,7 +346,7 @@ class DdsPort:
         if self._closed:
             msg = f'node {self.fqn}: spin() after shutdown()'
             raise TransportError(msg)
-        previous = self._install_signal_handlers()
+        self._signals.catch()
         self._spinning = True
         self._topic_dispatch.start()
         self._service_dispatch.start()
@@ -349,16 +361,7 @@ class DdsPort:
                 timer.stop()
             self._topic_dispatch.stop()
             self._service_dispatch.stop()
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
-
-    def _install_signal_handlers(self) -> dict[int, Any]:
-        if threading.current_thread() is not threading.main_thread():
-            return {}
-        previous = {}
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            previous[sig] = signal.signal(sig, lambda *_: self._stop.set())
-        return previous
+            self._signals.hold()     # a second signal must not cut the shutdown short
 
     def shutdown(self) -> None:
         """From a callback: end spin(). Otherwise: also withdraw the node and close DDS."""
@@ -378,3 +381,4 @@ class DdsPort:
             if left > 0:
                 writer.wait_for_acks(duration(seconds=left))
         delete_entity(self._participant)   # and with it every entity of the node
+        self._signals.release()

@@ -19,7 +19,11 @@ project's CI (no ROS install); every call below is one rclpy documents:
   unless use_sim_time is true when the timer is created: then the node clock
   (node.get_clock(), ROS time, driven by /clock through rclpy's TimeSource), so the timer
   does not fire while /clock stands still; now_ns() is always the node clock;
-* /rosout and use_sim_time are rclpy's own (its logger and TimeSource).
+* /rosout and use_sim_time are rclpy's own (its logger and TimeSource);
+* publishers and subscriptions are rclpy's own: their topic_name property (Humble and Jazzy)
+  is the fully qualified name after remapping;
+* the distro is the installed ROS 2's (port.detect_distro: ROS_DISTRO and the installed
+  sensor_msgs/Range fields), never a flag's.
 
 Additions over plain rclpy, kept identical to the DDS port: declare_parameter adopts a value
 that a launch override already declared (rclpy would raise ParameterAlreadyDeclaredException),
@@ -33,7 +37,6 @@ Sources are named by the names given to the port (before remapping).
 """
 from __future__ import annotations
 
-import signal
 import threading
 from collections.abc import Callable
 from types import SimpleNamespace
@@ -43,6 +46,7 @@ from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS
 from constraint_ctrl.transport.qos import profile
 from constraint_ctrl.transport.receive_faults import FaultLog, SourceFaults
+from constraint_ctrl.transport.signals import StopSignals
 
 
 def _types() -> SimpleNamespace:
@@ -178,6 +182,7 @@ class RclpyPort:
         self._on_set_added = False
         self._post_set = hasattr(self.node, 'add_post_set_parameters_callback')  # Jazzy
         self._stop = threading.Event()
+        self._signals = StopSignals(self._stop.set)
         self.spinning = False
         self._closed = False
         self._faults = FaultLog(self.log)
@@ -321,10 +326,7 @@ class RclpyPort:
 
     def spin(self) -> None:
         from rclpy.executors import ExternalShutdownException
-        previous = {}
-        if threading.current_thread() is threading.main_thread():
-            for sig in (signal.SIGINT, signal.SIGTERM):
-                previous[sig] = signal.signal(sig, lambda *_: self._stop.set())
+        self._signals.catch()
         self.spinning = True
         try:
             while not self._stop.is_set() and self._rclpy.ok():
@@ -338,8 +340,7 @@ class RclpyPort:
             pass
         finally:
             self.spinning = False
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
+            self._signals.hold()     # a second signal must not cut the shutdown short
 
     def shutdown(self) -> None:
         """From a callback: end spin(). Otherwise: also destroy the node and rclpy's context."""
@@ -347,6 +348,9 @@ class RclpyPort:
         if self.spinning or self._closed:
             return
         self._closed = True
-        self.executor.shutdown()
-        self.node.destroy_node()
-        self._rclpy.try_shutdown()
+        try:
+            self.executor.shutdown()
+            self.node.destroy_node()
+            self._rclpy.try_shutdown()
+        finally:
+            self._signals.release()

@@ -38,12 +38,12 @@ def skill(robot: Path, *constraints: ConstraintSpec, damping: float = 0.01,
                      limits=LimitsSpec(joint_speed=joint_speed))
 
 
-def row(name: str, expression: str, *, kind: str = 'equal', target: str | float | None = None,
+def row(name: str, function: str, *, kind: str = 'equal', target: str | float | None = None,
         lower: str | float | None = None, upper: str | float | None = None,
         behaviour: BehaviourSpec | None = None, weight: float = 1.0, hard: bool = False,
         priority: int = 1) -> ConstraintSpec:
     if kind == 'equal' and target is None:
         target = 0.0
-    return ConstraintSpec(name=name, expression=expression, kind=kind, target=target,
+    return ConstraintSpec(name=name, function=function, kind=kind, target=target,
                           lower=lower, upper=upper, behaviour=behaviour or first_order(1.0),
                           weight=weight, hard=hard, priority=priority)

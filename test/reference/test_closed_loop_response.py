@@ -36,7 +36,7 @@ def _run(spec, q0: np.ndarray, seconds: float) -> tuple[np.ndarray, np.ndarray]:
 
 @pytest.mark.parametrize('gain', [1.0, 4.0])
 def test_first_order_decays_exponentially(tmp_path, gain: float) -> None:
-    spec = skill(slider(tmp_path), row('pos', 'origin(carriage)[0]', target=0.3,
+    spec = skill(slider(tmp_path), row('pos', 'position(carriage)[0]', target=0.3,
                                        behaviour=first_order(gain), weight=1e6), damping=1e-4)
     t, e = _run(spec, np.array([0.5]), 3.0 / gain)
     expected = 0.2 * np.exp(-gain * t)
@@ -45,7 +45,7 @@ def test_first_order_decays_exponentially(tmp_path, gain: float) -> None:
 
 def test_first_order_on_the_arm_height_row() -> None:
     # a task function of the six-axis arm, not only of a single joint
-    spec = skill(ARM, row('height', 'origin(tool_tip)[2]', target=0.30,
+    spec = skill(ARM, row('height', 'position(tool_tip)[2]', target=0.30,
                           behaviour=first_order(2.0), weight=1e6), damping=1e-4)
     t, e = _run(spec, np.array([0.0, 0.3156, 0.6775, 0.0, 0.5777, 0.0]), 1.5)
     expected = e[0] * np.exp(-2.0 * t)
@@ -60,7 +60,7 @@ def _settling_time(t: np.ndarray, e: np.ndarray, band: float) -> float:
 @pytest.mark.parametrize(('omega', 'zeta'), [(6.0, 0.3), (8.0, 0.5), (5.0, 0.7)])
 def test_second_order_overshoot_and_settling(tmp_path, omega: float, zeta: float) -> None:
     e0 = 0.1
-    spec = skill(slider(tmp_path), row('pos', 'origin(carriage)[0]', target=0.0,
+    spec = skill(slider(tmp_path), row('pos', 'position(carriage)[0]', target=0.0,
                                        behaviour=second_order(omega, zeta), weight=1e6),
                  damping=1e-4)
     t, e = _run(spec, np.array([e0]), 8.0 / (zeta * omega))

@@ -17,7 +17,7 @@ from skill_builders import ARM, first_order, row, skill
 
 @pytest.mark.parametrize('damping', [0.01, 0.1, 0.5])
 def test_single_soft_task_equals_damped_least_squares(damping: float) -> None:
-    spec = skill(ARM, row('tip', 'origin(tool_tip)', target='vector(0.45, 0.05, 0.33)',
+    spec = skill(ARM, row('tip', 'position(tool_tip)', target='vector(0.45, 0.05, 0.33)',
                           behaviour=first_order(0.5)), damping=damping)
     solver = SkillSolver(compile_skill(spec))
     rng = np.random.default_rng(7)

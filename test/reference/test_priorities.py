@@ -13,13 +13,13 @@ from constraint_ctrl.skill.compile import compile_skill
 from constraint_ctrl.solve.qp import SkillSolver
 from skill_builders import ARM, first_order, row, skill
 
-HIGH = (row('tip', 'origin(tool_tip)', target='vector(0.5, 0.0, 0.3)', behaviour=first_order(3.0),
+HIGH = (row('tip', 'position(tool_tip)', target='vector(0.5, 0.0, 0.3)', behaviour=first_order(3.0),
             weight=1.0, priority=1),
-        row('floor', 'origin(tool_tip)[2]', kind='at_least', lower=0.32,
+        row('floor', 'position(tool_tip)[2]', kind='at_least', lower=0.32,
             behaviour=first_order(5.0), weight=1.0, priority=1))
-LOW = (row('elbow', 'origin(link_3)[0]', target=0.35, behaviour=first_order(3.0), priority=2),
+LOW = (row('elbow', 'position(link_3)[0]', target=0.35, behaviour=first_order(3.0), priority=2),
        row('roll', 'joint(joint_6)', target=1.0, behaviour=first_order(3.0), priority=2),
-       row('pull_tip', 'origin(tool_tip)[2]', target=0.1, behaviour=first_order(3.0),
+       row('pull_tip', 'position(tool_tip)[2]', target=0.1, behaviour=first_order(3.0),
            weight=100.0, priority=3))
 
 

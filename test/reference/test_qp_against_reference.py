@@ -24,13 +24,13 @@ osqp = pytest.importorskip('osqp')
 def _mixed_skill():
     return compile_skill(skill(
         ARM,
-        row('tip', 'origin(tool_tip)', target='vector(0.5, 0.1, 0.3)',
+        row('tip', 'position(tool_tip)', target='vector(0.5, 0.1, 0.3)',
             behaviour=first_order(3.0), weight=50.0),
         row('down', 'cross(axis_z(tool_tip), vector(0, 0, -1))', behaviour=first_order(3.0),
             weight=20.0),
-        row('floor', 'origin(tool_tip)[2]', kind='at_least', lower=0.31,
+        row('floor', 'position(tool_tip)[2]', kind='at_least', lower=0.31,
             behaviour=first_order(8.0), weight=400.0),
-        row('side', 'origin(tool_tip)[1]', kind='at_most', upper=0.06,
+        row('side', 'position(tool_tip)[1]', kind='at_most', upper=0.06,
             behaviour=first_order(8.0), hard=True),
         row('wrist', 'joint(joint_5)', kind='within', lower=0.4, upper=0.9,
             behaviour=first_order(4.0), weight=5.0),
@@ -122,9 +122,9 @@ def test_kkt_conditions_hold_on_quadprog_multipliers() -> None:
 
 def test_infeasible_hard_rows_give_status_and_zero_command(tmp_path) -> None:
     spec = skill(ARM,
-                 row('up', 'origin(tool_tip)[2]', kind='at_least', lower=0.5, hard=True,
+                 row('up', 'position(tool_tip)[2]', kind='at_least', lower=0.5, hard=True,
                      behaviour=first_order(50.0)),
-                 row('down', 'origin(tool_tip)[2]', kind='at_most', upper=0.2, hard=True,
+                 row('down', 'position(tool_tip)[2]', kind='at_most', upper=0.2, hard=True,
                      behaviour=first_order(50.0)))
     solver = SkillSolver(compile_skill(spec))
     result = solver.solve(np.array([0.0, 0.3, 0.7, 0.0, 0.6, 0.0]), np.zeros(0), np.zeros(0),

@@ -85,7 +85,7 @@ def test_frame_functions_follow_homogeneous_transform_algebra() -> None:
     tip = np.array(MODEL.fk_function(['tool_tip'])(Q_RANDOM))
     rotation, origin = tip[:3, :3], tip[:3, 3]
     np.testing.assert_allclose(evaluate('frame(tool_tip)', q=Q_RANDOM), tip, atol=1e-12)
-    np.testing.assert_allclose(vector('origin(tool_tip)', q=Q_RANDOM), origin, atol=1e-12)
+    np.testing.assert_allclose(vector('position(tool_tip)', q=Q_RANDOM), origin, atol=1e-12)
     local = np.array([0.01, -0.02, 0.15])
     np.testing.assert_allclose(vector('point(tool_tip, 0.01, -0.02, 0.15)', q=Q_RANDOM),
                                rotation @ local + origin, atol=1e-12)
@@ -100,9 +100,9 @@ def test_frame_functions_follow_homogeneous_transform_algebra() -> None:
 def test_frame_arguments_accept_frame_values() -> None:
     """A 'frame' quantity works wherever a link name does."""
     frame = pose(Rotation.from_euler('xyz', [0.1, 0.2, 0.3]).as_matrix(), (1.0, 2.0, 3.0))
-    np.testing.assert_allclose(vector('origin(A)', frame_a=frame), [1.0, 2.0, 3.0])
+    np.testing.assert_allclose(vector('position(A)', frame_a=frame), [1.0, 2.0, 3.0])
     np.testing.assert_allclose(vector('axis_y(A)', frame_a=frame), frame[:3, 1])
-    np.testing.assert_allclose(vector('origin(frame(A))', frame_a=frame), [1.0, 2.0, 3.0])
+    np.testing.assert_allclose(vector('position(frame(A))', frame_a=frame), [1.0, 2.0, 3.0])
 
 
 def test_joint_reads_the_joint_position() -> None:
@@ -272,28 +272,28 @@ def test_time_shapes_need_time_in_scope() -> None:
 # -- value_now --------------------------------------------------------------------------------
 
 def test_value_now_keeps_the_value_and_drops_the_derivative() -> None:
-    """value_now(origin(tool_tip)) equals origin(tool_tip) when q_now = q; d/dq is zero."""
-    held = vector('value_now(origin(tool_tip))', q=Q_RANDOM)
-    np.testing.assert_allclose(held, vector('origin(tool_tip)', q=Q_RANDOM), atol=1e-15)
-    assert np.all(derivative('value_now(origin(tool_tip))', MODEL.q, q=Q_RANDOM) == 0.0)
-    assert np.abs(derivative('origin(tool_tip)', MODEL.q, q=Q_RANDOM)).max() > 0.1
+    """value_now(position(tool_tip)) equals position(tool_tip) when q_now = q; d/dq is zero."""
+    held = vector('value_now(position(tool_tip))', q=Q_RANDOM)
+    np.testing.assert_allclose(held, vector('position(tool_tip)', q=Q_RANDOM), atol=1e-15)
+    assert np.all(derivative('value_now(position(tool_tip))', MODEL.q, q=Q_RANDOM) == 0.0)
+    assert np.abs(derivative('position(tool_tip)', MODEL.q, q=Q_RANDOM)).max() > 0.1
     # mixed: only the held part loses its derivative
-    moving = derivative('origin(tool_tip)[2] - value_now(origin(tool_tip)[2])', MODEL.q,
+    moving = derivative('position(tool_tip)[2] - value_now(position(tool_tip)[2])', MODEL.q,
                         q=Q_RANDOM)
-    np.testing.assert_allclose(moving, derivative('origin(tool_tip)[2]', MODEL.q, q=Q_RANDOM))
+    np.testing.assert_allclose(moving, derivative('position(tool_tip)[2]', MODEL.q, q=Q_RANDOM))
     assert compile_formula('value_now(plane(a, b))', scope()).kind == 'plane'
 
 
 def test_start_value_is_the_value_at_activation() -> None:
     """start_value(f) = f at q_start and time 0, as a constant (no derivative wrt q or time)."""
-    text = 'start_value(origin(tool_tip)[2] + time)'
+    text = 'start_value(position(tool_tip)[2] + time)'
     result = compile_formula(text, scope())
     q_start = Q_RANDOM + 0.1
     fn = ca.Function('f', [MODEL.q, Q_START, T], [result.sx, ca.jacobian(result.sx, MODEL.q),
                                                   ca.jacobian(result.sx, T)])
     val, dq, dt = fn(Q_RANDOM, q_start, 3.0)
     # reference: the same expression evaluated directly at the start pose and time 0
-    plain = ca.Function('g', [MODEL.q], [compile_formula('origin(tool_tip)[2]', scope()).sx])
+    plain = ca.Function('g', [MODEL.q], [compile_formula('position(tool_tip)[2]', scope()).sx])
     assert float(val) == pytest.approx(float(plain(q_start)), abs=1e-15)
     assert np.all(np.array(dq) == 0.0) and float(dt) == 0.0
 
@@ -331,9 +331,9 @@ def test_conditions_give_booleans(text: str, expected: float) -> None:
     ('-A', "unary '-' needs a scalar or a vector, got a frame"),
     ('x[0]', 'indexing needs a vector, got a scalar'),
     ('sin(a)', "sin(): argument 'x' must be a scalar, got a vector"),
-    ('origin(x)', "origin(): argument 'link' must be a link name or a frame, got a scalar"),
+    ('position(x)', "position(): argument 'link' must be a link name or a frame, got a scalar"),
     ('distance_to_plane(p, a)', "argument 'plane' must be a plane, got a vector"),
-    ('origin(tool)', "origin(): unknown link 'tool'; did you mean tool_tip?"),
+    ('position(tool)', "position(): unknown link 'tool'; did you mean tool_tip?"),
     ('joint(joint_9)', "joint() needs a movable joint name, got 'joint_9'"),
     ('joint(tool_mount)', "got 'tool_mount'"),
     ('speed + 1', "unknown name 'speed'"),
@@ -409,9 +409,9 @@ def test_formula_errors_are_skill_errors_that_can_be_located() -> None:
     """FormulaError is a SkillError, so the compiler can attach file/line/field."""
     with pytest.raises(SkillError) as info:
         compile_formula('nothing_here', scope())
-    located = info.value.located(file='skill.yaml', line=12, field='constraints[0].expression')
+    located = info.value.located(file='skill.yaml', line=12, field='constraints[0].function')
     assert isinstance(located, FormulaError)
-    assert str(located).startswith('skill.yaml:12: constraints[0].expression: unknown name')
+    assert str(located).startswith('skill.yaml:12: constraints[0].function: unknown name')
 
 
 def test_expected_kinds_are_checked() -> None:
@@ -422,7 +422,7 @@ def test_expected_kinds_are_checked() -> None:
 
 
 SAMPLE_CALLS = {
-    'frame': 'frame(tool_tip)', 'origin': 'origin(A)', 'point': 'point(tool_tip, 0, 0, x)',
+    'frame': 'frame(tool_tip)', 'position': 'position(A)', 'point': 'point(tool_tip, 0, 0, x)',
     'axis_x': 'axis_x(link_3)', 'axis_y': 'axis_y(B)', 'axis_z': 'axis_z(tool_tip)',
     'to_frame': 'to_frame(range_left, a)', 'rotation_error': 'rotation_error(A, tool_tip)',
     'joint': 'joint(joint_1)', 'vector': 'vector(1, x, 2)', 'dot': 'dot(a, b)',

@@ -83,7 +83,7 @@ def _expressions() -> st.SearchStrategy[str]:
             inner.map(lambda e: f'(lambda: {e})'),
             st.tuples(inner, inner, inner).map(lambda t: f'({t[0]} if {t[1]} else {t[2]})'),
             st.lists(inner, min_size=2, max_size=3).map(lambda xs: f'[{", ".join(xs)}]'),
-            inner.map(lambda e: f'origin({e})'),
+            inner.map(lambda e: f'position({e})'),
         )
     return st.recursive(LEAVES, extend, max_leaves=25)
 
@@ -108,7 +108,7 @@ HOSTILE = [
     "sin.__globals__['__builtins__']",
     "f'{{fuzz_sentinel()}}'",
     "(y := fuzz_sentinel())",
-    "origin(fuzz_sentinel())",
+    "position(fuzz_sentinel())",
     "value_now(fuzz_sentinel())",
     "sin(*fuzz_sentinel())",
     "sin(**{{'x': 1}})",

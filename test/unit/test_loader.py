@@ -23,7 +23,7 @@ from constraint_ctrl.skill import (
     BehaviourSpec,
     ConstraintSpec,
     EventSpec,
-    FeatureSpec,
+    UnknownSpec,
     InputSpec,
     LimitsSpec,
     OfflineSpec,
@@ -49,17 +49,17 @@ inputs:
   range_right:
     unit: m
     rate_hz: 10
-features:
-  gear_turn: {initial: 0.1, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
+unknowns:
+  gear_turn: {start: 0.1, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
 tunables:
   standoff: {value: 0.008, lower: 0.003, upper: 0.02, unit: m, description: sensor gap}
   follow_gain: {value: 8.0, lower: 1.0, upper: 20.0}
-expressions:
-  tool_tip_height: origin(tool_tip)[2]
+formulas:
+  tool_tip_height: position(tool_tip)[2]
   mean_range: (range_left + range_right) / 2
 constraints:
   - name: keep_standoff
-    expression: distance_to_plane(origin(tool_tip), plane(vector(0, 0, 0), vector(0, 0, 1)))
+    function: distance_to_plane(position(tool_tip), plane(vector(0, 0, 0), vector(0, 0, 1)))
     kind: equal
     target: standoff
     behaviour: {order: 1, gain: follow_gain}
@@ -67,7 +67,7 @@ constraints:
     weight: 100.0
     priority: 1
   - name: turn_in_range
-    expression: gear_turn
+    function: gear_turn
     kind: within
     lower: -0.5
     upper: 0.5
@@ -76,7 +76,7 @@ constraints:
     weight: 2
     priority: 2
   - name: stay_low
-    expression: tool_tip_height
+    function: tool_tip_height
     kind: at_most
     upper: mean_range + 0.5
 events:
@@ -91,7 +91,7 @@ limits:
 regularisation:
   damping: 0.02
   joint_weights: {joint_1: 2.0}
-  feature_weight: 0.5
+  unknown_weight: 0.5
 offline:
   start: {joint_2: -0.5, joint_3: 1.0}
   inputs: {range_left: 0.008}
@@ -160,13 +160,13 @@ def test_full_example_loads_into_the_expected_dataclasses(base: Path) -> None:
         inputs=(InputSpec('range_left', 'm', 100.0, 0.05),
                 # timeout absent: max(0.1, 3 / 10 Hz) = 0.3 s (the rule in our brief)
                 InputSpec('range_right', 'm', 10.0, 0.3)),
-        features=(FeatureSpec('gear_turn', 0.1, -0.6, 0.6, 0.5, 'rad'),),
+        unknowns=(UnknownSpec('gear_turn', 0.1, -0.6, 0.6, 0.5, 'rad'),),
         tunables=(TunableSpec('standoff', 0.008, 0.003, 0.02, 'm', 'sensor gap'),
                   TunableSpec('follow_gain', 8.0, 1.0, 20.0)),
-        expressions=(('tool_tip_height', 'origin(tool_tip)[2]'),
+        formulas=(('tool_tip_height', 'position(tool_tip)[2]'),
                      ('mean_range', '(range_left + range_right) / 2')),
         constraints=(
-            ConstraintSpec('keep_standoff', 'distance_to_plane(origin(tool_tip), '
+            ConstraintSpec('keep_standoff', 'distance_to_plane(position(tool_tip), '
                            'plane(vector(0, 0, 0), vector(0, 0, 1)))', 'equal',
                            target='standoff', behaviour=BehaviourSpec(1, gain='follow_gain'),
                            hard=False, weight=100.0, priority=1),
@@ -212,7 +212,7 @@ def test_defaults_follow_the_schema(base: Path) -> None:
           slow: {}
         constraints:
           - name: c
-            expression: fast
+            function: fast
             target: 0.0
         """)
     spec = load(text, base)
@@ -255,7 +255,7 @@ def test_anchors_aliases_and_merge_keys_are_accepted(base: Path) -> None:
 
 def test_yaml_11_booleans_are_booleans(base: Path) -> None:
     """YAML 1.1 bool type (yaml.org/type/bool.html, from memory): on is true, as in PyYAML."""
-    text = HEADER + 'constraints:\n  - {name: c, expression: x, target: 0, hard: on}\n'
+    text = HEADER + 'constraints:\n  - {name: c, function: x, target: 0, hard: on}\n'
     assert load(text, base).constraints[0].hard is yaml.safe_load('on')
 
 
@@ -321,7 +321,7 @@ CASES = {
         """, 'robot', "missing required key 'robot'", header=''),
     'missing_constraint_name': case("""\
         constraints:
-          - expression: x  # <-
+          - function: x  # <-
             target: 0
         """, 'constraints[0].name', "missing required key 'name'"),
     'missing_tunable_value': case("""\
@@ -336,7 +336,7 @@ CASES = {
     'bool_as_weight': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             weight: yes  # <-
         """, 'constraints[0].weight', "expected a number > 0 or the name of a tunable, got "
@@ -348,14 +348,14 @@ CASES = {
     'text_as_bool': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             hard: 1  # <-
         """, 'constraints[0].hard', "expected true or false, got the number '1'"),
     'float_priority': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             priority: 1.5  # <-
         """, 'constraints[0].priority', "expected a whole number, got the number '1.5'"),
@@ -376,28 +376,28 @@ CASES = {
     'inf_target': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: .inf  # <-
         """, 'constraints[0].target', 'expected a finite number, got inf'),
     'huge_int': case(f"""\
         tunables:
           k: {{value: 1{'0' * 400}}}  # <-
         """, 'tunables.k.value', "expected a finite number, got '1000.*', too large"),
-    'nan_feature_bound': case("""\
-        features:
+    'nan_unknown_bound': case("""\
+        unknowns:
           f: {lower: .nan}  # <-
-        """, 'features.f.lower', 'expected a finite number, got nan'),
-    'feature_lower_above_upper': case("""\
-        features:
+        """, 'unknowns.f.lower', 'expected a finite number, got nan'),
+    'unknown_lower_above_upper': case("""\
+        unknowns:
           f:
             lower: 0.5  # <-
             upper: 0.1
-        """, 'features.f.lower', r'expected lower <= upper, got lower=0.5 > upper=0.1'),
-    'feature_default_initial_outside': case("""\
-        features:
+        """, 'unknowns.f.lower', r'expected lower <= upper, got lower=0.5 > upper=0.1'),
+    'unknown_default_start_outside': case("""\
+        unknowns:
           f: {lower: 0.2, upper: 0.5}  # <-
-        """, 'features.f.initial',
-        r'expected initial within \[0.2, 0.5\], got 0.0 \(the default'),
+        """, 'unknowns.f.start',
+        r'expected start within \[0.2, 0.5\], got 0.0 \(the default'),
     'tunable_value_outside': case("""\
         tunables:
           k:
@@ -407,7 +407,7 @@ CASES = {
     'within_lower_above_upper': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             kind: within
             lower: 2  # <-
             upper: 1
@@ -429,7 +429,7 @@ CASES = {
     'weight_zero': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             weight: 0  # <-
         """, 'constraints[0].weight', 'expected a number > 0, got 0.0'),
@@ -437,7 +437,7 @@ CASES = {
     'gain_negative': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             behaviour: {gain: -2}  # <-
         """, 'constraints[0].behaviour.gain', 'expected a number > 0, got -2.0'),
@@ -446,7 +446,7 @@ CASES = {
     'damping_ratio_zero': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             behaviour:
               order: 2
@@ -455,14 +455,14 @@ CASES = {
     'natural_frequency_negative': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             behaviour: {order: 2, natural_frequency: -6}  # <-
         """, 'constraints[0].behaviour.natural_frequency', 'expected a number > 0, got -6.0'),
     'priority_zero': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             priority: 0  # <-
         """, 'constraints[0].priority', r'expected a whole number >= 1 .*, got 0'),
@@ -492,7 +492,7 @@ CASES = {
     'constraint_name_keyword': case("""\
         constraints:
           - name: lambda  # <-
-            expression: x
+            function: x
             target: 0
         """, 'constraints[0].name', "not a Python keyword, got 'lambda'"),
     'name_used_twice_across_sections': case("""\
@@ -503,8 +503,8 @@ CASES = {
         """, 'tunables.gap', r"the name 'gap' is already used by inputs.gap \(line 4\)"),
     'duplicate_constraint_name': case("""\
         constraints:
-          - {name: c, expression: x, target: 0}
-          - {name: c, expression: y, target: 0}  # <-
+          - {name: c, function: x, target: 0}
+          - {name: c, function: y, target: 0}  # <-
         """, 'constraints[1].name', r"the name 'c' is already used by constraints\[0\]"),
     'duplicate_event_name': case("""\
         events:
@@ -522,31 +522,31 @@ CASES = {
           pi: {value: 3}  # <-
         """, 'tunables.pi', "the name 'pi' is reserved"),
     'reserved_function_name': case("""\
-        expressions:
+        formulas:
           norm: x + 1  # <-
-        """, 'expressions.norm', "the name 'norm' is reserved"),
+        """, 'formulas.norm', "the name 'norm' is reserved"),
     'unknown_kind': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             kind: equals  # <-
         """, 'constraints[0].kind', "got 'equals'; did you mean 'equal'"),
     'equal_without_target': case("""\
         constraints:
           - name: c  # <-
-            expression: x
+            function: x
         """, 'constraints[0].target', "kind 'equal' needs 'target'"),
     'equal_with_lower': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             lower: 1  # <-
         """, 'constraints[0].lower', "kind 'equal' takes target, not 'lower'"),
     'at_most_with_lower': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             kind: at_most
             lower: 1  # <-
             upper: 2
@@ -554,20 +554,20 @@ CASES = {
     'at_least_without_lower': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             kind: at_least  # <-
         """, 'constraints[0].lower', "kind 'at_least' needs 'lower'"),
     'within_without_upper': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             kind: within  # <-
             lower: 0
         """, 'constraints[0].upper', "kind 'within' needs 'upper'"),
     'order_1_with_frequency': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             behaviour:
               natural_frequency: 3  # <-
@@ -576,7 +576,7 @@ CASES = {
     'order_2_with_gain': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             behaviour: {order: 2, gain: 3}  # <-
         """, 'constraints[0].behaviour.gain',
@@ -584,7 +584,7 @@ CASES = {
     'order_3': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             behaviour: {order: 3}  # <-
         """, 'constraints[0].behaviour.order', 'expected order 1 or 2, got 3'),
@@ -593,7 +593,7 @@ CASES = {
           stiff_gain: {value: 4, lower: 1}
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             behaviour: {gain: stif_gain}  # <-
         """, 'constraints[0].behaviour.gain', "got 'stif_gain'; did you mean 'stiff_gain'"),
@@ -602,7 +602,7 @@ CASES = {
           k: {value: 4}
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 0
             weight: k  # <-
         """, 'constraints[0].weight', "tunable 'k' .* lower bound is -inf"),
@@ -640,9 +640,9 @@ CASES = {
     'formula_not_in_language': case("""\
         constraints:
           - name: c
-            expression: __import__('os').system('true')  # <-
+            function: __import__('os').system('true')  # <-
             target: 0
-        """, 'constraints[0].expression', 'only the functions of the formula language can be '
+        """, 'constraints[0].function', 'only the functions of the formula language can be '
                                            'called', FormulaError),
     'condition_with_equality': case("""\
         events:
@@ -652,17 +652,17 @@ CASES = {
     'target_formula_incomplete': case("""\
         constraints:
           - name: c
-            expression: x
+            function: x
             target: 1 +  # <-
         """, 'constraints[0].target', 'not a valid formula', FormulaError),
-    'expression_empty': case("""\
-        expressions:
+    'formula_empty': case("""\
+        formulas:
           e: ''  # <-
-        """, 'expressions.e', "expected a formula, got ''"),
-    'expression_unknown_function': case("""\
-        expressions:
+        """, 'formulas.e', "expected a formula, got ''"),
+    'formula_unknown_function': case("""\
+        formulas:
           e: sine(x)  # <-
-        """, 'expressions.e', "unknown function 'sine'", FormulaError),
+        """, 'formulas.e', "unknown function 'sine'", FormulaError),
 }
 
 
@@ -741,18 +741,18 @@ def test_unreadable_and_undecodable_files(base: Path) -> None:
 
 def test_formula_error_keeps_its_type_and_gains_a_location(base: Path) -> None:
     """The loader re-raises FormulaError (not a bare SkillError) so callers can tell them apart."""
-    text = HEADER + f'expressions:\n  e: a @ b  {MARK}\n'
-    error = expect_error(text, base, 'expressions.e', "operator '@' is not allowed", FormulaError)
-    assert str(error).startswith(f'{SOURCE}:{marked_line(text)}: expressions.e: ')
+    text = HEADER + f'formulas:\n  e: a @ b  {MARK}\n'
+    error = expect_error(text, base, 'formulas.e', "operator '@' is not allowed", FormulaError)
+    assert str(error).startswith(f'{SOURCE}:{marked_line(text)}: formulas.e: ')
 
 
 def test_constraint_values_may_be_formulas_or_numbers(base: Path) -> None:
     """target/lower/upper keep formula text as written and turn YAML ints into floats."""
     text = HEADER + textwrap.dedent("""\
         constraints:
-          - {name: a, expression: x, kind: within, lower: -1, upper: 0.5 * pi}
+          - {name: a, function: x, kind: within, lower: -1, upper: 0.5 * pi}
           - name: b
-            expression: x
+            function: x
             kind: at_least
             lower: ramp(0, 2, 0.1, 0.3)
         """)

@@ -32,16 +32,16 @@ base_link: base_link
 inputs:
   range_left: {unit: m, rate_hz: 100, timeout: 0.05}
   range_right: {unit: m, rate_hz: 10}
-features:
-  gear_turn: {initial: 0.1, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
+unknowns:
+  gear_turn: {start: 0.1, lower: -0.6, upper: 0.6, max_speed: 0.5, unit: rad}
 tunables:
   standoff: {value: 0.008, lower: 0.003, upper: 0.02, unit: m, description: sensor gap}
   follow_gain: {value: 8.0, lower: 1.0, upper: 20.0}
-expressions:
+formulas:
   mean_range: (range_left + range_right) / 2
 constraints:
   - name: keep_standoff
-    expression: distance_to_plane(origin(tool_tip), plane(vector(0, 0, 0), vector(0, 0, 1)))
+    function: distance_to_plane(position(tool_tip), plane(vector(0, 0, 0), vector(0, 0, 1)))
     kind: equal
     target: standoff
     behaviour: {order: 1, gain: follow_gain}
@@ -49,7 +49,7 @@ constraints:
     weight: 100.0
     priority: 1
   - name: turn_in_range
-    expression: gear_turn
+    function: gear_turn
     kind: within
     lower: -0.5
     upper: 0.5
@@ -67,7 +67,7 @@ limits:
 regularisation:
   damping: 0.02
   joint_weights: {joint_1: 2.0}
-  feature_weight: 0.5
+  unknown_weight: 0.5
 offline:
   start: {joint_2: -0.5}
   inputs: {range_left: 0.008}
@@ -133,14 +133,14 @@ def assert_valid(spec: SkillSpec, text: str) -> None:
     def number_or_formula(x: float | str | None) -> bool:
         return isinstance(x, str) and x.strip() != '' or isinstance(x, float) and math.isfinite(x)
 
-    names = [i.name for i in spec.inputs] + [f.name for f in spec.features] + \
-        list(tunables) + [name for name, _ in spec.expressions]
+    names = [i.name for i in spec.inputs] + [f.name for f in spec.unknowns] + \
+        list(tunables) + [name for name, _ in spec.formulas]
     assert len(names) == len(set(names))
     assert all(NAME.fullmatch(n) and n not in ('time', 'pi') for n in names)
     for i in spec.inputs:
         assert positive(i.rate_hz) and positive(i.timeout)
-    for f in spec.features:
-        assert f.lower <= f.initial <= f.upper and math.isfinite(f.initial)
+    for f in spec.unknowns:
+        assert f.lower <= f.start <= f.upper and math.isfinite(f.start)
         assert positive(f.max_speed)
     for t in spec.tunables:
         assert t.lower <= t.value <= t.upper and math.isfinite(t.value)
@@ -168,7 +168,7 @@ def assert_valid(spec: SkillSpec, text: str) -> None:
         assert value is None or positive(value)
     assert positive(spec.limits.position_gain)
     assert all(positive(v) for v in spec.limits.joint_speeds.values())
-    assert positive(spec.regularisation.damping) and positive(spec.regularisation.feature_weight)
+    assert positive(spec.regularisation.damping) and positive(spec.regularisation.unknown_weight)
     assert all(positive(v) for v in spec.regularisation.joint_weights.values())
     assert set(spec.offline.inputs) <= {i.name for i in spec.inputs}
     assert all(math.isfinite(v) for v in spec.offline.start.values())
@@ -242,7 +242,9 @@ def test_alias_bomb_is_not_expanded(folder: Path) -> None:
     levels += [f'&a{i} [' + ', '.join([f'*a{i - 1}'] * 9) + ']' for i in range(1, 10)]
     text = f'skill: s\nrobot: arm.urdf\ndescription: [{", ".join(levels)}]\n'
     error = load_or_error(text, folder)
-    assert isinstance(error, SkillError) and error.field == 'description'
+    # a5 (597,871 values) is the first item over the 100,000-value budget (README, File limits)
+    assert isinstance(error, SkillError) and error.field == 'description[5]'
+    assert 'holds more than 100,000 values' in error.message
 
 
 # -- (b) structure-aware mutations --------------------------------------------------------------
