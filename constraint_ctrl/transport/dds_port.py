@@ -90,6 +90,17 @@ def delete_entity(entity: Any) -> None:
 _ROSOUT_LEVELS = {'debug': 10, 'info': 20, 'warn': 30, 'error': 40}
 
 
+def _wait_for_acks(writer: DataWriter, seconds: float) -> None:
+    """Wait up to ``seconds`` for reliable readers to acknowledge; a reader that never does
+    (its process paused or gone without a goodbye) must not stop the shutdown.
+    cyclonedds-python 11.0.1's DataWriter.wait_for_acks raises AttributeError instead of
+    returning False on a timeout (it looks the code up on the builtin Exception)."""
+    try:
+        writer.wait_for_acks(duration(seconds=seconds))
+    except (AttributeError, DDSException):
+        pass
+
+
 class DdsPublisher:
     def __init__(self, writer: DataWriter, msg_type: type, name: str) -> None:
         self.writer = writer
@@ -379,6 +390,6 @@ class DdsPort:
         for writer in [*self._writers, self._announcer.writer]:
             left = deadline - time.monotonic()
             if left > 0:
-                writer.wait_for_acks(duration(seconds=left))
+                _wait_for_acks(writer, left)
         delete_entity(self._participant)   # and with it every entity of the node
         self._signals.release()

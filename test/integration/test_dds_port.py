@@ -316,3 +316,50 @@ def test_importing_transport_loads_no_middleware() -> None:
     out = subprocess.run([sys.executable, '-c', code], capture_output=True, text=True,
                          env={**os.environ, 'PYTHONPATH': str(ROOT)}, timeout=30, check=True)
     assert out.stdout.strip() == '[]'
+
+
+_PAUSED_READER = '''
+import sys, threading
+from constraint_ctrl.transport.dds_port import DdsPort
+port = DdsPort('paused_reader', ['test'])
+port.create_subscription(port.types.Float64, sys.argv[1], lambda msg: print('GOT', flush=True),
+                         'default')
+threading.Thread(target=port.spin, daemon=True).start()
+print('READY', flush=True)
+threading.Event().wait()
+'''
+
+
+def test_shutdown_survives_a_reader_that_never_acknowledges() -> None:
+    """A reliable reader whose process is paused never acknowledges; shutdown() waits for
+    acknowledgements at most 0.5 s and must then go on. (cyclonedds-python 11.0.1's
+    DataWriter.wait_for_acks raises AttributeError on its own timeout: it looks the code up
+    on the builtin Exception, cyclonedds/pub.py.) Seen when the benchmark paused a peer."""
+    import signal
+    topic = f'{NS}/paused_reader'
+    env = {**os.environ, 'ROS_DOMAIN_ID': DOMAIN, 'PYTHONPATH': str(ROOT)}
+    proc = subprocess.Popen([sys.executable, '-c', _PAUSED_READER, topic], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    port = DdsPort('paused_writer', ['test'])
+    try:
+        assert proc.stdout is not None and proc.stdout.readline().startswith('READY')
+        import select
+        pub = port.create_publisher(port.types.Float64, topic, 'default')
+        deadline = time.monotonic() + 30.0
+        got = False
+        while not got and time.monotonic() < deadline:   # until the reader has one sample
+            pub.publish(port.types.Float64(data=1.0))
+            if select.select([proc.stdout], [], [], 0.1)[0]:
+                got = proc.stdout.readline().startswith('GOT')
+        assert got, 'the reader never received a sample'
+        os.kill(proc.pid, signal.SIGSTOP)
+        for _ in range(5):
+            pub.publish(port.types.Float64(data=2.0))
+        started = time.monotonic()
+        port.shutdown()                            # must not raise
+        assert time.monotonic() - started < 10.0
+    finally:
+        port.shutdown()
+        os.kill(proc.pid, signal.SIGCONT)
+        proc.kill()
+        proc.wait(5)
