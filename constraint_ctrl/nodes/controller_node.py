@@ -33,9 +33,11 @@ from ..errors import ConstraintCtrlError, TransportError
 from ..model.kinematics import RobotModel
 from ..runtime.library import SkillLibrary
 from ..runtime.loop import ControlLoop, InputSample, LoopOutput, Snapshot
+from ..runtime.realtime import RealtimeControl, check_priority, threads_named
 from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
 from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
+from ..transport.port import RECEIVE_THREADS
 from .common import config_dir, serve, split_ros_args, transport_options
 from .inputs import TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     parse_input_mappings
@@ -49,8 +51,10 @@ STARTUP_PARAMETERS = ('robot_description_file', 'skills_folder', 'joint_names', 
 
 
 class ControllerNode:
-    def __init__(self, port: Any, record: Path | None = None) -> None:
+    def __init__(self, port: Any, record: Path | None = None,
+                 realtime: RealtimeControl | None = None) -> None:
         self.port = port
+        self.realtime = realtime
         self._lock = threading.Lock()
         self._tick_lock = threading.Lock()
         cfg = config_dir()
@@ -145,6 +149,8 @@ class ControllerNode:
         port.add_parameter_listener(self._apply_parameters)
         self.timer = port.create_timer(self.dt, self._on_timer)
         self._open_recorder()
+        if realtime is not None:   # the receive threads now; the tick threads at their start
+            port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
         port.log('info', f'{NODE_NAME} ready: {len(self.library.names())} skills, '
                  f'{self.rate:g} Hz, tick on {self.tick_on}, transport '
                  f'{type(port).__name__}')
@@ -214,6 +220,8 @@ class ControllerNode:
 
     def _on_joint_states(self, msg: Any) -> None:
         arrived = time.perf_counter_ns()
+        if self.realtime is not None:
+            self._enter_realtime()
         names = list(msg.name)
         positions = list(msg.position)
         if len(positions) != len(names):
@@ -271,7 +279,16 @@ class ControllerNode:
                             inputs=dict(self._inputs), people=dict(self._people),
                             missing_joints=missing if self._js_stamp is not None else [])
 
+    def _enter_realtime(self) -> None:
+        """SCHED_FIFO for the thread that calls (once per thread, then one set lookup)."""
+        line = self.realtime.enter()
+        if line:
+            self.port.log('warn' if self.realtime.refused and not self.realtime.granted
+                          else 'info', f'realtime: {line}')
+
     def _tick(self) -> None:
+        if self.realtime is not None:
+            self._enter_realtime()
         if self._closing or not self._tick_lock.acquire(blocking=False):
             return
         try:
@@ -501,6 +518,7 @@ class ControllerNode:
             'latency_us': None if not n else {
                 'samples': int(n), 'p50': pct(lat, 50), 'p90': pct(lat, 90),
                 'p99': pct(lat, 99), 'max': round(float(lat.max()), 2)},
+            'realtime': None if self.realtime is None else self.realtime.as_dict(),
             'switch_delay_ticks': None if not delays.size else {
                 'count': int(delays.size), 'p50': round(float(np.median(delays)), 3),
                 'max': round(float(delays.max()), 3)},
@@ -529,15 +547,24 @@ def build_arg_parser() -> argparse.ArgumentParser:
     transport_options(parser)
     parser.add_argument('--record', type=Path, help='write a rosbag2 (MCAP) to this new folder')
     parser.add_argument('--stats', type=Path, help='write timing statistics (JSON) at exit')
+    parser.add_argument('--realtime', type=int, metavar='PRIORITY',
+                        help='run the control path (the threads that receive joint_states and '
+                             'tick, and the transport receive threads) SCHED_FIFO at this '
+                             'priority (1-99) and lock memory (mlockall), where permitted; '
+                             'otherwise normal scheduling, said in the log')
     return parser
 
 
 def run(argv: list[str]) -> int:
     ours, ros = split_ros_args(argv)
-    args = build_arg_parser().parse_args(ours)
+    parser = build_arg_parser()
+    args = parser.parse_args(ours)
+    if args.realtime is not None and check_priority(args.realtime):
+        parser.error(check_priority(args.realtime))
+    realtime = RealtimeControl(args.realtime) if args.realtime is not None else None
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)
-    node = serve(port, lambda: ControllerNode(port, record=args.record))
+    node = serve(port, lambda: ControllerNode(port, record=args.record, realtime=realtime))
     if node is not None and args.stats:
         args.stats.write_text(json.dumps(node.stats(), indent=2) + '\n')
     return 0

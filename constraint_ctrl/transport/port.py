@@ -40,6 +40,11 @@ DISTROS = ('jazzy', 'humble')
 DISTRO_CHOICES = ('auto', *DISTROS)
 TRANSPORTS = ('auto', 'rclpy', 'dds')
 LOG_LEVELS = ('debug', 'info', 'warn', 'error')
+#: Names of the transport's own threads that take samples off the wire and deliver them
+#: (Cyclone DDS's receive, delivery-queue and timed-event threads, as /proc shows them). Both
+#: ports run Cyclone in the process: the DDS port directly, rclpy through rmw_cyclonedds_cpp;
+#: another RMW's threads are named otherwise and are not found by these names.
+RECEIVE_THREADS = ('recv', 'dq.user', 'tev')
 
 ParameterValue = bool | int | float | str | bytes | list[bool] | list[int] | list[float] | list[str]
 
