@@ -41,7 +41,7 @@ from ..transport.port import RECEIVE_THREADS
 from .common import config_dir, serve, split_ros_args, transport_options
 from .inputs import TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     parse_input_mappings
-from .status import build_status
+from .status import StatusWorker, build_status
 
 NODE_NAME = 'constraint_controller'
 #: Parameters fixed at start-up (changing them needs a restart).
@@ -119,6 +119,7 @@ class ControllerNode:
         self._closing = False
         # arrival of a joint_states sample -> its command published (tick_on joint_states)
         self._arrived_ns = 0
+        self._command_msgs: tuple[Any, Any] | None = None   # built on first use, then reused
         self._latency_ns = np.zeros(1 << 20, dtype=np.int64)
         self._latency_count = 0
         self._ticks = 0
@@ -147,6 +148,7 @@ class ControllerNode:
             self._add_skill(name)
         port.set_parameter_validator(self._validate_parameters)
         port.add_parameter_listener(self._apply_parameters)
+        self._status = StatusWorker(self._publish_status, port.log, name=f'{NODE_NAME}-status')
         self.timer = port.create_timer(self.dt, self._on_timer)
         self._open_recorder()
         if realtime is not None:   # the receive threads now; the tick threads at their start
@@ -318,18 +320,27 @@ class ControllerNode:
             self._tick_lock.release()
 
     def _command_messages(self, command_model: np.ndarray) -> tuple[Any, Any]:
-        t = self.port.types
+        """The two command messages, built once and refilled: only the velocities and the
+        stamp change from tick to tick. Called with the tick lock held (ticks and close), and
+        both ports serialise a message inside publish(), so reuse is safe."""
+        msgs = self._command_msgs
+        if msgs is None:
+            t = self.port.types
+            n = len(self.joint_names)
+            msgs = self._command_msgs = (
+                t.Float64MultiArray(layout=t.MultiArrayLayout(
+                    dim=[t.MultiArrayDimension(label='joint_velocity', size=n, stride=n)],
+                    data_offset=0), data=[0.0] * n),
+                t.JointState(header=t.Header(stamp=t.Time(sec=0, nanosec=0), frame_id=''),
+                             name=list(self.joint_names), position=[], velocity=[0.0] * n,
+                             effort=[]))
+        array, joint = msgs
         data = command_model[self._to_command].tolist()
-        n = len(data)
-        array = t.Float64MultiArray(
-            layout=t.MultiArrayLayout(dim=[t.MultiArrayDimension(label='joint_velocity',
-                                                                 size=n, stride=n)],
-                                      data_offset=0),
-            data=data)
+        array.data = data
+        joint.velocity = data
+        stamp = joint.header.stamp
         sec, nanosec = self._js_header
-        joint = t.JointState(header=t.Header(stamp=t.Time(sec=int(sec), nanosec=int(nanosec)),
-                                             frame_id=''),
-                             name=list(self.joint_names), position=[], velocity=data, effort=[])
+        stamp.sec, stamp.nanosec = int(sec), int(nanosec)
         return array, joint
 
     def _send(self, out: LoopOutput) -> None:
@@ -353,9 +364,14 @@ class ControllerNode:
         self._publish(self._pub_joint_command, '~/joint_command', joint)
 
     def _send_status(self, out: LoopOutput) -> None:
+        """On the tick: take the rows of this solve; the worker builds and publishes."""
         runner = self.loop.active
         rows = runner.diagnostics() if runner is not None and out.tick is not None else None
         names = [r.name for r in runner.skill.rows] if runner is not None else []
+        self._status.post(out, rows, names)
+
+    def _publish_status(self, out: LoopOutput, rows: Any, names: list[str]) -> None:
+        """On the status thread (StatusWorker)."""
         recorder = self.recorder
         faults = self.port.faults().values()
         extra = {'missed_ticks': str(getattr(self.timer, 'missed', 0)),
@@ -528,6 +544,7 @@ class ControllerNode:
     def close(self) -> None:
         """After spin() returned (callbacks no longer run on either transport): zero, close."""
         self._closing = True
+        self._status.close()
         with self._tick_lock:
             for _ in range(3):
                 self._send_zero()
