@@ -149,7 +149,7 @@ class ControllerNode:
         port.set_parameter_validator(self._validate_parameters)
         port.add_parameter_listener(self._apply_parameters)
         self._status = StatusWorker(self._publish_status, port.log, name=f'{NODE_NAME}-status')
-        self.timer = port.create_timer(self.dt, self._on_timer)
+        self.timer = port.create_timer(self.dt, self._on_timer, control=True)
         self._open_recorder()
         if realtime is not None:   # the receive threads now; the tick threads at their start
             port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
@@ -169,8 +169,8 @@ class ControllerNode:
         return pub
 
     def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
-        if self._record_to is None:
-            self.port.create_subscription(msg_type, topic, callback, 'sensor')
+        if self._record_to is None:   # everything the tick reads: the control path
+            self.port.create_subscription(msg_type, topic, callback, 'sensor', control=True)
             return
         records_to: list[str] = []      # the bag topic, unless another subscription has it
 
@@ -178,7 +178,7 @@ class ControllerNode:
             if records_to:
                 self._record(records_to[0], msg)
             callback(msg)
-        sub = self.port.create_subscription(msg_type, topic, recorded, 'sensor')
+        sub = self.port.create_subscription(msg_type, topic, recorded, 'sensor', control=True)
         name = str(sub.topic_name)
         if name not in self._bag_topics:
             self._bag_topics[name] = (self.port.type_name(msg_type), 'sensor')

@@ -258,7 +258,9 @@ class DdsPort:
         return DdsPublisher(writer, msg_type, fqn)
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
-                            qos: str) -> DdsSubscription:
+                            qos: str, *, control: bool = False) -> DdsSubscription:
+        # control: nothing to do here; every subscription is dispatched on the one topic
+        # thread, which nothing but subscriptions uses (services have their own)
         return self._subscription(msg_type, topic, callback, profile(qos))
 
     def _subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
@@ -306,7 +308,9 @@ class DdsPort:
 
     # --- timers ----------------------------------------------------------------------------
 
-    def create_timer(self, period_s: float, callback: Callable[[], None]) -> FixedRateTimer:
+    def create_timer(self, period_s: float, callback: Callable[[], None], *,
+                     control: bool = False) -> FixedRateTimer:
+        # control: nothing to do here; every timer has its own thread
         timer = FixedRateTimer(period_s, callback, self._faults,
                                name=f'timer {len(self._timers)}',
                                clock=self._clock if self._clock.sim_time else None)

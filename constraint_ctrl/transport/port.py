@@ -100,7 +100,10 @@ class Port(Protocol):
     def create_publisher(self, msg_type: Any, topic: str, qos: str) -> Publisher: ...
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
-                            qos: str) -> Subscription: ...
+                            qos: str, *, control: bool = False) -> Subscription:
+        """control=True: the callback belongs to the control path (what a tick reads), which
+        the port runs on one thread of its own that nothing else queues on (rclpy: a hidden
+        node with its own executor; DDS: the topic thread already is such a thread)."""
 
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> object:
@@ -110,8 +113,10 @@ class Port(Protocol):
 
     def create_client(self, srv_type: Any, name: str) -> Client: ...
 
-    def create_timer(self, period_s: float, callback: Callable[[], None]) -> Timer:
-        """Fixed rate; late ticks are skipped, not bunched. Created while use_sim_time is
+    def create_timer(self, period_s: float, callback: Callable[[], None], *,
+                     control: bool = False) -> Timer:
+        """Fixed rate; late ticks are skipped, not bunched. control=True: on the control
+        path's thread (see create_subscription). Created while use_sim_time is
         false: on the monotonic clock. Created while it is true: on ROS time, so the timer
         does not fire while /clock stands still, as rclpy's ROS-time timers do."""
 
