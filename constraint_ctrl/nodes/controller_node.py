@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import sys
 import threading
 import time
 import traceback
@@ -44,6 +45,7 @@ from .inputs import TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
 from .status import StatusWorker, build_status
 
 NODE_NAME = 'constraint_controller'
+SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
 #: Parameters fixed at start-up (changing them needs a restart).
 STARTUP_PARAMETERS = ('robot_description_file', 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
@@ -148,7 +150,12 @@ class ControllerNode:
             self._add_skill(name)
         port.set_parameter_validator(self._validate_parameters)
         port.add_parameter_listener(self._apply_parameters)
-        self._status = StatusWorker(self._publish_status, port.log, name=f'{NODE_NAME}-status')
+        # with --realtime the status thread runs one step below the tick: a normal-priority
+        # thread that holds the interpreter lock when the machine preempts it would hold up
+        # the tick behind it
+        self._status = StatusWorker(
+            self._publish_status, port.log, name=f'{NODE_NAME}-status',
+            on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
         self.timer = port.create_timer(self.dt, self._on_timer, control=True)
         self._open_recorder()
         if realtime is not None:   # the receive threads now; the tick threads at their start
@@ -281,9 +288,9 @@ class ControllerNode:
                             inputs=dict(self._inputs), people=dict(self._people),
                             missing_joints=missing if self._js_stamp is not None else [])
 
-    def _enter_realtime(self) -> None:
+    def _enter_realtime(self, below: int = 0) -> None:
         """SCHED_FIFO for the thread that calls (once per thread, then one set lookup)."""
-        line = self.realtime.enter()
+        line = self.realtime.enter(below)
         if line:
             self.port.log('warn' if self.realtime.refused and not self.realtime.granted
                           else 'info', f'realtime: {line}')
@@ -576,6 +583,10 @@ def run(argv: list[str]) -> int:
     ours, ros = split_ros_args(argv)
     parser = build_arg_parser()
     args = parser.parse_args(ours)
+    # Threads of this process hand the interpreter lock over after at most 0.5 ms instead of
+    # Python's 5 ms, so a sample that arrives while another thread (status, services) runs
+    # Python code waits at most that long for its tick.
+    sys.setswitchinterval(SWITCH_INTERVAL_S)
     if args.realtime is not None and check_priority(args.realtime):
         parser.error(check_priority(args.realtime))
     realtime = RealtimeControl(args.realtime) if args.realtime is not None else None

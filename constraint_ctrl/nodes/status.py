@@ -98,8 +98,10 @@ class StatusWorker:
     """
 
     def __init__(self, publish: Callable[[Any, Any, list[str]], None],
-                 log: Callable[[str, str], None], name: str = 'status') -> None:
+                 log: Callable[[str, str], None], name: str = 'status',
+                 on_start: Callable[[], None] | None = None) -> None:
         self._publish = publish
+        self._on_start = on_start
         self._log = log
         self._wake = threading.Condition()
         self._pending: tuple[Any, Any, list[str]] | None = None
@@ -118,6 +120,8 @@ class StatusWorker:
             self._wake.notify()
 
     def _run(self) -> None:
+        if self._on_start is not None:    # e.g. the node's real-time set-up of this thread
+            self._on_start()
         while True:
             with self._wake:
                 while self._pending is None and self._running:

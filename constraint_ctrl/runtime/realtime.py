@@ -135,35 +135,37 @@ class RealtimeControl:
             self._promote(tid, name, own=False)
         return self.summary()
 
-    def enter(self) -> str | None:
-        """On a control-path thread: the first call in each thread asks for SCHED_FIFO and
-        returns the line to log (granted, or the first refusal); later calls return None
-        after one set lookup."""
+    def enter(self, below: int = 0) -> str | None:
+        """On a control-path thread: the first call in each thread asks for SCHED_FIFO
+        (``below`` steps under the priority, at least 1) and returns the line to log (granted,
+        or the first refusal); later calls return None after one set lookup."""
         tid = threading.get_native_id()
         if tid in self._seen:
             return None
         name = threading.current_thread().name
         refused_before = self.refused
-        if self._promote(tid, name, own=True):
-            return f'SCHED_FIFO {self.priority} for thread {name} ({tid}): {self.summary()}'
+        priority = max(PRIORITY_RANGE[0], self.priority - below)
+        if self._promote(tid, name, own=True, priority=priority):
+            return f'SCHED_FIFO {priority} for thread {name} ({tid}): {self.summary()}'
         if self.refused is not None and refused_before is None:
             return self.summary()
         return None
 
-    def _promote(self, tid: int, name: str, *, own: bool) -> bool:
+    def _promote(self, tid: int, name: str, *, own: bool, priority: int | None = None) -> bool:
         with self._lock:
             if tid in self._seen:
                 return False
             self._seen.add(tid)
             if self.refused is not None:
                 return False
-            problem = set_fifo(self.priority, 0 if own else tid)
+            priority = self.priority if priority is None else priority
+            problem = set_fifo(priority, 0 if own else tid)
             if problem == _GONE:
                 return False
             if problem is not None:
                 self.refused = problem
                 return False
-            self.granted[tid] = name
+            self.granted[tid] = name if priority == self.priority else f'{name} at {priority}'
             return True
 
     def summary(self) -> str:
