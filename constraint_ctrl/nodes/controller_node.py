@@ -177,7 +177,7 @@ class ControllerNode:
 
     def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
         if self._record_to is None:   # everything the tick reads: the control path
-            self.port.create_subscription(msg_type, topic, callback, 'sensor', control=True)
+            self.port.create_subscription(msg_type, topic, callback, 'latest', control=True)
             return
         records_to: list[str] = []      # the bag topic, unless another subscription has it
 
@@ -185,7 +185,7 @@ class ControllerNode:
             if records_to:
                 self._record(records_to[0], msg)
             callback(msg)
-        sub = self.port.create_subscription(msg_type, topic, recorded, 'sensor', control=True)
+        sub = self.port.create_subscription(msg_type, topic, recorded, 'latest', control=True)
         name = str(sub.topic_name)
         if name not in self._bag_topics:
             self._bag_topics[name] = (self.port.type_name(msg_type), 'sensor')

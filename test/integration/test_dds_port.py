@@ -363,3 +363,49 @@ def test_shutdown_survives_a_reader_that_never_acknowledges() -> None:
         os.kill(proc.pid, signal.SIGCONT)
         proc.kill()
         proc.wait(5)
+
+
+def test_latest_profile_keeps_only_the_newest_waiting_sample() -> None:
+    """QoS 'latest' (keep last 1, best effort): while a callback is busy, newer samples
+    replace each other in the reader, so the callback then sees one newer sample, not a
+    backlog (DDS KEEP_LAST history semantics; the controller's control-path subscriptions
+    use it so a node that fell behind ticks once, on the newest joint_states)."""
+    topic = f'{NS}/latest_only'
+    sub_port = DdsPort('latest_sub', ['test'])
+    pub_port = DdsPort('latest_pub', ['test'])
+    got: list[float] = []
+    first = threading.Event()
+    release = threading.Event()
+
+    def on_value(msg: Any) -> None:
+        got.append(msg.data)
+        if len(got) == 1:
+            first.set()
+            release.wait(30.0)
+
+    sub_port.create_subscription(sub_port.types.Float64, topic, on_value, 'latest')
+    spinner = threading.Thread(target=sub_port.spin, daemon=True)
+    spinner.start()
+    pub = pub_port.create_publisher(pub_port.types.Float64, topic, 'sensor')
+    try:
+        value = 0.0
+        while not first.is_set():                  # until the callback holds the first one
+            value += 1.0
+            pub.publish(pub_port.types.Float64(data=value))
+            first.wait(0.05)
+        start = value
+        for _ in range(10):
+            value += 1.0
+            pub.publish(pub_port.types.Float64(data=value))
+        time.sleep(2.0)                            # let them reach the reader (not timed)
+        release.set()
+        assert wait_until(lambda: len(got) >= 2, 10.0)
+        time.sleep(0.5)
+        assert len(got) == 2, got                  # one waiting sample, not ten
+        assert start < got[1] <= value
+    finally:
+        release.set()
+        sub_port.shutdown()
+        spinner.join(5.0)
+        sub_port.shutdown()
+        pub_port.shutdown()
