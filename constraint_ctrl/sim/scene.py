@@ -3,7 +3,9 @@
 A scene has a robot and the simulation settings, and any of these fixtures: distance sensors on
 the tool with the housing flange they look at (``range_sensors`` + ``flange``), the splined
 shaft of the gearbox cell (``shaft``), a screw standing in a threaded hole (``screw``), a curved
-panel the tool presses on (``panel``), and an operator. The YAML is read once, validated completely, and turned into frozen dataclasses so that the
+panel the tool presses on (``panel``), and an operator.
+
+The YAML is read once, validated completely, and turned into frozen dataclasses so that the
 simulation loop never re-checks anything. Every error names the file, the 1-based line and the
 dotted field (``shaft.drop``) together with the bad value. Lengths are metres, times seconds,
 forces newtons; angles are degrees in the file (keys ending in ``_deg``) and radians in the
