@@ -107,6 +107,11 @@ def _bench_sections(args: argparse.Namespace) -> dict:
     except ImportError:  # pragma: no cover - during development only
         pass
     try:
+        from .tools.bench_wire import bench_wire
+        sections['wire'] = lambda: bench_wire(samples=3000 if args.quick else 20000)
+    except ImportError:  # pragma: no cover - without cyclonedds
+        pass
+    try:
         from .tools.bench_node import bench_end_to_end
         sections['end_to_end'] = lambda: bench_end_to_end(
             duration=args.e2e_seconds, rate_hz=args.e2e_rate)

@@ -340,13 +340,16 @@ class ControllerNode:
         rows = runner.diagnostics() if runner is not None and out.tick is not None else None
         names = [r.name for r in runner.skill.rows] if runner is not None else []
         recorder = self.recorder
+        faults = self.port.faults().values()
         extra = {'missed_ticks': str(getattr(self.timer, 'missed', 0)),
                  'tick_errors': str(self._errors),
                  'recorder': recorder.state if recorder is not None else 'off',
                  'recorder_written': str(recorder.written if recorder is not None else 0),
                  'recorder_dropped': str((recorder.dropped if recorder is not None else 0)
                                          + self._record_errors),
-                 'recorder_error': recorder.error if recorder is not None else ''}
+                 'recorder_error': recorder.error if recorder is not None else '',
+                 'samples_dropped': str(sum(f.dropped for f in faults)),
+                 'callback_errors': str(sum(f.callback_errors for f in faults))}
         msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
                            extra)
         self._publish(self._pub_status, '~/status', msg)

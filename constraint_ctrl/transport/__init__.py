@@ -7,6 +7,8 @@ from constraint_ctrl.transport.port import (Client, ParameterView, Port, Publish
                                             Subscription, Timer, choose_distro, detect_distro,
                                             open_port)
 from constraint_ctrl.transport.qos import PROFILES, QosProfile
+from constraint_ctrl.transport.receive_faults import SourceFaults
 
 __all__ = ['PROFILES', 'Client', 'ParameterView', 'Port', 'Publisher', 'QosProfile',
-           'Subscription', 'Timer', 'choose_distro', 'detect_distro', 'open_port']
+           'SourceFaults', 'Subscription', 'Timer', 'choose_distro', 'detect_distro',
+           'open_port']

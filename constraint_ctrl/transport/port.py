@@ -12,6 +12,12 @@ rclpy offers and names things as rclpy does:
 * callbacks (subscriptions, services, parameter changes, timers) run only while `spin()` runs,
   on threads of the port: the timer has its own thread, so a timer tick may run at the same time
   as a subscription or service callback. Guard shared state with a lock.
+* a sample that cannot be decoded is dropped, and an exception raised by a subscription,
+  service or timer callback is caught; both are counted per source (`faults()`), logged at
+  most once a minute per source, and spin() goes on (receive_faults.py). One bad sample from a
+  peer, or one failing callback, never ends the node;
+* time is ROS time: `now_ns()` follows the node's clock (the system clock, or /clock while the
+  parameter use_sim_time is true), and a timer created while use_sim_time is true runs on it;
 * QoS is chosen by profile name (see qos.py);
 * `port.distro` ('jazzy' or 'humble') names the message layouts and the bag format. On rclpy
   it is the installed ROS 2's (detect_distro), and a `--distro` that contradicts it is refused:
@@ -28,6 +34,7 @@ from types import SimpleNamespace
 from typing import Any, Protocol
 
 from constraint_ctrl.errors import TransportError
+from constraint_ctrl.transport.receive_faults import SourceFaults
 
 DISTROS = ('jazzy', 'humble')
 DISTRO_CHOICES = ('auto', *DISTROS)
@@ -78,7 +85,9 @@ class Port(Protocol):
         """DiagnosticStatus.level in the port's representation (rclpy wants bytes)."""
 
     def now_ns(self) -> int:
-        """ROS time (system clock) in ns, for header stamps."""
+        """ROS time in ns, for header stamps: the node clock. That is the system clock, or,
+        while the parameter use_sim_time is true, the latest rosgraph_msgs/Clock received on
+        /clock (0 before the first one), as rclpy's node clock and TimeSource define it."""
 
     def type_name(self, msg_type: Any) -> str:
         """'sensor_msgs/msg/JointState' for a message class (for bags and messages)."""
@@ -97,7 +106,9 @@ class Port(Protocol):
     def create_client(self, srv_type: Any, name: str) -> Client: ...
 
     def create_timer(self, period_s: float, callback: Callable[[], None]) -> Timer:
-        """Fixed rate on the monotonic clock; late ticks are skipped, not bunched."""
+        """Fixed rate; late ticks are skipped, not bunched. Created while use_sim_time is
+        false: on the monotonic clock. Created while it is true: on ROS time, so the timer
+        does not fire while /clock stands still, as rclpy's ROS-time timers do."""
 
     def declare_parameter(self, name: str, value: ParameterValue, description: str = '',
                           read_only: bool = False) -> Any:
@@ -119,7 +130,12 @@ class Port(Protocol):
     def serialize(self, msg: Any) -> bytes:
         """CDR with the 4-byte encapsulation header, as stored in rosbag2."""
 
-    def log(self, level: str, text: str) -> None: ...
+    def log(self, level: str, text: str) -> None:
+        """To stderr and to /rosout (rcl_interfaces/Log), as an rclpy node's logger does."""
+
+    def faults(self) -> dict[str, SourceFaults]:
+        """Dropped samples and callback exceptions per source ('subscription /joint_states',
+        'service /ctrl/get_parameters', 'timer 0', ...) since the node started."""
 
     def spin(self) -> None:
         """Run callbacks until shutdown() or SIGINT/SIGTERM; publishing still works after."""
