@@ -39,7 +39,8 @@ class EchoNode:
         self._pub_command = port.create_publisher(t.Float64MultiArray, '~/command', 'default')
         self._pub_joint = port.create_publisher(t.JointState, '~/joint_command', 'default')
         self.answered = 0
-        port.create_subscription(t.JointState, 'joint_states', self._on_joint_states, 'latest')
+        port.create_subscription(t.JointState, 'joint_states', self._on_joint_states, 'latest',
+                                 control=True)   # the controller's own path on either port
         if realtime is not None:
             port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
         port.log('info', f'{NODE_NAME} ready: answers joint_states on ~/command and '

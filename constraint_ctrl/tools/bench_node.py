@@ -97,6 +97,11 @@ def _measure(workdir: Path, transport: str, rate_hz: float, seconds: float, bloc
     """Start the targets (name, 'node' | 'echo', realtime priority), run the peer over them,
     stop them; the peer's results plus each node's own statistics."""
     env = dict(os.environ, ROS_DOMAIN_ID=str(random.randint(101, 200)), PYTHONUNBUFFERED='1')
+    if transport == 'rclpy':
+        # the peer's DDS transport answers services of rmw_cyclonedds_cpp peers only, and its
+        # loopback-only discovery meets a ROS 2 node restricted to this host (README, Distro)
+        env.setdefault('RMW_IMPLEMENTATION', 'rmw_cyclonedds_cpp')
+        env.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
     params = _params_file(workdir)
     procs: dict[str, subprocess.Popen] = {}
     logs: dict[str, Path] = {}
