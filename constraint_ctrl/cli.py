@@ -220,9 +220,11 @@ def build_parser() -> argparse.ArgumentParser:
                         'processes alongside, with and without --realtime (default 2; 0 skips)')
     p.add_argument('--realtime', type=_priority, default=80, metavar='PRIORITY',
                    help="end to end, loaded part: the node's --realtime priority (default 80)")
-    p.add_argument('--transport', choices=('dds', 'rclpy'), default='dds',
+    p.add_argument('--transport', choices=('dds', 'rclpy', 'both'), default='dds',
                    help="end to end: the measured node's transport (the echo floor uses the "
-                        'same; the peer is always DDS). rclpy needs a sourced ROS 2 install')
+                        'same; the peer is always DDS); both: a controller and an echo on each, '
+                        'interleaved in one run (the loaded part on DDS). rclpy needs a '
+                        'sourced ROS 2 install')
     p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
                    help='QP solver of the example ticks (the scaling table runs both)')
     p.add_argument('--cells', nargs='+', metavar='JxR', type=_cell,

@@ -91,13 +91,17 @@ def _busy_loops(count: int) -> list[subprocess.Popen]:
             for _ in range(count)]
 
 
-def _measure(workdir: Path, transport: str, rate_hz: float, seconds: float, block_s: float,
-             targets: list[tuple[str, str, int | None]], peer_realtime: int | None,
+#: A measured process: name, 'node' | 'echo', --realtime priority (None: normal), transport.
+Target = tuple[str, str, int | None, str]
+
+
+def _measure(workdir: Path, rate_hz: float, seconds: float, block_s: float,
+             targets: list[Target], peer_realtime: int | None,
              activation: tuple[str, int] | None) -> dict[str, Any]:
-    """Start the targets (name, 'node' | 'echo', realtime priority), run the peer over them,
-    stop them; the peer's results plus each node's own statistics."""
+    """Start the targets, run the peer over them, stop them; the peer's results plus each
+    node's own statistics."""
     env = dict(os.environ, ROS_DOMAIN_ID=str(random.randint(101, 200)), PYTHONUNBUFFERED='1')
-    if transport == 'rclpy':
+    if any(target[3] == 'rclpy' for target in targets):
         # the peer's DDS transport answers services of rmw_cyclonedds_cpp peers only, and its
         # loopback-only discovery meets a ROS 2 node restricted to this host (README, Distro)
         env.setdefault('RMW_IMPLEMENTATION', 'rmw_cyclonedds_cpp')
@@ -108,7 +112,7 @@ def _measure(workdir: Path, transport: str, rate_hz: float, seconds: float, bloc
     stats: dict[str, Path] = {}
     peer_targets = []
     try:
-        for name, kind, realtime in targets:
+        for name, kind, realtime, transport in targets:
             logs[name] = workdir / f'{name}.log'
             if kind == 'node':
                 stats[name] = workdir / f'{name}_stats.json'
@@ -169,25 +173,41 @@ def _summary(target: dict[str, Any]) -> dict[str, Any]:
     return out
 
 
+def _transport_figures(node: dict[str, Any], echo: dict[str, Any]) -> dict[str, Any]:
+    own = node.get('node') or {}
+    return {'round_trip_us': node['round_trip_us'], 'echo_floor_us': echo['round_trip_us'],
+            'ratio_p99': _ratio(node['round_trip_us'], echo['round_trip_us'], 'p99'),
+            'missed_percent': node['missed_percent'], 'worst_gap_ms': node['worst_gap_ms'],
+            'echo_missed_percent': echo['missed_percent'], 'latency_us': own.get('latency_us')}
+
+
 def bench_end_to_end(duration: float = 30.0, rate_hz: float = 1000.0, activations: int = 20,
                      load: int = 2, transport: str = 'dds', realtime_priority: int = 80,
                      block_s: float = 2.0) -> dict[str, Any]:
     """The quiet part, then (load > 0) the loaded part; see the module docstring.
 
-    ``duration``: recorded seconds per measured process in each part.
+    ``duration``: recorded seconds per measured process in each part. ``transport`` 'dds',
+    'rclpy', or 'both': then the quiet part interleaves a controller and an echo on each
+    transport (the main keys are the DDS ones; `transports` has both side by side) and the
+    loaded part runs on DDS.
     """
     workdir = Path(tempfile.mkdtemp(prefix='ctrl_e2e_'))
     block_s = min(block_s, duration)
     (workdir / 'quiet').mkdir()
     (workdir / 'loaded').mkdir()
     peer_priority = min(99, realtime_priority + PEER_PRIORITY_ABOVE_NODE)
-    quiet = _measure(workdir / 'quiet', transport, rate_hz, duration, block_s,
-                     [('controller', 'node', None), ('echo', 'echo', None)], peer_priority,
+    main_transport = 'dds' if transport == 'both' else transport
+    targets: list[Target] = [('controller', 'node', None, main_transport),
+                             ('echo', 'echo', None, main_transport)]
+    if transport == 'both':
+        targets += [('controller_rclpy', 'node', None, 'rclpy'),
+                    ('echo_rclpy', 'echo', None, 'rclpy')]
+    quiet = _measure(workdir / 'quiet', rate_hz, duration, block_s, targets, peer_priority,
                      ('controller', activations) if activations else None)
     node, echo = quiet['targets']['controller'], quiet['targets']['echo']
     own = node.get('node') or {}
     result: dict[str, Any] = {
-        'rate_hz': rate_hz, 'transport': transport, 'duration_s': duration,
+        'rate_hz': rate_hz, 'transport': main_transport, 'duration_s': duration,
         'samples_sent': node['samples_sent'], 'commands_matched': node['commands_matched'],
         'missed_ticks': node['missed_ticks'], 'missed_percent': node['missed_percent'],
         'round_trip_us': node['round_trip_us'], 'worst_gap_ms': node['worst_gap_ms'],
@@ -199,19 +219,27 @@ def bench_end_to_end(duration: float = 30.0, rate_hz: float = 1000.0, activation
         'activation': quiet.get('activation'),
         'node_ticks': own.get('ticks'),
         'interleaving': {'block_s': block_s, 'blocks_per_process': node['blocks'],
-                         'order': 'controller, echo, then reversed each round; the process '
-                                  'not fed is paused (SIGSTOP)'},
+                         'order': ', '.join(t[0] for t in targets) + ', then reversed each '
+                                  'round; a process not fed is paused (SIGSTOP)'},
         'peer': quiet['peer'],
     }
     if result['activation'] is not None and own.get('switch_delay_ticks') is not None:
         result['activation']['node_ticks'] = own['switch_delay_ticks']
+    if transport == 'both':
+        figures = {'dds': _transport_figures(node, echo),
+                   'rclpy': _transport_figures(quiet['targets']['controller_rclpy'],
+                                               quiet['targets']['echo_rclpy'])}
+        figures['rclpy_over_dds_p99'] = _ratio(figures['rclpy']['round_trip_us'],
+                                               figures['dds']['round_trip_us'], 'p99')
+        result['transports'] = figures
     if load > 0:
         busy = _busy_loops(load)
         try:
             time.sleep(1.0)
-            loaded = _measure(workdir / 'loaded', transport, rate_hz, duration, block_s,
-                              [('plain', 'node', None), ('realtime', 'node', realtime_priority),
-                               ('echo', 'echo', None)], peer_priority, None)
+            loaded = _measure(workdir / 'loaded', rate_hz, duration, block_s,
+                              [('plain', 'node', None, main_transport),
+                               ('realtime', 'node', realtime_priority, main_transport),
+                               ('echo', 'echo', None, main_transport)], peer_priority, None)
         finally:
             for proc in busy:
                 proc.kill()
