@@ -57,6 +57,9 @@ class ControllerNode:
                  realtime: RealtimeControl | None = None) -> None:
         self.port = port
         self.realtime = realtime
+        if realtime is not None:   # memory and the transport's receive threads now; the
+            # threads that tick switch themselves when they first run
+            port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
         self._lock = threading.Lock()
         self._tick_lock = threading.Lock()
         cfg = config_dir()
@@ -158,8 +161,6 @@ class ControllerNode:
             on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
         self.timer = port.create_timer(self.dt, self._on_timer, control=True)
         self._open_recorder()
-        if realtime is not None:   # the receive threads now; the tick threads at their start
-            port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
         port.log('info', f'{NODE_NAME} ready: {len(self.library.names())} skills, '
                  f'{self.rate:g} Hz, tick on {self.tick_on}, transport '
                  f'{type(port).__name__}')

@@ -146,7 +146,7 @@ class RealtimeControl:
         refused_before = self.refused
         priority = max(PRIORITY_RANGE[0], self.priority - below)
         if self._promote(tid, name, own=True, priority=priority):
-            return f'SCHED_FIFO {priority} for thread {name} ({tid}): {self.summary()}'
+            return f'SCHED_FIFO {priority} for thread {name} ({tid})'
         if self.refused is not None and refused_before is None:
             return self.summary()
         return None

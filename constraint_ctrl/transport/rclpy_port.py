@@ -263,8 +263,8 @@ class RclpyPort:
                 context=self.node.context, use_global_arguments=False, enable_rosout=False,
                 start_parameter_services=False)
             self.control_executor.add_node(self._control_node)
-            self.log('info', f'control path: node {self._control_node.get_name()} on an '
-                     f'{self.control_executor_name} in its own thread')
+            self.log('info', f'control path: node {self._control_node.get_name()}, '
+                     f'{self.control_executor_name}, its own thread')
         return self._control_node
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
