@@ -165,7 +165,9 @@ def _summary(target: dict[str, Any]) -> dict[str, Any]:
     node = target.get('node') or {}
     out = {'round_trip_us': target['round_trip_us'], 'missed_percent': target['missed_percent'],
            'missed_ticks': target['missed_ticks'], 'samples_sent': target['samples_sent'],
-           'worst_gap_ms': target['worst_gap_ms']}
+           'worst_gap_ms': target['worst_gap_ms'],
+           'cpu_us_per_sample': target['cpu_us_per_sample'],
+           'cpu_percent': target['cpu_percent']}
     if node:
         out['latency_us'] = node.get('latency_us')
         if node.get('realtime') is not None:
@@ -178,7 +180,9 @@ def _transport_figures(node: dict[str, Any], echo: dict[str, Any]) -> dict[str, 
     return {'round_trip_us': node['round_trip_us'], 'echo_floor_us': echo['round_trip_us'],
             'ratio_p99': _ratio(node['round_trip_us'], echo['round_trip_us'], 'p99'),
             'missed_percent': node['missed_percent'], 'worst_gap_ms': node['worst_gap_ms'],
-            'echo_missed_percent': echo['missed_percent'], 'latency_us': own.get('latency_us')}
+            'echo_missed_percent': echo['missed_percent'], 'latency_us': own.get('latency_us'),
+            'cpu_us_per_sample': node['cpu_us_per_sample'],
+            'echo_cpu_us_per_sample': echo['cpu_us_per_sample']}
 
 
 def bench_end_to_end(duration: float = 30.0, rate_hz: float = 1000.0, activations: int = 20,
@@ -214,6 +218,9 @@ def bench_end_to_end(duration: float = 30.0, rate_hz: float = 1000.0, activation
         'latency_us': own.get('latency_us'),
         'echo_floor_us': echo['round_trip_us'],
         'echo_missed_percent': echo['missed_percent'],
+        'cpu_us_per_sample': node['cpu_us_per_sample'],
+        'echo_cpu_us_per_sample': echo['cpu_us_per_sample'],
+        'cpu_percent': node['cpu_percent'], 'echo_cpu_percent': echo['cpu_percent'],
         'ratio_p99': _ratio(node['round_trip_us'], echo['round_trip_us'], 'p99'),
         'ratio_p50': _ratio(node['round_trip_us'], echo['round_trip_us'], 'p50'),
         'activation': quiet.get('activation'),

@@ -58,6 +58,16 @@ class Target:
     first_answer: bool = False
     recording: bool = False
     publisher: Any = None
+    cpu_s: float = 0.0               # the process's CPU time while it was resumed
+    resumed_s: float = 0.0           # wall time it was resumed
+
+
+def cpu_seconds(pid: int) -> float:
+    """User + system CPU time of a process so far (/proc/<pid>/stat fields 14 and 15, in
+    clock ticks; proc(5))."""
+    with open(f'/proc/{pid}/stat', encoding='ascii') as f:
+        fields = f.read().rsplit(')', 1)[1].split()
+    return (int(fields[11]) + int(fields[12])) / os.sysconf('SC_CLK_TCK')
 
 
 def _stats(values_us: np.ndarray) -> dict[str, float] | None:
@@ -70,13 +80,16 @@ def _stats(values_us: np.ndarray) -> dict[str, float] | None:
 
 
 def _scheduling(priority: int | None) -> str:
+    """SCHED_FIFO for every thread of this process (the transport's included) and locked
+    memory; done once every target answers, so the start-up of the measured processes is not
+    held up by a real-time peer."""
     if not priority:
         return 'normal'
-    from ..runtime.realtime import lock_memory, set_fifo
-    problem = set_fifo(priority)
+    from ..runtime.realtime import lock_memory, set_fifo, threads_named
+    problems = [p for tid in threads_named(('',)) if (p := set_fifo(priority, tid))]
     memory = lock_memory()
-    if problem:
-        return f'normal (SCHED_FIFO {priority} refused: {problem})'
+    if problems:
+        return f'normal (SCHED_FIFO {priority} refused: {problems[0]})'
     return f'SCHED_FIFO {priority}' + ('' if memory is None else f' ({memory})')
 
 
@@ -88,7 +101,8 @@ class Peer:
         self.tail_s = float(config.get('tail_s', 0.15))
         self.seconds = float(config['seconds_per_target'])
         self.targets = [Target(**t) for t in config['targets']]
-        self.scheduling = _scheduling(config.get('realtime'))
+        self.realtime = config.get('realtime')
+        self.scheduling = 'normal'
         from ..transport.port import open_port
         self.port = open_port('dds', 'latency_probe', ['--ros-args'])
         t = self.port.types
@@ -170,6 +184,8 @@ class Peer:
                 # alternate the order, so no target always follows the same one
                 order = self.targets if r % 2 == 0 else self.targets[::-1]
                 for target in order:
+                    cpu_before = cpu_seconds(target.pid)
+                    resumed = time.monotonic()
                     self._signal(target, signal.SIGCONT)
                     self._feed = [target]
                     time.sleep(self.warmup_s)
@@ -182,6 +198,9 @@ class Peer:
                     self._feed = []
                     time.sleep(self.tail_s)
                     self._signal(target, signal.SIGSTOP)
+                    time.sleep(0.01)               # let the stop take effect
+                    target.cpu_s += cpu_seconds(target.pid) - cpu_before
+                    target.resumed_s += time.monotonic() - resumed
         finally:
             for target in self.targets:
                 try:
@@ -248,6 +267,11 @@ class Peer:
                     'missed_percent': round(100.0 * missed / max(len(sent), 1), 4),
                     'worst_gap_ms': round(max(gaps) / 1e6, 3) if gaps else None,
                     'blocks': len(target.arrivals),
+                    # whole process while resumed (warm-up and tail included): per sample
+                    # sent in a recorded window, and in percent of one core
+                    'cpu_us_per_sample': round(1e6 * target.cpu_s / max(len(sent), 1), 1),
+                    'cpu_percent': round(100.0 * target.cpu_s / max(target.resumed_s, 1e-9),
+                                         1),
                 }
         return out
 
@@ -259,6 +283,7 @@ def run(config: dict[str, Any]) -> dict[str, Any]:
     peer = Peer(config)
     try:
         peer.wait_ready()
+        peer.scheduling = _scheduling(peer.realtime)
         peer.blocks()
         result: dict[str, Any] = {'targets': peer.results(),
                                   'peer': {'scheduling': peer.scheduling,

@@ -25,6 +25,7 @@ def _target(part: dict) -> None:
     assert part['missed_percent'] == pytest.approx(
         100.0 * part['missed_ticks'] / part['samples_sent'], abs=1e-3)
     assert part['worst_gap_ms'] is not None and part['worst_gap_ms'] > 0.0
+    assert part['cpu_us_per_sample'] > 0.0 and part['cpu_percent'] > 0.0
 
 
 def test_end_to_end_keys_and_numbers_hang_together() -> None:
