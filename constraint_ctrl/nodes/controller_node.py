@@ -248,6 +248,9 @@ class ControllerNode:
         if self.tick_on == 'joint_states':
             self._arrived_ns = arrived
             self._tick()
+            # the fallback timer stands in only when samples stop: on rclpy each timer call
+            # costs an executor wake-up, so it restarts its period after every sample's tick
+            self.timer.reset()
 
     def _input_callback(self, mapping: InputMapping) -> Any:
         def callback(msg: Any) -> None:

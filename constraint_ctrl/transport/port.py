@@ -79,6 +79,9 @@ class Timer(Protocol):
 
     def cancel(self) -> None: ...
 
+    def reset(self) -> None:
+        """Restart the period from now (rclpy's Timer.reset): the next call comes one full
+        period later. For a timer that only stands in when something else did not happen."""
 
 class Port(Protocol):
     node_name: str    # after `-r __node:=...`

@@ -142,6 +142,10 @@ class RclpyTimer:
     def cancel(self) -> None:
         self.timer.cancel()
 
+    def reset(self) -> None:
+        self._due = self._now() + self._period
+        self.timer.reset()
+
 
 def _control_executor(context: Any) -> tuple[Any, str]:
     """(executor, its class name) for the control path: EventsExecutor where rclpy has it."""
@@ -258,10 +262,14 @@ class RclpyPort:
         """The hidden node of the control path (module docstring), made on first use."""
         if self._control_node is None:
             from rclpy.node import Node
+            from rclpy.parameter import Parameter
+            # no ~/get_type_description service either (Jazzy starts one on every node unless
+            # this parameter is false; Humble has none and ignores the override)
             self._control_node = Node(
                 f'_{self.node_name}_control', namespace=self.namespace,
                 context=self.node.context, use_global_arguments=False, enable_rosout=False,
-                start_parameter_services=False)
+                start_parameter_services=False, parameter_overrides=[
+                    Parameter('start_type_description_service', value=False)])
             self.control_executor.add_node(self._control_node)
             self.log('info', f'control path: node {self._control_node.get_name()}, '
                      f'{self.control_executor_name}, its own thread')

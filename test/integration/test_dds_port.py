@@ -409,3 +409,30 @@ def test_latest_profile_keeps_only_the_newest_waiting_sample() -> None:
         spinner.join(5.0)
         sub_port.shutdown()
         pub_port.shutdown()
+
+
+def test_timer_reset_restarts_the_period() -> None:
+    """reset() restarts the period from now (rclpy's Timer.reset, rcl_timer_reset): a timer
+    reset more often than its period does not fire, side by side with one that is not reset.
+    Judged by counts with a wide margin, never by time."""
+    from constraint_ctrl.transport.dds_dispatch import FixedRateTimer
+    from constraint_ctrl.transport.receive_faults import FaultLog
+    faults = FaultLog(lambda level, text: None)
+    fired = {'reset': 0, 'free': 0}
+
+    def count(name: str) -> Callable[[], None]:
+        def callback() -> None:
+            fired[name] += 1
+        return callback
+    reset_timer = FixedRateTimer(0.1, count('reset'), faults)
+    free_timer = FixedRateTimer(0.1, count('free'), faults)
+    reset_timer.start()
+    free_timer.start()
+    try:
+        while fired['free'] < 12:
+            reset_timer.reset()
+            time.sleep(0.005)
+    finally:
+        reset_timer.cancel()
+        free_timer.cancel()
+    assert fired['reset'] <= fired['free'] // 4

@@ -39,6 +39,17 @@ class Entity:
     def __init__(self, kind: str, topic: str, callback: Callable[..., Any] | None,
                  kwargs: dict[str, Any]) -> None:
         self.kind, self.topic_name, self.callback, self.kwargs = kind, topic, callback, kwargs
+        self.resets = 0
+
+    def reset(self) -> None:        # rclpy Timer.reset()
+        self.resets += 1
+
+
+class RclpyParameter:
+    """rclpy.parameter.Parameter(name, type_=None, value=None)."""
+
+    def __init__(self, name: str, type_: Any = None, value: Any = None) -> None:
+        self.name, self.type_, self.value = name, type_, value
 
 
 class FakeParameter:
@@ -72,6 +83,7 @@ class FakeNode:
         self.options = {'use_global_arguments': use_global_arguments,
                         'enable_rosout': enable_rosout,
                         'start_parameter_services': start_parameter_services}
+        self.overrides = {p.name: p.value for p in parameter_overrides or ()}
         self.default_callback_group = object()
         self.entities: list[Entity] = []
         self.log_lines: list[str] = []
@@ -210,6 +222,7 @@ def rclpy_fake(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) 
     modules = {
         'rclpy': rclpy,
         'rclpy.node': _module('rclpy.node', Node=FakeNode),
+        'rclpy.parameter': _module('rclpy.parameter', Parameter=RclpyParameter),
         'rclpy.executors': _module('rclpy.executors',
                                    MultiThreadedExecutor=FakeMultiThreadedExecutor,
                                    SingleThreadedExecutor=FakeSingleThreadedExecutor,
@@ -268,6 +281,9 @@ def test_control_entities_go_to_a_hidden_node_with_the_main_nodes_names(rclpy_fa
     # no second reading of the process's --ros-args (a `-r __node:=` would rename it too)
     assert control.options == {'use_global_arguments': False, 'enable_rosout': False,
                                'start_parameter_services': False}
+    # no ~/get_type_description service (rclpy type_description_service.py) on it either:
+    # every entity of that node is one more for its executor to look at on each wake
+    assert control.overrides == {'start_type_description_service': False}
     # the name the main node resolved, remapping included
     assert sub.topic_name == '/robot/joint_states'
     assert [e.kind for e in control.entities] == ['subscription', 'timer']
@@ -342,3 +358,11 @@ def test_no_control_entity_no_second_node(rclpy_fake: str) -> None:
     port.shutdown()
     spinner.join(10.0)
     assert len(FakeNode.made) == 1 and not port.control_executor.spun_on
+
+
+def test_timer_reset_maps_to_rclpy_timer_reset(rclpy_fake: str) -> None:
+    port = _port()
+    timer = port.create_timer(0.001, lambda: None, control=True)
+    timer.reset()
+    timer.reset()
+    assert timer.timer.resets == 2
