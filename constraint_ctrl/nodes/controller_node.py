@@ -37,8 +37,9 @@ from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
 from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
 from .common import config_dir, serve, split_ros_args, transport_options
-from .inputs import TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
-    parse_input_mappings
+from ..problem_log import ProblemLog
+from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
+    joint_sample_problem, parse_input_mappings
 from .status import build_status
 
 NODE_NAME = 'constraint_controller'
@@ -106,6 +107,9 @@ class ControllerNode:
         n = self.model.n_joints
         self._q = np.full(n, np.nan)
         self._seen = np.zeros(n, dtype=bool)
+        self._joint_stamps = np.full(n, np.nan)   # each joint's last valid update (monotonic s)
+        self._js_rejected = 0
+        self._js_problems = ProblemLog(port.log)
         self._js_stamp: float | None = None
         self._js_header = (0, 0)
         self._inputs: dict[str, InputSample] = {}
@@ -193,23 +197,57 @@ class ControllerNode:
                             time.monotonic())
 
     def _on_joint_states(self, msg: Any) -> None:
+        """Per joint: a valid sample refreshes exactly the model joints it names.
+
+        A sample is checked whole first (size bound, lengths, duplicates, non-finite values) and
+        rejected whole on any problem; it is counted and logged once (ProblemLog). A rejected
+        sample that names model joints also invalidates them (their data can no longer be
+        trusted), so the watchdog stops at once rather than after the timeout. Samples that
+        carry none of the model's joints (a gripper's) refresh nothing.
+        """
         arrived = time.perf_counter_ns()
-        names = list(msg.name)
-        positions = list(msg.position)
-        if len(positions) != len(names):
-            return  # malformed: never move on it (the stale timeout will stop the arm)
+        names = msg.name
+        positions = msg.position
+        problem = joint_sample_problem(names, positions)
+        if problem is not None:
+            self._reject_joint_states(problem, names)
+            return
+        index = self._joint_index
         stamp = self._stamp(msg.header)
+        updated = False
         with self._lock:
+            q, stamps, seen = self._q, self._joint_stamps, self._seen
             for name, value in zip(names, positions):
-                i = self._joint_index.get(name)
+                i = index.get(name)
                 if i is not None:
-                    self._q[i] = value
-                    self._seen[i] = True
-            self._js_stamp = stamp
-            self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
-        if self.tick_on == 'joint_states':
+                    q[i] = value
+                    stamps[i] = stamp
+                    seen[i] = True
+                    updated = True
+            if updated:
+                self._js_stamp = stamp
+                self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
+        self._js_problems.ok('joint_states', 'valid samples again')
+        if updated and self.tick_on == 'joint_states':
             self._arrived_ns = arrived
             self._tick()
+
+    def _reject_joint_states(self, problem: tuple[str, str], names: Any) -> None:
+        kind, detail = problem
+        invalidated: set[str] = set()
+        if kind != 'too many names':
+            index = self._joint_index
+            with self._lock:
+                for name in names:
+                    i = index.get(name)
+                    if i is not None:
+                        self._joint_stamps[i] = np.nan
+                        invalidated.add(name)
+        self._js_rejected += 1
+        if invalidated:
+            detail += (f'; it named joints {", ".join(sorted(invalidated)[:6])}, which count '
+                       'as stale until a valid sample')
+        self._js_problems.problem('joint_states', f'sample rejected ({kind})', detail)
 
     def _input_callback(self, mapping: InputMapping) -> Any:
         def callback(msg: Any) -> None:
@@ -249,7 +287,8 @@ class ControllerNode:
                                        if not s]
             return Snapshot(now=time.monotonic(), q=q, joint_state_stamp=self._js_stamp,
                             inputs=dict(self._inputs), people=dict(self._people),
-                            missing_joints=missing if self._js_stamp is not None else [])
+                            missing_joints=missing if self._js_stamp is not None else [],
+                            joint_stamps=self._joint_stamps.copy())
 
     def _tick(self) -> None:
         if self._closing or not self._tick_lock.acquire(blocking=False):
@@ -321,6 +360,8 @@ class ControllerNode:
         names = [r.name for r in runner.skill.rows] if runner is not None else []
         extra = {'missed_ticks': str(getattr(self.timer, 'missed', 0)),
                  'tick_errors': str(self._errors),
+                 'joint_states_rejected': str(self._js_rejected),
+                 'joint_states_last_rejection': self._js_problems.last_reason,
                  'bag_dropped': str(getattr(self.recorder, 'dropped', 0))}
         msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
                            extra)

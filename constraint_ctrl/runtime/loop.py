@@ -42,6 +42,9 @@ class Snapshot:
     inputs: Mapping[str, InputSample] = field(default_factory=dict)
     people: Mapping[str, PersonSample] = field(default_factory=dict)
     missing_joints: Sequence[str] = ()
+    #: capture time of each joint's last valid update (model order, NaN = none); when given
+    #: the watchdog needs every joint fresh, not just the latest sample
+    joint_stamps: np.ndarray | None = None
 
 
 @dataclass(slots=True)
@@ -159,7 +162,8 @@ class ControlLoop:
             solver_ok=solver_ok, solver_status=status, input_stamps=input_stamps,
             input_timeouts=input_timeouts, inputs_finite=finite, people=snap.people,
             person_sources=self.person_sources, switch_failed=self._switch_failed,
-            skill_activated=switch_ok, missing_joints=snap.missing_joints))
+            skill_activated=switch_ok, missing_joints=snap.missing_joints,
+            joint_stamps=snap.joint_stamps))
         if runner is not None:
             moving = out.state in (State.NORMAL, State.REDUCED)
             runner.commit(out.command, out.speed_scale if moving else 0.0, self.dt)

@@ -1,5 +1,8 @@
 """Fault injection into the controller process over DDS: the watchdog's contract end to end.
 
+A gripper driver publishes its finger joint on /joint_states all the time (a second publisher,
+as in most cells): it must never keep the arm's joints fresh (issue 8 item 1).
+
 Stale joint_states, a stale person source and NaN from a sensor must each give a zero command
 within one tick of the fault becoming visible (plus the delivery delay on a shared machine),
 nothing published may exceed the joint speed limits, and motion resumes only after the clear
@@ -76,8 +79,30 @@ class Peer:
         self.person = self.port.create_publisher(t.PointStamped, '/cell/operator', 'sensor')
         self.value = self.port.create_publisher(t.Float64, '/test/offset', 'sensor')
         self.last_js = 0.0
+        self.status: list[tuple[float, dict[str, str]]] = []
+        self.port.create_subscription(t.DiagnosticArray, f'{NODE}/status', self._on_status,
+                                      'default')
         self.port.create_timer(0.004, self._publish)
         threading.Thread(target=self.port.spin, daemon=True).start()
+        # a gripper driver: its own participant, its own joint, on the same topic, always on
+        self.gripper = open_port('dds', 'gripper_driver', ['--ros-args'])
+        self.finger = self.gripper.create_publisher(t.JointState, '/joint_states', 'sensor')
+        self.gripper.create_timer(0.004, self._publish_finger)
+        threading.Thread(target=self.gripper.spin, daemon=True).start()
+
+    def _on_status(self, msg: Any) -> None:
+        for st in msg.status:
+            if st.name.endswith(': watchdog'):
+                with self.lock:
+                    self.status.append((time.monotonic(),
+                                        {kv.key: kv.value for kv in st.values}))
+
+    def _publish_finger(self) -> None:
+        ns = self.gripper.now_ns()
+        t = self.gripper.types
+        self.finger.publish(t.JointState(
+            header=t.Header(stamp=t.Time(sec=ns // 10**9, nanosec=ns % 10**9), frame_id=''),
+            name=['finger_joint'], position=[0.01], velocity=[], effort=[]))
 
     def _on_cmd(self, msg: Any) -> None:
         with self.lock:
@@ -147,6 +172,7 @@ def peer(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Peer]:
     assert p.moving(), 'the controller never started moving'
     yield p
     p.port.shutdown()
+    p.gripper.shutdown()
     proc.send_signal(signal.SIGINT)
     proc.wait(10)
 
@@ -198,6 +224,12 @@ def test_fault_gives_zero_within_a_tick_and_resumes_after_hysteresis(
     assert held and not any(c.any() for c in held)
     resumed = _resumed_after(commands, zero_at)
     assert resumed is not None, f'{fault}: never resumed'
+    if fault == 'joints':
+        # the status names the arm's joints, although the gripper's samples kept coming
+        with peer.lock:
+            reasons = [v['reason'] for t, v in peer.status if start <= t <= end + SLACK]
+        assert any('joint(s) joint_1, joint_2, joint_3, joint_4, joint_5, joint_6 not updated'
+                   in r for r in reasons), reasons
     assert resumed - end >= RESUME_AFTER - SLACK, (fault, resumed - end)
     assert peer.moving()
 
