@@ -110,6 +110,7 @@ class ControllerNode:
         self._joint_stamps = np.full(n, np.nan)   # each joint's last valid update (monotonic s)
         self._js_rejected = 0
         self._js_problems = ProblemLog(port.log)
+        self._person_problems = ProblemLog(port.log)
         self._js_stamp: float | None = None
         self._js_header = (0, 0)
         self._inputs: dict[str, InputSample] = {}
@@ -261,12 +262,19 @@ class ControllerNode:
         return callback
 
     def _person_callback(self, source: str) -> Any:
+        problems = self._person_problems
+        expected = ('', self.base_frame)
+
         def callback(msg: Any) -> None:
             frame = msg.header.frame_id
-            if frame not in ('', self.base_frame):
-                self.port.log('warn', f'{source}: person position in frame {frame!r}, expected '
-                              f'{self.base_frame!r}; ignored (no transform lookup here)')
+            if frame not in expected:
+                # counted and logged once per source (and once when it stops), not per message;
+                # the source goes stale, which the watchdog treats as a person anywhere
+                problems.problem(source, 'person positions in an unusable frame',
+                                 f'frame {frame!r}, expected {self.base_frame!r}; ignored (no '
+                                 'transform lookup here)')
                 return
+            problems.ok(source, f'person positions in {self.base_frame!r} again')
             point = np.array([msg.point.x, msg.point.y, msg.point.z], dtype=float)
             with self._lock:
                 self._people[source] = PersonSample(source, point, self._stamp(msg.header))
@@ -362,6 +370,7 @@ class ControllerNode:
                  'tick_errors': str(self._errors),
                  'joint_states_rejected': str(self._js_rejected),
                  'joint_states_last_rejection': self._js_problems.last_reason,
+                 'person_samples_ignored': str(self._person_problems.total),
                  'bag_dropped': str(getattr(self.recorder, 'dropped', 0))}
         msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
                            extra)

@@ -130,3 +130,38 @@ def test_a_huge_sample_is_refused_before_any_per_name_work() -> None:
         __getitem__ = __iter__
     kind, detail = joint_sample_problem(Untouchable(), Untouchable())
     assert kind == 'too many names' and str(MAX_JOINT_NAMES) in detail
+
+
+def test_person_positions_in_an_unusable_frame_are_logged_once_per_source(
+        tmp_path: Path) -> None:
+    """Issue 8 item 8: 55 identical warnings per second became one line when it starts and
+    one when it stops; every ignored sample is counted in ~/status."""
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('keep_tool_vertical',)),
+                    {'people.sources': '[/cell/operator, /cell/scanner]'})
+    try:
+        t = h.t
+        callbacks = {src: h.node._person_callback(src) for src in ('/cell/operator',
+                                                                    '/cell/scanner')}
+
+        def person(frame: str) -> object:
+            return t.PointStamped(header=t.Header(stamp=t.Time(sec=0, nanosec=0),
+                                                  frame_id=frame),
+                                  point=t.Point(x=2.0, y=0.0, z=1.0))
+        for _ in range(200):
+            callbacks['/cell/operator'](person('camera_link'))
+            callbacks['/cell/scanner'](person('scanner_link'))
+        lines = [text for _, text in h.logs if 'unusable frame' in text]
+        assert len(lines) == 2, lines            # one per source
+        assert any("'camera_link'" in x and x.startswith('/cell/operator') for x in lines)
+        assert '/cell/operator' not in h.node._people   # ignored, so the source goes stale
+        time.sleep(1.05)                          # ProblemLog's settle time without the problem
+        for _ in range(50):
+            callbacks['/cell/operator'](person('base_link'))
+        back = [text for _, text in h.logs if "in 'base_link' again" in text]
+        assert len(back) == 1 and '200 problem(s)' in back[0]
+        assert '/cell/operator' in h.node._people
+        h.feed()
+        h.tick()
+        assert h.status_values()['person_samples_ignored'] == '400'
+    finally:
+        h.close()
