@@ -4,11 +4,18 @@ A reload looks at every ``*.yaml`` file of the skills folder, loads and compiles
 changed ones (by content digest) and keeps the previous version of any file that fails, so a bad
 edit never takes a working skill away. All skills must drive the controller's robot (same joint
 names), because the command is published in one fixed joint order.
+
+A skill's name becomes the prefix of its parameters (``<skill>.<tunable>``) and of its
+activation service, so names the node uses itself (``reserved``: its parameters and parameter
+groups such as ``watchdog`` or ``inputs``) are refused at load, located at the file's ``skill``
+field. A skill listed in ``keep`` (the running one) whose file disappeared stays loaded until a
+later reload, so the running skill and its parameters never vanish under the controller.
 """
 from __future__ import annotations
 
 import hashlib
 import threading
+from collections.abc import Callable, Collection
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -38,6 +45,8 @@ class ReloadReport:
     unchanged: list[str] = field(default_factory=list)
     removed: list[str] = field(default_factory=list)
     failed: dict[str, str] = field(default_factory=dict)   # file name -> error message
+    kept: dict[str, str] = field(default_factory=dict)     # skill -> why it stays loaded
+    notes: list[str] = field(default_factory=list)         # what the node did about it
 
     @property
     def ok(self) -> bool:
@@ -49,17 +58,22 @@ class ReloadReport:
                              ('removed', self.removed), ('unchanged', self.unchanged)):
             if names:
                 parts.append(f'{label}: {", ".join(sorted(names))}')
+        for name, why in sorted(self.kept.items()):
+            parts.append(f'kept {name}: {why}')
         for path, message in sorted(self.failed.items()):
             parts.append(f'FAILED {path}: {message}')
+        parts.extend(self.notes)
         return '; '.join(parts) if parts else 'no skill files found'
 
 
 class SkillLibrary:
     """Skills by name. ``reload`` may run on any thread; lookups are cheap and thread-safe."""
 
-    def __init__(self, folder: Path, joint_names: tuple[str, ...]) -> None:
+    def __init__(self, folder: Path, joint_names: tuple[str, ...],
+                 reserved: Collection[str] = ()) -> None:
         self.folder = Path(folder)
         self.joint_names = tuple(joint_names)
+        self.reserved = frozenset(reserved)
         self._skills: dict[str, LoadedSkill] = {}
         self._by_path: dict[Path, str] = {}
         self._lock = threading.Lock()
@@ -77,6 +91,11 @@ class SkillLibrary:
         """Load and compile one file; raises ConstraintCtrlError with the file's location."""
         data = path.read_bytes()
         spec = load_skill(path)
+        if spec.name in self.reserved:
+            raise spec.error(f'skill name {spec.name!r} is used by the controller itself (its '
+                             f'parameters or parameter groups: '
+                             f'{", ".join(sorted(self.reserved))}); rename the skill',
+                             'skill')
         key = (spec.robot.resolve(), spec.base_link)
         model = self._models.get(key)
         if model is None:
@@ -90,7 +109,13 @@ class SkillLibrary:
         return LoadedSkill(path=path, digest=hashlib.sha256(data).hexdigest(),
                            compiled=compiled, runner=SkillRunner(compiled))
 
-    def reload(self) -> ReloadReport:
+    def reload(self, prepare: Callable[[LoadedSkill, LoadedSkill | None], None] | None = None,
+               keep: Collection[str] = ()) -> ReloadReport:
+        """Load new and changed files; drop skills whose file is gone (except those in
+        ``keep``). ``prepare(new, old)`` runs on each new or changed skill before it becomes
+        visible to ``get`` (old is the version it replaces, or None), e.g. to give it the
+        values set at run time; an exception there fails that file like a load error.
+        """
         report = ReloadReport()
         files = sorted(self.folder.glob('*.yaml')) if self.folder.is_dir() else []
         if not self.folder.is_dir():
@@ -125,6 +150,14 @@ class SkillLibrary:
                 if old is not None:
                     seen.add(old.name)
                 continue
+            if prepare is not None:
+                try:
+                    prepare(loaded, other)
+                except ConstraintCtrlError as err:
+                    report.failed[path.name] = str(err)
+                    if old is not None:
+                        seen.add(old.name)
+                    continue
             staged[loaded.name] = loaded
             seen.add(loaded.name)
             (report.changed if old is not None or loaded.name in self._skills
@@ -137,7 +170,10 @@ class SkillLibrary:
                 self._skills[name] = loaded
                 self._by_path[loaded.path] = name
             for name in list(self._skills):
-                if name not in seen:
+                if name not in seen and name in keep:
+                    report.kept[name] = ('its file is gone but it is running; it stays until '
+                                         'another skill is active and the folder is reloaded')
+                elif name not in seen:
                     report.removed.append(name)
                     self._by_path.pop(self._skills[name].path, None)
                     del self._skills[name]

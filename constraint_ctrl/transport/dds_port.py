@@ -12,14 +12,15 @@ Limits to know:
 * Networking: loopback only unless CYCLONEDDS_URI is set (see dds_discovery.py for the default
   and how to override it); domain from ROS_DOMAIN_ID.
 * Not provided: /rosout (logs go to stderr in ROS's console format), type hashes in USER_DATA,
-  simulated time (use_sim_time exists, as on every rclpy node, but only False is honoured),
-  parameter ranges.
+  simulated time (use_sim_time exists, as on every rclpy node, but only False is honoured).
 
 Threads: subscriptions are dispatched on one thread, services (including parameter services)
 on another, and each timer has its own, so a timer tick can run at the same time as a
 subscription or service callback (guard shared state with a lock). Callbacks only run while
-spin() runs. An exception escaping a callback ends spin() and is re-raised from it, as an
-exception in an rclpy callback ends executor.spin().
+spin() runs. An exception escaping a subscription or timer callback ends spin() and is
+re-raised from it, as an exception in an rclpy callback ends executor.spin(); one escaping a
+service callback (ours or the parameter services) is logged and answered with an error reply
+instead, so a bad request never ends the node.
 """
 from __future__ import annotations
 
@@ -123,7 +124,7 @@ class DdsPort:
         events = self.create_publisher(self.types.ParameterEvent, '/parameter_events',
                                        'parameters')
         self._params = ParameterStore(self.fqn, overrides_for(args, self.fqn), self.types,
-                                      self.now_ns, events.publish)
+                                      self.now_ns, events.publish, log=self.log)
         # rclpy's TimeSource declares use_sim_time on every node; keep the same parameter set
         if self._params.declare('use_sim_time', False).value is not False:
             self.log('warn', 'use_sim_time is not supported by the DDS port; stamps and timers '
@@ -196,7 +197,8 @@ class DdsPort:
     def _add_service(self, srv_type: Any, name: str, callback: Callable[[Any, Any], Any],
                      qos: str) -> ServiceServer:
         fqn = resolve_name(name, self.node_name, self.namespace, self._remaps)
-        server = ServiceServer(self._participant, srv_type, fqn, callback, profile(qos))
+        server = ServiceServer(self._participant, srv_type, fqn, callback, profile(qos),
+                               on_error=self.log)
         self._service_dispatch.add(server.reader, server.handle, f'service {fqn}')
         self._announcer.update(readers=(server.reader,), writers=(server.writer,))
         return server
@@ -234,8 +236,17 @@ class DdsPort:
     # --- parameters ------------------------------------------------------------------------
 
     def declare_parameter(self, name: str, value: Any, description: str = '',
-                          read_only: bool = False) -> ParameterView:
-        return self._params.declare(name, value, description, read_only)
+                          read_only: bool = False,
+                          value_range: tuple[float, float] | None = None,
+                          ignore_override: bool = False) -> ParameterView:
+        return self._params.declare(name, value, description, read_only, value_range,
+                                    ignore_override)
+
+    def undeclare_parameter(self, name: str) -> None:
+        self._params.undeclare(name)
+
+    def set_parameter(self, name: str, value: Any) -> tuple[bool, str]:
+        return self._params.set_atomically({name: value})
 
     def get_parameter(self, name: str) -> ParameterView:
         return self._params.get(name)

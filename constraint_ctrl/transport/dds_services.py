@@ -14,6 +14,10 @@ both sides can tell when the other has discovered the endpoints a call needs:
 
 Only peers on rmw_cyclonedds_cpp (or Connext in its Cyclone compatibility mode) use this
 header; Fast DDS peers frame services differently and cannot call or serve us.
+
+A server given ``on_error`` turns an exception in its callback into a log line and an error
+reply (a fresh response; ``success=False`` and the error as ``message`` where the type has
+them), so a request that trips a bug never ends the node.
 """
 from __future__ import annotations
 
@@ -21,6 +25,7 @@ import itertools
 import secrets
 import threading
 import time
+import traceback
 from collections.abc import Callable
 from typing import Any
 
@@ -71,11 +76,13 @@ class ServiceServer:
     """Request reader + reply writer; `handle` runs on the port's service dispatcher."""
 
     def __init__(self, participant: Any, srv_type: Any, fqn: str,
-                 callback: Callable[[Any, Any], Any], qos: QosProfile) -> None:
+                 callback: Callable[[Any, Any], Any], qos: QosProfile,
+                 on_error: Callable[[str, str], None] | None = None) -> None:
         self.srv_type = _check_srv_type(srv_type)
         self.name = fqn
         self.closed = False
         self._callback = callback
+        self._on_error = on_error
         tag = f'serviceid={endpoint_id(participant)};'.encode()
         req_topic = Topic(participant, request_dds_name(fqn), self.srv_type.RequestWire)
         rep_topic = Topic(participant, reply_dds_name(fqn), self.srv_type.ResponseWire)
@@ -85,11 +92,16 @@ class ServiceServer:
     def handle(self, sample: Any) -> None:
         if self.closed:
             return
-        response = self._callback(sample.body, self.srv_type.Response())
-        if not isinstance(response, self.srv_type.Response):
-            msg = (f'service {self.name}: callback returned {type(response).__name__}, '
-                   f'expected the {self.srv_type.ros_type} response it was given')
-            raise TransportError(msg)
+        try:
+            response = self._callback(sample.body, self.srv_type.Response())
+            if not isinstance(response, self.srv_type.Response):
+                msg = (f'service {self.name}: callback returned {type(response).__name__}, '
+                       f'expected the {self.srv_type.ros_type} response it was given')
+                raise TransportError(msg)
+        except Exception as exc:
+            if self._on_error is None:
+                raise
+            response = self._error_reply(exc)
         if self.closed:  # destroyed by its own callback (or meanwhile): no reply
             return
         try:
@@ -99,6 +111,17 @@ class ServiceServer:
         except DDSException:
             if not self.closed:
                 raise
+
+    def _error_reply(self, exc: Exception) -> Any:
+        assert self._on_error is not None
+        self._on_error('error', f'service {self.name}: the callback raised; answered with an '
+                                'error reply:\n' + ''.join(traceback.format_exception(exc)).rstrip())
+        response = self.srv_type.Response()
+        if hasattr(response, 'success'):
+            response.success = False
+        if hasattr(response, 'message'):
+            response.message = f'internal error: {exc!r}'
+        return response
 
     def _wait_for_reply_reader(self, request_writer: int) -> None:
         client = tag_value(user_data_of(_matched_pub(self.reader, request_writer)), 'clientid')

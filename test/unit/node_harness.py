@@ -39,8 +39,12 @@ def copy_skills(folder: Path, names: tuple[str, ...]) -> Path:
 
 
 class NodeHarness:
-    def __init__(self, skills: Path, params: dict[str, str] | None = None) -> None:
-        argv = ['--ros-args', '-p', f'skills_folder:={skills}']
+    def __init__(self, skills: Path, params: dict[str, str] | None = None,
+                 params_file: Path | None = None) -> None:
+        argv = ['--ros-args']
+        if params_file is not None:
+            argv += ['--params-file', str(params_file)]
+        argv += ['-p', f'skills_folder:={skills}']
         for key, value in (params or {}).items():
             argv += ['-p', f'{key}:={value}']
         old = os.environ.get('ROS_DOMAIN_ID')
@@ -61,6 +65,10 @@ class NodeHarness:
         self.port.log = recording_log            # type: ignore[method-assign]
         self.node = ControllerNode(self.port)
         self.t = self.port.types
+        self.q = np.array(START, dtype=float)     # the robot: integrates the commands
+        # a person far away on every configured source (a stale source stops the arm)
+        self.people = {src: self.node._person_callback(src)
+                       for src in self.node.loop.person_sources}
         self.outputs: list[LoopOutput] = []
         self.statuses: list[Any] = []
         self.events: list[str] = []
@@ -84,13 +92,28 @@ class NodeHarness:
 
     def feed(self, names: list[str] = JOINTS, positions: list[float] | None = None) -> None:
         self.node._on_joint_states(self.joint_states(
-            names, START if positions is None else positions))
+            names, self.q.tolist() if positions is None else positions))
+        t = self.t
+        for callback in self.people.values():
+            callback(t.PointStamped(header=t.Header(stamp=t.Time(sec=0, nanosec=0),
+                                                    frame_id='base_link'),
+                                    point=t.Point(x=3.0, y=3.0, z=1.0)))
 
     def tick(self) -> LoopOutput:
         before = len(self.outputs)
         self.node._tick()
         assert len(self.outputs) == before + 1, 'the tick published no command'
-        return self.outputs[-1]
+        out = self.outputs[-1]
+        self.q = self.q + self.node.dt * out.command
+        return out
+
+    def run(self, ticks: int) -> list[LoopOutput]:
+        """Fresh joint states, then a tick, ``ticks`` times."""
+        outs = []
+        for _ in range(ticks):
+            self.feed()
+            outs.append(self.tick())
+        return outs
 
     def status_values(self) -> dict[str, str]:
         """The controller status entries as ~/status would carry them now."""
@@ -121,7 +144,10 @@ class NodeHarness:
             if not worker.is_alive():
                 break
             self.feed()
+            before = len(self.outputs)
             self.node._tick()
+            if len(self.outputs) > before:
+                self.q = self.q + self.node.dt * self.outputs[-1].command
             time.sleep(0.001)
         worker.join(10.0)
         assert result, 'the handler never returned'
@@ -134,7 +160,21 @@ class NodeHarness:
                                                            self.t.Trigger.Response()))
 
     def set_parameters(self, values: dict[str, Any]) -> tuple[bool, str]:
+        """SetParametersAtomically as the port serves it (validator, store, listeners)."""
         return self.port._params.set_atomically(values)
+
+    def set_while_ticking(self, values: dict[str, Any]) -> tuple[bool, str]:
+        """The same for a call that waits for a tick (activate_skill)."""
+        return self.while_ticking(lambda: self.set_parameters(values))
+
+    def get(self, name: str) -> Any:
+        return self.port.get_parameter(name).value
+
+    def describe(self, name: str) -> Any:
+        t = self.t
+        return self.port._params.on_describe_parameters(
+            t.DescribeParameters.Request(names=[name]),
+            t.DescribeParameters.Response()).descriptors[0]
 
     def close(self) -> None:
         self.node._closing = True

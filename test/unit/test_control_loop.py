@@ -63,8 +63,7 @@ def test_tunable_change_moves_the_goal(loop: ControlLoop) -> None:
     q, t, _ = _run(loop, START, 0.0, 0.1)
     skill = loop.library.get('move_to_point')
     assert skill is not None
-    index = skill.compiled.param_index('goal_z')
-    loop.set_parameters('move_to_point', {index: 0.40})
+    loop.set_parameters('move_to_point', {'goal_z': 0.40})
     loop.request_activation('move_to_point')
     q, t, outs = _run(loop, q, t, 4.0)
     tip_z = skill.compiled.model.fk_function(['tool_tip'])(q)
