@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import threading
 import time
 import traceback
@@ -124,9 +125,11 @@ class ControllerNode:
 
         # latest samples (guarded by self._lock)
         n = self.model.n_joints
-        self._q = np.full(n, np.nan)
-        self._seen = np.zeros(n, dtype=bool)
-        self._joint_stamps = np.full(n, np.nan)   # each joint's last valid update (monotonic s)
+        # per model joint (plain lists: a sample writes a few items, a tick copies them once)
+        self._q = [math.nan] * n
+        self._seen = [False] * n
+        self._joint_stamps = [math.nan] * n       # each joint's last valid update (monotonic s)
+        self._js_plans: dict[tuple[str, ...], list[tuple[int, int]]] = {}
         self._js_rejected = 0
         self._js_problems = ProblemLog(port.log)
         self._person_problems = ProblemLog(port.log)
@@ -229,27 +232,32 @@ class ControllerNode:
         arrived = time.perf_counter_ns()
         names = msg.name
         positions = msg.position
-        problem = joint_sample_problem(names, positions)
+        key = tuple(names) if len(names) <= MAX_JOINT_NAMES else None
+        plan = self._js_plans.get(key) if key is not None else None
+        problem = joint_sample_problem(names, positions, names_checked=plan is not None)
         if problem is not None:
             self._reject_joint_states(problem, names)
             return
-        index = self._joint_index
-        stamp = self._stamp(msg.header)
-        updated = False
-        with self._lock:
-            q, stamps, seen = self._q, self._joint_stamps, self._seen
-            for name, value in zip(names, positions):
-                i = index.get(name)
-                if i is not None:
-                    q[i] = value
+        if plan is None:
+            # (sample position, model joint) pairs of this name list, cached: publishers repeat
+            # the same names every sample (a few lists per cell: arm, gripper, ...)
+            index = self._joint_index
+            plan = [(k, index[name]) for k, name in enumerate(names) if name in index]
+            if len(self._js_plans) >= 16:
+                self._js_plans.clear()
+            self._js_plans[key] = plan            # type: ignore[index]
+        if plan:
+            stamp = self._stamp(msg.header)
+            with self._lock:
+                q, stamps, seen = self._q, self._joint_stamps, self._seen
+                for k, i in plan:
+                    q[i] = positions[k]
                     stamps[i] = stamp
                     seen[i] = True
-                    updated = True
-            if updated:
                 self._js_stamp = stamp
                 self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
         self._js_problems.ok('joint_states', 'valid samples again')
-        if updated and self.tick_on == 'joint_states':
+        if plan and self.tick_on == 'joint_states':
             self._arrived_ns = arrived
             self._tick()
 
@@ -262,7 +270,7 @@ class ControllerNode:
                 for name in names:
                     i = index.get(name)
                     if i is not None:
-                        self._joint_stamps[i] = np.nan
+                        self._joint_stamps[i] = math.nan
                         invalidated.add(name)
         self._js_rejected += 1
         if invalidated:
@@ -309,14 +317,14 @@ class ControllerNode:
 
     def _snapshot(self) -> Snapshot:
         with self._lock:
-            seen = self._seen.all()
-            q = self._q.copy() if seen else None
+            seen = all(self._seen)
+            q = np.array(self._q) if seen else None
             missing = [] if seen else [j for j, s in zip(self.model.joint_names, self._seen)
                                        if not s]
             return Snapshot(now=time.monotonic(), q=q, joint_state_stamp=self._js_stamp,
                             inputs=dict(self._inputs), people=dict(self._people),
                             missing_joints=missing if self._js_stamp is not None else [],
-                            joint_stamps=self._joint_stamps.copy())
+                            joint_stamps=np.array(self._joint_stamps))
 
     def _tick(self) -> None:
         if self._closing or not self._tick_lock.acquire(blocking=False):

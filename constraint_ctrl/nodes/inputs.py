@@ -114,24 +114,28 @@ def check_field(mapping: InputMapping, sample: Any) -> None:
         raise TransportError(msg) from None
 
 
-def joint_sample_problem(names: Sequence[str],
-                         positions: Sequence[float]) -> tuple[str, str] | None:
+def joint_sample_problem(names: Sequence[str], positions: Sequence[float], *,
+                         names_checked: bool = False) -> tuple[str, str] | None:
     """(kind, detail) of the reason a joint_states sample must be rejected whole, or None.
 
     ``kind`` is one of JOINT_SAMPLE_PROBLEMS (stable, for counting and logging once); ``detail``
     names the values. The checks are ordered by cost and the size bound comes first, so a huge
-    sample costs O(1) here. Velocity and effort are not read by the controller, nor checked.
+    sample costs O(1) here. ``names_checked``: this exact name list passed before (no
+    duplicates), so only lengths and values are checked. Velocity and effort are not read by
+    the controller and not checked.
     """
     n = len(names)
     if n > MAX_JOINT_NAMES:
         return 'too many names', f'{n} joint names, more than the {MAX_JOINT_NAMES} accepted'
     if len(positions) != n:
         return 'length mismatch', f'{n} joint names but {len(positions)} positions'
-    if len(set(names)) != n:
+    if not names_checked and len(set(names)) != n:
         seen: set[str] = set()
         dups = sorted({x for x in names if x in seen or seen.add(x)})  # type: ignore[func-returns-value]
         return 'duplicate names', f'duplicate joint names {dups[:5]}'
-    if not all(map(math.isfinite, positions)):
+    # one sum is finite for finite values (it overflows only beyond ~1e308: then look closer)
+    if not math.isfinite(sum(positions)) and \
+            not all(map(math.isfinite, positions)):
         bad = next(i for i, v in enumerate(positions) if not math.isfinite(v))
         return 'non-finite position', f'position of {names[bad]!r} is {positions[bad]!r}'
     return None
