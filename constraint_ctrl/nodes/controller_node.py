@@ -13,9 +13,21 @@ ControlLoop. Interface (names relative to the node, default node name constraint
 - serves ~/skills/<skill>/activate and ~/reload_skills (std_srvs/Trigger) and the standard
   parameter services; each skill's tunables are parameters <skill>.<tunable>.
 
+Joint states are judged per joint: a valid sample refreshes exactly the model joints it names,
+and every joint must be fresh for the watchdog to let the arm move; malformed samples are
+rejected whole, counted in ~/status and logged once (see _on_joint_states).
+
+Parameters: only tunables (with their ranges in the descriptors), watchdog.reduced_mode and the
+write-only activate_skill change anything at run time; everything else is refused with a
+reason. What is read back is always the value in force (refused launch values are replaced by
+the file's value). Activation replies come after the new skill's first tick with its outcome.
+A reload keeps values set at run time, undeclares removed skills' parameters and switches the
+running skill to its reloaded version at a tick boundary (see _on_reload).
+
 Threads: the control tick runs on the port's timer thread (or on the joint_states callback with
 tick_on = joint_states); callbacks only store the latest samples under a lock. Any exception in
-a tick publishes a zero command; so does shutdown.
+a tick publishes a zero command; so does shutdown. An exception in a service or parameter
+callback is an error reply and a log line, never an exit.
 """
 from __future__ import annotations
 
