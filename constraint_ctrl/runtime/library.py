@@ -164,19 +164,22 @@ class SkillLibrary:
              else report.added).append(loaded.name)
         with self._lock:
             for name, loaded in staged.items():
-                old_name = self._by_path.get(loaded.path)
-                if old_name and old_name != name:
-                    self._skills.pop(old_name, None)
                 self._skills[name] = loaded
                 self._by_path[loaded.path] = name
+            # gone: files removed, and the old name of a file whose skill was renamed
             for name in list(self._skills):
-                if name not in seen and name in keep:
-                    report.kept[name] = ('its file is gone but it is running; it stays until '
-                                         'another skill is active and the folder is reloaded')
-                elif name not in seen:
-                    report.removed.append(name)
-                    self._by_path.pop(self._skills[name].path, None)
-                    del self._skills[name]
+                if name in seen:
+                    continue
+                if name in keep:
+                    report.kept[name] = ('its file is gone (or names another skill now) but it '
+                                         'is running; it stays until another skill is active '
+                                         'and the folder is reloaded')
+                    continue
+                report.removed.append(name)
+                path = self._skills[name].path
+                if self._by_path.get(path) == name:
+                    del self._by_path[path]
+                del self._skills[name]
         return report
 
 

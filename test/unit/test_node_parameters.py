@@ -67,6 +67,21 @@ def test_remove_reload_restore_reload_works_and_parameters_follow(node: NodeHarn
     assert node.activate('move_to_point').success
 
 
+def test_a_skill_renamed_in_its_file_replaces_the_old_name(node: NodeHarness) -> None:
+    folder = node.node.library.folder
+    path = folder / 'move_to_point.yaml'
+    path.write_text(path.read_text().replace('\nskill: move_to_point', '\nskill: go_to_point', 1))
+    reply = node.reload()
+    assert reply.success, reply.message
+    assert 'removed: move_to_point' in reply.message
+    assert node.node.library.names() == ['follow_flange', 'go_to_point', 'keep_tool_vertical']
+    assert node.get('go_to_point.goal_z') == 0.265
+    with pytest.raises(Exception, match='not declared'):
+        node.get('move_to_point.goal_z')
+    assert set(node.node._services) == {'follow_flange', 'go_to_point', 'keep_tool_vertical'}
+    assert node.activate('go_to_point').success
+
+
 def test_the_running_skill_stays_when_its_file_is_removed(node: NodeHarness) -> None:
     start(node)
     folder = node.node.library.folder
