@@ -160,8 +160,8 @@ class SkillLibrary:
                     continue
             staged[loaded.name] = loaded
             seen.add(loaded.name)
-            (report.changed if old is not None or loaded.name in self._skills
-             else report.added).append(loaded.name)
+            # a new version of a skill by the same name is a change; a new name is an addition
+            (report.changed if loaded.name in self._skills else report.added).append(loaded.name)
         with self._lock:
             for name, loaded in staged.items():
                 self._skills[name] = loaded

@@ -153,11 +153,15 @@ def setup(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Peer, subp
          '-p', f'skills_folder:={skills}', '-p', f'rate_hz:={RATE}',
          '-p', 'follow_flange.standoff:=0.5'],
         env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
     os.environ['ROS_DOMAIN_ID'] = domain
     try:
         peer = Peer()
     finally:
-        os.environ.pop('ROS_DOMAIN_ID', None)
+        if saved is None:
+            os.environ.pop('ROS_DOMAIN_ID', None)
+        else:
+            os.environ['ROS_DOMAIN_ID'] = saved
     try:
         # the node is up and has joint positions once an activation gets past that check
         assert wait_until(lambda: 'no joint positions' not in

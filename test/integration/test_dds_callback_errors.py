@@ -21,12 +21,16 @@ pytestmark = pytest.mark.integration
 
 @pytest.fixture()
 def ports() -> Iterator[tuple[Any, Any, list[str], threading.Thread]]:
+    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
     os.environ['ROS_DOMAIN_ID'] = str(random.randint(101, 200))
     try:
         server = open_port('dds', 'fragile', ['--ros-args'])
         client = open_port('dds', 'caller', ['--ros-args'])
     finally:
-        os.environ.pop('ROS_DOMAIN_ID', None)
+        if saved is None:
+            os.environ.pop('ROS_DOMAIN_ID', None)
+        else:
+            os.environ['ROS_DOMAIN_ID'] = saved
     logs: list[str] = []
     log = server.log
     server.log = lambda level, text: (logs.append(f'{level}: {text}'), log(level, text))

@@ -44,12 +44,16 @@ def run_fresh(node: NodeHarness, ticks: int = 60) -> None:
 
 
 def starve_arm(node: NodeHarness, other: list[tuple[list[str], list[float]]]) -> None:
-    """For longer than the timeout, only samples that do not refresh the arm arrive."""
-    end = time.monotonic() + 2 * TIMEOUT
-    while time.monotonic() < end:
+    """For longer than the timeout, only samples that do not refresh the arm arrive; the last
+    tick runs at least 2 timeouts after the arm's last sample (however slow the machine)."""
+    t0 = time.monotonic()
+    while True:
+        late = time.monotonic() - t0 > 2 * TIMEOUT
         for names, positions in other:
             node.node._on_joint_states(node.joint_states(names, positions))
         node.tick()
+        if late:
+            return
         time.sleep(0.002)
 
 

@@ -73,7 +73,7 @@ def test_a_skill_renamed_in_its_file_replaces_the_old_name(node: NodeHarness) ->
     path.write_text(path.read_text().replace('\nskill: move_to_point', '\nskill: go_to_point', 1))
     reply = node.reload()
     assert reply.success, reply.message
-    assert 'removed: move_to_point' in reply.message
+    assert 'removed: move_to_point' in reply.message and 'added: go_to_point' in reply.message
     assert node.node.library.names() == ['follow_flange', 'go_to_point', 'keep_tool_vertical']
     assert node.get('go_to_point.goal_z') == 0.265
     with pytest.raises(Exception, match='not declared'):
