@@ -62,6 +62,20 @@ limits:
   joint_acceleration: 10.0
 """
 
+GRIPPER = """
+from constraint_ctrl.transport.port import open_port
+port = open_port('dds', 'gripper_driver', ['--ros-args'])
+t = port.types
+pub = port.create_publisher(t.JointState, '/joint_states', 'sensor')
+def tick():
+    ns = port.now_ns()
+    pub.publish(t.JointState(header=t.Header(stamp=t.Time(sec=ns // 10**9, nanosec=ns % 10**9)),
+                             name=['finger_joint'], position=[0.01], velocity=[], effort=[]))
+port.create_timer(0.02, tick)
+port.spin()
+port.shutdown()
+"""
+
 
 class Peer:
     def __init__(self) -> None:
@@ -84,11 +98,6 @@ class Peer:
                                       'default')
         self.port.create_timer(0.004, self._publish)
         threading.Thread(target=self.port.spin, daemon=True).start()
-        # a gripper driver: its own participant, its own joint, on the same topic, always on
-        self.gripper = open_port('dds', 'gripper_driver', ['--ros-args'])
-        self.finger = self.gripper.create_publisher(t.JointState, '/joint_states', 'sensor')
-        self.gripper.create_timer(0.004, self._publish_finger)
-        threading.Thread(target=self.gripper.spin, daemon=True).start()
 
     def _on_status(self, msg: Any) -> None:
         for st in msg.status:
@@ -97,12 +106,6 @@ class Peer:
                     self.status.append((time.monotonic(),
                                         {kv.key: kv.value for kv in st.values}))
 
-    def _publish_finger(self) -> None:
-        ns = self.gripper.now_ns()
-        t = self.gripper.types
-        self.finger.publish(t.JointState(
-            header=t.Header(stamp=t.Time(sec=ns // 10**9, nanosec=ns % 10**9), frame_id=''),
-            name=['finger_joint'], position=[0.01], velocity=[], effort=[]))
 
     def _on_cmd(self, msg: Any) -> None:
         with self.lock:
@@ -161,6 +164,10 @@ def peer(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Peer]:
     proc = subprocess.Popen([sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport',
                              'dds', '--ros-args', '--params-file', str(params)],
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    # a gripper driver in its own process: its own joint on the same topic, always on, at
+    # 50 Hz, so it alone would refresh a per-message stamp well within JS_TIMEOUT
+    gripper = subprocess.Popen([sys.executable, '-c', GRIPPER], env=env,
+                               stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT)
     os.environ['ROS_DOMAIN_ID'] = domain
     try:
         p = Peer()
@@ -172,7 +179,8 @@ def peer(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Peer]:
     assert p.moving(), 'the controller never started moving'
     yield p
     p.port.shutdown()
-    p.gripper.shutdown()
+    gripper.send_signal(signal.SIGINT)
+    gripper.wait(10)
     proc.send_signal(signal.SIGINT)
     proc.wait(10)
 
@@ -211,7 +219,7 @@ def _inject(peer: Peer, fault: str, seconds: float) -> tuple[float, float]:
     ('joints', JS_TIMEOUT), ('person', PERSON_TIMEOUT), ('nan', 0.0)])
 def test_fault_gives_zero_within_a_tick_and_resumes_after_hysteresis(
         peer: Peer, fault: str, visible_after: float) -> None:
-    assert peer.moving()
+    assert peer.moving(), peer.status[-1:] if peer.status else 'no status'
     start, end = _inject(peer, fault, 0.6)
     time.sleep(RESUME_AFTER + 1.0)
     commands = peer.since(start)

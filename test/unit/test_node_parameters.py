@@ -307,3 +307,17 @@ def test_reloads_and_refusals_leave_the_node_ticking(node: NodeHarness) -> None:
         node.reload()
     t0 = time.monotonic()
     assert moving(node.run(10)[-1]) and time.monotonic() > t0
+
+
+def test_a_misspelt_launch_parameter_cannot_be_set_later(tmp_path: Path) -> None:
+    """A launch override the node never uses is declared (rclpy's automatically_declare_
+    parameters_from_overrides) but has no effect: setting it is refused with that reason."""
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('keep_tool_vertical',)),
+                    {'keep_tool_vertcal.height': '0.3'})
+    try:
+        assert h.get('keep_tool_vertcal.height') == 0.3
+        ok, reason = h.set_parameters({'keep_tool_vertcal.height': 0.4})
+        assert not ok and 'has no effect on this node' in reason
+        assert h.get('keep_tool_vertcal.height') == 0.3
+    finally:
+        h.close()
