@@ -28,6 +28,7 @@ setup(
         'scipy>=1.10',
         'casadi>=3.6',
         'quadprog>=0.1.11',
+        'daqp>=0.11',
         'pyyaml>=6',
         'cyclonedds>=0.10.5',
         'rosbags>=0.10',
@@ -35,7 +36,7 @@ setup(
         'tqdm>=4.60',
     ],
     extras_require={
-        'test': ['pytest>=7.3', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6'],
+        'test': ['pytest>=7.3', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6', 'pytransform3d>=3'],
     },
     tests_require=['pytest'],
     zip_safe=False,

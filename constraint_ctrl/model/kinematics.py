@@ -16,7 +16,7 @@ import casadi as ca
 import numpy as np
 
 from ..errors import ModelError
-from .urdf import JointSpec, RobotDescription, parse_urdf
+from .urdf import JointSpec, RobotDescription, parse_urdf, parse_urdf_string
 
 
 def rpy_matrix(rpy: Sequence[float]) -> np.ndarray:
@@ -91,6 +91,13 @@ class RobotModel:
                   base_link: str | None = None) -> RobotModel:
         """Parse a URDF path or text and build its model."""
         return cls(parse_urdf(source), base_link)
+
+    @classmethod
+    def from_urdf_string(cls, text: str, base_link: str | None = None,
+                         source: str = 'robot_description') -> RobotModel:
+        """Build the model from URDF text received at run time (the `robot_description`
+        topic); errors (ModelError) start with `source` and name the element."""
+        return cls(parse_urdf_string(text, source), base_link)
 
     def joint_index(self, name: str) -> int:
         """Position of a movable joint in q."""

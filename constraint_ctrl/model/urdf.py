@@ -72,6 +72,23 @@ def parse_urdf(source: str | os.PathLike[str]) -> RobotDescription:
     return _Parser(str(path)).parse_text(text)
 
 
+def parse_urdf_string(text: str, source: str = 'robot_description') -> RobotDescription:
+    """Parse URDF XML text that did not come from a file, e.g. the `robot_description` topic
+    (std_msgs/String) that robot_state_publisher offers.
+
+    Raises:
+        ModelError: the text is empty, not XML, or not a usable kinematic tree; the message
+            starts with `source` (where the text came from) and names the offending element.
+    """
+    if not isinstance(text, str):
+        msg = f'{source}: expected URDF text, got {type(text).__name__}'
+        raise ModelError(msg)
+    if not text.strip():
+        msg = f'{source}: the robot description is empty'
+        raise ModelError(msg)
+    return _Parser(source).parse_text(text)
+
+
 def _tag(element: ET.Element) -> str:
     name = element.get('name')
     return f'<{element.tag} name="{name}">' if name is not None else f'<{element.tag}>'

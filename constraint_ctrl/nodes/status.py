@@ -1,9 +1,12 @@
 """The controller's ~/status message (diagnostic_msgs/DiagnosticArray).
 
 Three statuses, so standard diagnostics tools can show them side by side:
-- '<node>: controller': active skill, solve status and time, missed ticks, bag drops;
+- '<node>: controller': active skill, solve status and time, missed ticks, the recorder
+  (`recorder`: off, recording, failed or closed; `recorder_written`, `recorder_dropped`,
+  `recorder_error`);
 - '<node>: watchdog': state, reason, speed scale, min separation, protective distance;
-- '<node>: rows': per row of the active skill '<row>.value', '.error', '.slack', '.active'.
+- '<node>: rows': per row of the active skill '<row>.value', '.error', '.slack', '.active',
+  '.solved' (false when the row's priority level could not be solved this tick).
 Level: OK while moving normally, WARN when reduced or stopping, ERROR when stopped by a fault
 or when the solve failed.
 """
@@ -58,6 +61,7 @@ def build_status(port: Any, node: str, out: LoopOutput, rows: RowReport | None,
             row_values[f'{name}.error'] = _fmt(float(rows.error[i]))
             row_values[f'{name}.slack'] = _fmt(float(rows.slack[i]))
             row_values[f'{name}.active'] = 'true' if rows.active[i] else 'false'
+            row_values[f'{name}.solved'] = 'true' if rows.solved[i] else 'false'
 
     def status(suffix: str, lvl: int, message: str, values: dict[str, str]) -> Any:
         return t.DiagnosticStatus(

@@ -61,9 +61,9 @@ class EventTracker:
 class SkillRunner:
     """State of one skill while it is active; built when the skill is loaded, reset on activation."""
 
-    def __init__(self, skill: CompiledSkill) -> None:
+    def __init__(self, skill: CompiledSkill, qp_solver: str = 'quadprog') -> None:
         self.skill = skill
-        self.solver = SkillSolver(skill)
+        self.solver = SkillSolver(skill, qp_solver=qp_solver)
         self.unknowns = skill.start_unknowns()
         self.start_q = np.zeros(skill.n_q)                 # pose at activation (start_value())
         self.start_unknowns = self.unknowns.copy()

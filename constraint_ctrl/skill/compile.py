@@ -23,7 +23,11 @@ Joint and unknown limits become box bounds on x: speed limits, first-order posit
 When they conflict the position limit wins (the box is never empty).
 
 The function also returns the level-1 QP blocks in quadprog's form (see solve/qp.py) so the tick
-does almost no numpy work; lower priority levels are assembled in numpy from e, J, lo, hi.
+does almost no numpy work. Each lower priority level has a second compiled function of its own
+(``LowerLevel``): it reads the rows the first function wrote (J, lo, hi, weight, box) and the
+solutions of the levels above, and returns that level's QP in the same form, with the rows of the
+levels above held (see ``_lower_level_function``). So a tick with L levels is L compiled calls and
+L QP calls, with no matrix work in numpy between them.
 """
 from __future__ import annotations
 
@@ -36,6 +40,7 @@ import numpy as np
 from ..errors import FormulaError, SkillError
 from ..model.kinematics import RobotModel
 from .formula import FormulaScope, Quantity, compile_formula
+from .robot import robot_model
 from .schema import ConstraintSpec, SkillSpec
 
 #: Stand-in for an infinite speed limit, so the QP never sees inf (rad/s or m/s).
@@ -47,10 +52,27 @@ FUNCTION_INPUTS = ('q', 's', 'q_now', 's_now', 'q_start', 's_start', 'u', 't', '
                    'p')
 FUNCTION_OUTPUTS = ('value', 'error', 'J', 'e_t', 'jdx', 'lo', 'hi', 'weight', 'events',
                     'box_lo', 'box_hi', 'hj', 'hv', 'C', 'b', 'G', 'a')
+LOWER_LEVEL_INPUTS = ('J', 'lo', 'hi', 'weight', 'box_lo', 'box_hi', 'X', 'p')
+LOWER_LEVEL_OUTPUTS = ('G', 'a', 'C', 'b')
+
+#: Room given to every bound a lower level repeats from the levels above (held rows, hard rows,
+#: the box), relative to the bound's size: the active-set solver returns solutions up to ~1e-13
+#: outside an active bound, and a lower level that repeated the bound exactly could then be
+#: infeasible although the level above is feasible (issue 8 item 3).
+HOLD_MARGIN = 1e-9
+#: Half-width of the band a held equality row keeps, relative to the size of the terms of its dot
+#: product J_i x (a bound on its round-off, with a factor of ~1000 to spare over n * 2.2e-16):
+#: the level above's solution meets the band by construction, so it need not cover solver
+#: tolerance, and a narrow band keeps the lower level from sliding along nearly singular
+#: directions of the held rows.
+HOLD_BAND = 1e-12
 
 #: Below this many Jacobian entries the whole tick function is flattened into one SX graph
 #: (fastest to evaluate); above it, G = H^T H stays a dense matrix product (fastest to build).
 EXPAND_LIMIT = 4000
+#: Most QP rows one skill may have (a vector function counts its components): about 10 s of
+#: compile time on a busy 2-core machine (measured: 2000 rows of position(tool_tip), 9 s).
+MAX_ROWS = 2000
 
 
 @dataclass(frozen=True, slots=True)
@@ -115,6 +137,25 @@ class QpLayout:
         return self.n_x + len(self.soft_ineq)
 
 
+@dataclass(frozen=True, slots=True)
+class LowerLevel:
+    """The QP of one lower priority level, formed by its own compiled function.
+
+    Inputs of ``function`` (``LOWER_LEVEL_INPUTS``): the level-1 function's outputs J, lo, hi,
+    weight, box_lo, box_hi, the solutions of the levels above as the columns of X (level 1 first)
+    and the tunables p. Outputs (``LOWER_LEVEL_OUTPUTS``): G, a, C, b in quadprog's form over
+    z = [x, one slack per soft inequality row of this level], with no equality columns (meq = 0).
+    """
+
+    level: int
+    index: int                        # position in layout.levels (1 = the second level)
+    function: ca.Function
+    rows: tuple[int, ...]             # soft rows of this level
+    n_z: int
+    n_con: int
+    con_row: np.ndarray = field(repr=False)  # row index of each column, -1 = box
+
+
 @dataclass(slots=True)
 class CompiledSkill:
     """Everything the solver needs for one skill, built once when the skill is loaded."""
@@ -131,6 +172,7 @@ class CompiledSkill:
     event_names: tuple[str, ...]
     reg_diag: np.ndarray            # (n_x,) lambda**2-free regularisation weights per variable
     damping_param: int              # index of regularisation.damping in p
+    lower_levels: tuple[LowerLevel, ...] = ()
     compile_seconds: float = 0.0
 
     @property
@@ -189,7 +231,7 @@ def compile_skill(spec: SkillSpec, model: RobotModel | None = None) -> CompiledS
 
     started = _time.perf_counter()
     if model is None:
-        model = RobotModel.from_urdf(spec.robot, base_link=spec.base_link)
+        model = robot_model(spec)   # URDF and base_link problems located in the skill file
     builder = _Builder(spec, model)
     compiled = builder.build()
     compiled.compile_seconds = _time.perf_counter() - started
@@ -262,6 +304,10 @@ class _Builder:
         for index, con in enumerate(spec.constraints):
             path = f'constraints[{index}]'
             made = self._constraint_rows(con, scope, path)
+            if len(rows) + len(made) > MAX_ROWS:
+                raise spec.error(f'more than {MAX_ROWS} rows: a skill is limited to {MAX_ROWS} '
+                                 'rows (a vector function counts its components)',
+                                 f'{path}.function')
             gains = self._behaviour_params(con, path)
             weight = self._number_or_tunable(con.weight, f'{con.name}.weight', f'{path}.weight',
                                              description=f'weight of {con.name}')
@@ -324,6 +370,9 @@ class _Builder:
         rows_fn = ca.Function(f'rows_{spec.name}', inputs, outputs, list(FUNCTION_INPUTS),
                               list(FUNCTION_OUTPUTS[:-2]), {'cse': True})
         fn = _with_objective(rows_fn, layout, reg_diag, damping, f'skill_{spec.name}')
+        lower = tuple(_lower_level_function(tuple(rows), layout, index, reg_diag, damping,
+                                            len(self.params.symbols), f'{spec.name}_level')
+                      for index in range(1, len(layout.levels)))
         return CompiledSkill(
             spec=spec, model=self.model, function=fn, rows=tuple(rows),
             params=tuple(self.params.infos), layout=layout,
@@ -331,7 +380,7 @@ class _Builder:
             unknown_names=tuple(f.name for f in spec.unknowns),
             input_names=tuple(i.name for i in spec.inputs),
             event_names=tuple(ev.name for ev in spec.events),
-            reg_diag=reg_diag, damping_param=damping)
+            reg_diag=reg_diag, damping_param=damping, lower_levels=lower)
 
     def _constraint_rows(self, con: ConstraintSpec, scope: FormulaScope, path: str
                          ) -> list[tuple[ca.SX | None, ca.SX | None, ca.SX]]:
@@ -349,6 +398,12 @@ class _Builder:
                                       f'{quantity.kind}', f'{path}.{key}')
             sx = quantity.sx
             if sx.numel() == 1 and size > 1:
+                # A number bound of an inequality bounds every component (a box), and the
+                # number 0 is the zero vector; any other single target is ambiguous.
+                if key == 'target' and not (isinstance(value, (int, float)) and value == 0):
+                    raise self.spec.error(f'the target is 1 value but the function has {size} '
+                                          f'components; give a vector of {size} (vector(x, y, '
+                                          'z)), or 0 for the zero vector', f'{path}.{key}')
                 sx = ca.repmat(sx, size, 1)
             if sx.numel() != size:
                 raise self.spec.error(f'bound has {sx.numel()} components but the function has '
@@ -499,6 +554,128 @@ def _with_objective(rows_fn: ca.Function, layout: QpLayout, reg_diag: np.ndarray
     return fn
 
 
+def _lower_level_function(rows: tuple[RowInfo, ...], layout: QpLayout, index: int,
+                          reg_diag: np.ndarray, damping_index: int, n_p: int,
+                          name: str) -> LowerLevel:
+    """The QP of level ``layout.levels[index]`` given the solutions of the levels above.
+
+    Lexicographic definition: minimise this level's objective (its soft equality rows, its soft
+    inequality slacks, the damping) over all x that keep every row of the levels above as it was
+    solved. Written over the full x (not a null-space basis), so no factorisation is needed:
+    - an equality row i of a level above (or a hard equality row) is held at J_i x = J_i x_k, with
+      x_k the solution of its own level, as two inequality columns with the band
+      HOLD_BAND * (1 + sum_j |J_ij x_kj|). Not as quadprog equality columns: held rows are often
+      linearly dependent (a cross() task has three rows of rank two), and the active-set method
+      declares dependent equality columns inconsistent;
+    - an inequality row of a level above keeps the slack its level needed: lo - slack <= J x <=
+      hi + slack, widened by the margin; hard inequality rows likewise (their slack is round-off);
+    - the box (speed, position and acceleration limits) is widened by the margin too, so the
+      level above's solution, which may lie ~1e-13 outside an active bound, is always feasible
+      here. The solver clips the final command back into the box.
+    Variables z = [x, one slack per soft inequality row of this level]; columns of C in this
+    order: held equality rows (>= side, then <= side), held >= sides, held <= sides, this level's
+    soft >= sides, soft <= sides, box lower, box upper.
+    """
+    levels = layout.levels
+    level = levels[index]
+    n_x = layout.n_x
+    n_rows = len(rows)
+    J = ca.MX.sym('J', n_rows, n_x)
+    lo = ca.MX.sym('lo', n_rows)
+    hi = ca.MX.sym('hi', n_rows)
+    w = ca.MX.sym('weight', n_rows)
+    box_lo = ca.MX.sym('box_lo', n_x)
+    box_hi = ca.MX.sym('box_hi', n_x)
+    X = ca.MX.sym('X', n_x, index)
+    p = ca.MX.sym('p', n_p)
+
+    def source(r: RowInfo) -> int:
+        """Column of X the row is held at: its own level's solution (hard rows: level 1)."""
+        return 0 if r.hard else levels.index(r.level)
+
+    held = [i for i, r in enumerate(rows) if r.hard or r.level in levels[:index]]
+    now = [i for i, r in enumerate(rows) if not r.hard and r.level == level]
+    eq = [i for i in now if rows[i].kind == 'equal']
+    ineq = [i for i in now if rows[i].kind != 'equal']
+    # J_i x_k of every held row, each at the solution of its own level
+    reached = ca.MX.zeros(n_rows, 1)
+    terms = ca.MX.zeros(n_rows, 1)     # sum_j |J_ij x_j|: the scale of J_i x's round-off
+    for k in range(index):
+        idx = [i for i in held if source(rows[i]) == k]
+        if idx:
+            reached[idx] = ca.mtimes(J[idx, :], X[:, k])
+            terms[idx] = ca.mtimes(ca.fabs(J[idx, :]), ca.fabs(X[:, k]))
+
+    def margin(bound: ca.MX) -> ca.MX:
+        return HOLD_MARGIN * (1.0 + ca.fabs(bound))
+
+    held_eq = [i for i in held if rows[i].kind == 'equal']
+    held_lo = [i for i in held if rows[i].kind in ('at_least', 'within')]
+    held_hi = [i for i in held if rows[i].kind in ('at_most', 'within')]
+    slack = ca.fmax(0.0, lo - reached) + ca.fmax(0.0, reached - hi)
+    blocks: list[tuple[list[int], float, ca.MX, bool]] = []   # rows, sign, bound, with slack
+    if held_eq:
+        v = reached[held_eq]
+        band = HOLD_BAND * (1.0 + terms[held_eq])
+        blocks.append((held_eq, 1.0, v - band, False))
+        blocks.append((held_eq, -1.0, -(v + band), False))
+    if held_lo:
+        bound = lo[held_lo] - slack[held_lo]
+        blocks.append((held_lo, 1.0, bound - margin(bound), False))
+    if held_hi:
+        bound = hi[held_hi] + slack[held_hi]
+        blocks.append((held_hi, -1.0, -(bound + margin(bound)), False))
+    soft_lo = [i for i in ineq if rows[i].kind in ('at_least', 'within')]
+    soft_hi = [i for i in ineq if rows[i].kind in ('at_most', 'within')]
+    if soft_lo:
+        blocks.append((soft_lo, 1.0, lo[soft_lo], True))
+    if soft_hi:
+        blocks.append((soft_hi, -1.0, -hi[soft_hi], True))
+
+    n_s = len(ineq)
+    n_z = n_x + n_s
+    slack_of = {row: k for k, row in enumerate(ineq)}
+    x_cols: list[ca.MX] = []
+    s_cols: list[np.ndarray] = []
+    rhs: list[ca.MX] = []
+    con_row: list[int] = []
+    for idx, sign, bound, with_slack in blocks:
+        x_cols.append(sign * J[idx, :].T)
+        sel = np.zeros((n_s, len(idx)))
+        if with_slack:
+            for c, row in enumerate(idx):
+                sel[slack_of[row], c] = 1.0
+        s_cols.append(sel)
+        rhs.append(bound)
+        con_row.extend(idx)
+    eye = np.eye(n_x)
+    x_cols += [ca.MX(ca.DM(eye)), ca.MX(ca.DM(-eye))]
+    s_cols += [np.zeros((n_s, n_x)), np.zeros((n_s, n_x))]
+    rhs += [box_lo - margin(box_lo), -(box_hi + margin(box_hi))]
+    con_row += [-1] * (2 * n_x)
+    C = ca.vertcat(ca.horzcat(*x_cols), ca.MX(ca.DM(np.hstack(s_cols)))) if n_s \
+        else ca.horzcat(*x_cols)
+    b = ca.vertcat(*rhs)
+
+    damping = p[damping_index]
+    sw = ca.sqrt(w[eq]) if eq else ca.MX(0, 1)
+    H = J[eq, :] * ca.repmat(sw, 1, n_x) if eq else ca.MX(0, n_x)
+    G_x = ca.mtimes(H.T, H) + ca.diag(damping ** 2 * ca.DM(reg_diag))
+    a_x = ca.mtimes(H.T, sw * lo[eq]) if eq else ca.MX.zeros(n_x, 1)
+    if n_s:
+        G = ca.diagcat(G_x, ca.diag(w[ineq]))
+        a = ca.vertcat(a_x, ca.MX.zeros(n_s, 1))
+    else:
+        G, a = G_x, a_x
+    fn = ca.Function(f'{name}_{level}', [J, lo, hi, w, box_lo, box_hi, X, p],
+                     [ca.densify(G), ca.densify(a), ca.densify(C), ca.densify(b)],
+                     list(LOWER_LEVEL_INPUTS), list(LOWER_LEVEL_OUTPUTS))
+    if n_rows * max(n_x, 1) <= EXPAND_LIMIT:
+        fn = fn.expand()
+    return LowerLevel(level=level, index=index, function=fn, rows=tuple(now), n_z=n_z,
+                      n_con=len(con_row), con_row=np.array(con_row, dtype=int))
+
+
 def _violation(e_lo: ca.SX | None, e_hi: ca.SX | None, kind: str) -> ca.SX:
     """Signed error for equalities; amount outside the allowed side(s) for inequalities."""
     if kind == 'equal':
@@ -568,5 +745,6 @@ def _level_one_blocks(layout: QpLayout, J: ca.SX, lo: ca.SX, hi: ca.SX, w: ca.SX
     return hj, hv, C, b
 
 
-__all__ = ['CompiledSkill', 'ParamInfo', 'QpLayout', 'RowInfo', 'compile_skill',
-           'FUNCTION_INPUTS', 'FUNCTION_OUTPUTS', 'FormulaError']
+__all__ = ['MAX_ROWS', 'CompiledSkill', 'LowerLevel', 'ParamInfo', 'QpLayout', 'RowInfo',
+           'compile_skill', 'FUNCTION_INPUTS', 'FUNCTION_OUTPUTS', 'HOLD_BAND', 'HOLD_MARGIN',
+           'LOWER_LEVEL_INPUTS', 'LOWER_LEVEL_OUTPUTS', 'FormulaError']

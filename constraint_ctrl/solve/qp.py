@@ -1,4 +1,4 @@
-"""One QP per priority level with quadprog, on buffers prepared when the skill is loaded.
+"""One QP per priority level, on buffers prepared when the skill is loaded.
 
 Decision variables z = [x, slacks]: x = [q_dot, s_dot] and one slack per soft inequality row of
 the level being solved. Objective (quadprog: minimise 1/2 z^T G z - a^T z subject to C^T z >= b):
@@ -10,31 +10,47 @@ no slack variable (its slack is the residual J x - v), which keeps the QP as sma
 For one soft equality task with r = 1 the minimiser is the damped least-squares solution
 x = J^T (J J^T + lambda^2 I)^-1 v.
 
-Priority levels are solved lexicographically: after level k the equality rows of levels <= k are
-held at the values they reached (J x = J x_k) by optimising only in the null space of all held
-and hard equality rows, x = x_k + N y, and their inequality rows are held with the slacks they
-needed. So a lower level can never degrade a higher one.
+Priority levels are solved lexicographically: after level k the rows of levels <= k are held as
+they were solved (equality rows at J x = J x_k, inequality rows with the slacks they needed), so a
+lower level can never degrade a higher one. Each lower level's QP is formed by its own compiled
+function from the rows and the solutions above (skill/compile.py: ``_lower_level_function``), so
+a tick is one compiled call and one QP call per level. Every bound a lower level repeats from
+above gets a margin of 1e-9 (relative), because the level above may sit ~1e-13 outside an active
+bound after round-off.
 
-Failure is data, not an exception: an infeasible set of hard rows, non-finite inputs or a
-non-finite result give a status other than OK and a zero command (the caller stops).
+Failure is data, not an exception. Level 1 failing (infeasible hard rows and limits, non-finite
+inputs, a non-finite result) gives a status other than OK and a zero command (the caller stops).
+A lower level failing never stops the arm: the tick returns the solution of the last level that
+was solved, status OK, and says in ``levels_solved``, the message and ``RowReport.solved`` which
+rows were not solved.
+
+Two QP solvers are available, on the same matrices: quadprog (Goldfarb-Idnani dual active set, the
+default) and DAQP (PyPI ``daqp``, a dual active-set solver for many inequalities), chosen with
+``qp_solver``.
 """
 from __future__ import annotations
 
 import time
 from dataclasses import dataclass
 from enum import Enum
+from typing import Callable
 
 import numpy as np
 import quadprog
 
-from ..skill.compile import FUNCTION_INPUTS, FUNCTION_OUTPUTS, CompiledSkill
+from ..skill.compile import (FUNCTION_INPUTS, FUNCTION_OUTPUTS, LOWER_LEVEL_INPUTS,
+                             LOWER_LEVEL_OUTPUTS, CompiledSkill, LowerLevel)
 
 #: Outputs read as 2-D arrays (all others are vectors).
-MATRIX_OUTPUTS = frozenset({'J', 'hj', 'C', 'G'})
-#: Rank tolerance (relative to the largest singular value) for held equality rows.
-RANK_TOLERANCE = 1e-9
-#: Held inequality rows get this much room so round-off never makes a lower level infeasible.
-HOLD_MARGIN = 1e-9
+MATRIX_OUTPUTS = frozenset({'J', 'hj', 'C', 'G', 'X'})
+#: The QP solvers a skill can be solved with; the first is the default.
+QP_SOLVERS = ('quadprog', 'daqp')
+#: Infinity for DAQP's bounds (its own constant DAQP_INF).
+DAQP_INF = 1e30
+#: DAQP's sense flag of an equality row.
+DAQP_EQUALITY = 5
+#: DAQP's primal feasibility tolerance: far below the 1e-6 agreement asked of the two solvers.
+DAQP_PRIMAL_TOL = 1e-10
 
 
 class SolveStatus(str, Enum):
@@ -49,17 +65,27 @@ class SolveStatus(str, Enum):
 
 @dataclass(slots=True)
 class RowReport:
-    """Per-row diagnostics of one tick (arrays indexed like CompiledSkill.rows)."""
+    """Per-row diagnostics of one tick (arrays indexed like CompiledSkill.rows).
+
+    ``solved`` is False for the rows of a priority level that could not be solved this tick (and
+    of every level below it): the command then comes from the levels above, which were solved.
+    """
 
     value: np.ndarray
     error: np.ndarray
     slack: np.ndarray
     active: np.ndarray
+    solved: np.ndarray
 
 
 @dataclass(slots=True)
 class SolveResult:
-    """What one tick produced. ``x`` is owned by the caller (a fresh array)."""
+    """What one tick produced. ``x`` is owned by the caller (a fresh array).
+
+    ``levels_solved`` counts the priority levels whose QP was solved (all of them on a normal
+    tick); when it is short of the skill's level count, ``message`` says why and x is the
+    solution of the last solved level.
+    """
 
     x: np.ndarray
     status: SolveStatus
@@ -67,23 +93,115 @@ class SolveResult:
     eval_ns: int
     solve_ns: int
     iterations: int
+    levels_solved: int = 0
 
     @property
     def ok(self) -> bool:
         return self.status is SolveStatus.OK
 
 
+class QpFailure(Exception):
+    """A QP call that gave no solution (internal: becomes a status, never leaves this module)."""
+
+    def __init__(self, status: SolveStatus, text: str) -> None:
+        super().__init__(text)
+        self.status = status
+
+
+class _QuadprogCall:
+    """quadprog.solve_qp(G, a, C, b, meq) -> (z, iterations, 1-based active columns)."""
+
+    def __init__(self, n_con: int, meq: int) -> None:
+        self.meq = meq
+
+    def __call__(self, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray
+                 ) -> tuple[np.ndarray, int, np.ndarray]:
+        try:
+            z, _, _, iterations, _, iact = quadprog.solve_qp(G, a, C, b, self.meq)
+        except ValueError as err:
+            text = str(err)
+            raise QpFailure(SolveStatus.NOT_CONVEX if 'positive definite' in text
+                            else SolveStatus.INFEASIBLE, text) from None
+        return z, int(iterations[0]), iact
+
+
+class _DaqpCall:
+    """The same QP with DAQP: H = G, f = -a, blower = b <= C^T z (<= b for the first meq)."""
+
+    EXIT_TEXT = {-1: 'infeasible', -2: 'cycling', -3: 'unbounded', -4: 'iteration limit',
+                 -5: 'not convex', -6: 'overdetermined initial active set'}
+
+    def __init__(self, n_con: int, meq: int) -> None:
+        import daqp  # imported here: an optional solver need not be installed for quadprog
+
+        self._solve = daqp.solve
+        self.meq = meq
+        self.upper = np.full(n_con, DAQP_INF)
+        self.sense = np.zeros(n_con, dtype=np.intc)
+        self.sense[:meq] = DAQP_EQUALITY
+        self.f = np.zeros(0)
+
+    def __call__(self, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray
+                 ) -> tuple[np.ndarray, int, np.ndarray]:
+        if self.f.shape != a.shape:
+            self.f = np.empty_like(a)
+        np.negative(a, out=self.f)
+        if self.meq:
+            self.upper[:self.meq] = b[:self.meq]
+        # C is column-major (CasADi's layout), so C.T is the row-major A DAQP wants: no copy
+        z, _, flag, info = self._solve(G, self.f, C.T, self.upper, b, self.sense,
+                                       primal_tol=DAQP_PRIMAL_TOL)
+        if flag < 1:
+            status = SolveStatus.NOT_CONVEX if flag == -5 else SolveStatus.INFEASIBLE
+            raise QpFailure(status, f'daqp: {self.EXIT_TEXT.get(flag, f"exit flag {flag}")}')
+        return z, int(info['iterations']), np.flatnonzero(info['lam']) + 1
+
+
+def _qp_call(name: str) -> Callable[[int, int], Callable[..., tuple[np.ndarray, int, np.ndarray]]]:
+    if name == 'quadprog':
+        return _QuadprogCall
+    if name == 'daqp':
+        return _DaqpCall
+    msg = f'unknown QP solver {name!r}; choose one of {", ".join(QP_SOLVERS)}'
+    raise ValueError(msg)
+
+
+class _LevelBuffers:
+    """A lower level's compiled function bound to the buffers it reads and writes."""
+
+    def __init__(self, level: LowerLevel, read: dict[str, np.ndarray],
+                 make_call: Callable[[int, int], Callable[..., tuple[np.ndarray, int, np.ndarray]]]
+                 ) -> None:
+        self.level = level
+        fn = level.function
+        buf, self.evaluate = fn.buffer()
+        self._buffer = buf
+        # every input is a flat view of a buffer the solver owns (no copy per tick)
+        for i, name in enumerate(LOWER_LEVEL_INPUTS):
+            buf.set_arg(i, memoryview(read[name]))
+        self.out: dict[str, np.ndarray] = {}
+        for i, name in enumerate(LOWER_LEVEL_OUTPUTS):
+            rows, cols = fn.size1_out(i), fn.size2_out(i)
+            flat = np.zeros(rows * cols)
+            buf.set_res(i, memoryview(flat))
+            self.out[name] = flat.reshape((rows, cols), order='F') if name in ('G', 'C') else flat
+        self.qp = make_call(level.n_con, 0)
+
+
 class SkillSolver:
     """Evaluates a compiled skill and solves its QP(s); one instance per loaded skill.
 
     Inputs are written into preallocated buffers that CasADi reads directly; outputs are read
-    from buffers CasADi writes directly (no allocation in the evaluation). ``diagnostics()``
+    from buffers CasADi writes directly (no allocation in the evaluation). The lower levels'
+    functions read the first function's output buffers directly too. ``diagnostics()``
     computes the per-row report from the last tick's buffers on demand, so the tick itself stays
-    lean; call it before the next ``solve``.
+    lean; call it before the next ``solve``. ``qp_solver`` picks the QP solver (``QP_SOLVERS``).
     """
 
-    def __init__(self, skill: CompiledSkill) -> None:
+    def __init__(self, skill: CompiledSkill, qp_solver: str = 'quadprog') -> None:
         self.skill = skill
+        make_call = _qp_call(qp_solver)
+        self.qp_solver = qp_solver
         fn = skill.function
         self._inputs: dict[str, np.ndarray] = {}
         self._outputs: dict[str, np.ndarray] = {}
@@ -101,10 +219,12 @@ class SkillSolver:
         for i, name in enumerate(FUNCTION_INPUTS):
             source = {'q_now': 'q', 's_now': 's'}.get(name, name)
             buf.set_arg(i, memoryview(self._inputs[source]))
+        self._flat: dict[str, np.ndarray] = {}
         for i, name in enumerate(FUNCTION_OUTPUTS):
             rows, cols = fn.size1_out(i), fn.size2_out(i)
             flat = np.zeros(rows * cols)
             buf.set_res(i, memoryview(flat))
+            self._flat[name] = flat
             # CasADi writes column-major: a Fortran-ordered view gives the matrix
             self._outputs[name] = flat.reshape((rows, cols), order='F') \
                 if name in MATRIX_OUTPUTS else flat
@@ -112,25 +232,34 @@ class SkillSolver:
         self.p[:] = skill.default_params()
         lay = skill.layout
         self._is_eq = np.array([r.kind == 'equal' for r in skill.rows], dtype=bool)
-        self._multi_level = len(lay.levels) > 1
-        # row sets of the lower levels: static per skill, so built once here, not per tick
-        rows = skill.rows
-        self._hard_eq = [i for i, r in enumerate(rows) if r.hard and r.kind == 'equal']
-        self._hard_in = [i for i, r in enumerate(rows) if r.hard and r.kind != 'equal']
-        self._level_rows: dict[int, tuple[list[int], list[int], list[int]]] = {}
-        for level in lay.levels:
-            now = [i for i, r in enumerate(rows) if not r.hard and r.level == level]
-            self._level_rows[level] = (now, [i for i in now if rows[i].kind == 'equal'],
-                                       [i for i in now if rows[i].kind != 'equal'])
+        self._qp = make_call(lay.n_con, lay.meq)
+        # lower levels: X holds the solution of each level above as a column
+        n_lower = len(skill.lower_levels)
+        self._x_flat = np.zeros(lay.n_x * max(n_lower, 1))
+        self._X = self._x_flat.reshape((lay.n_x, max(n_lower, 1)), order='F')
+        self._levels: list[_LevelBuffers] = []
+        for level in skill.lower_levels:
+            read = {name: self._flat[name] for name in LOWER_LEVEL_INPUTS
+                    if name not in ('X', 'p')}
+            read['X'] = self._x_flat[:lay.n_x * level.index]
+            read['p'] = self.p
+            self._levels.append(_LevelBuffers(level, read, make_call))
+        self._level_of_row = np.array([lay.levels.index(r.level) if not r.hard else 0
+                                       for r in skill.rows], dtype=int)
         self.last_x = np.zeros(lay.n_x)
         self.last_iact = np.zeros(0, dtype=int)
         self.last_status = SolveStatus.OK
+        self.last_levels_solved = 0
 
     # ------------------------------------------------------------ buffers
     @property
     def outputs(self) -> dict[str, np.ndarray]:
         """The last evaluation's outputs (views, overwritten by the next solve)."""
         return self._outputs
+
+    def level_outputs(self, index: int) -> dict[str, np.ndarray]:
+        """G, a, C, b of lower level ``index`` (1 = the second level) from the last solve."""
+        return self._levels[index - 1].out
 
     def set_param(self, index: int, value: float) -> None:
         self.p[index] = value
@@ -151,129 +280,82 @@ class SkillSolver:
         inp['t'][0] = t
         inp['dt'][0] = dt
         inp['x_prev'][:] = x_prev
-        n_x = self.skill.layout.n_x
         if not np.isfinite(self._in_block).all():
             return self._fail(SolveStatus.BAD_INPUT, _which_bad(inp), 0, 0)
         started = time.perf_counter_ns()
         self._evaluate()
         evaluated = time.perf_counter_ns()
         out = self._outputs
-        lay = self.skill.layout
         try:
-            z, _, _, iterations, _, iact = quadprog.solve_qp(out['G'], out['a'], out['C'],
-                                                             out['b'], lay.meq)
-        except ValueError as err:
-            text = str(err)
-            status = SolveStatus.NOT_CONVEX if 'positive definite' in text \
-                else SolveStatus.INFEASIBLE
+            z, iterations, iact = self._qp(out['G'], out['a'], out['C'], out['b'])
+        except QpFailure as err:
+            status, text = err.status, str(err)
             if not (np.isfinite(out['C']).all() and np.isfinite(out['b']).all()):
                 status, text = SolveStatus.BAD_OUTPUT, 'non-finite row data: ' + _bad_rows(self)
             return self._fail(status, text, evaluated - started,
                               time.perf_counter_ns() - evaluated)
+        n_x = self.skill.layout.n_x
         x = z[:n_x]
-        if self._multi_level:
-            x, status, text = self._lower_levels(x, z, iact)
-            if status is not SolveStatus.OK:
-                return self._fail(status, text, evaluated - started,
-                                  time.perf_counter_ns() - evaluated)
-        solved = time.perf_counter_ns()
         if not np.isfinite(x).all():
             return self._fail(SolveStatus.BAD_OUTPUT, 'non-finite solution: ' + _bad_rows(self),
-                              evaluated - started, solved - evaluated)
+                              evaluated - started, time.perf_counter_ns() - evaluated)
+        levels_solved, message = 1, ''
+        if self._levels:
+            x, levels_solved, message = self._lower_levels(x)
+        solved = time.perf_counter_ns()
         self.last_x = x
         self.last_iact = iact
         self.last_status = SolveStatus.OK
-        return SolveResult(x=x.copy(), status=SolveStatus.OK, message='',
+        self.last_levels_solved = levels_solved
+        return SolveResult(x=x.copy(), status=SolveStatus.OK, message=message,
                            eval_ns=evaluated - started, solve_ns=solved - evaluated,
-                           iterations=int(iterations[0]))
+                           iterations=iterations, levels_solved=levels_solved)
 
     def _fail(self, status: SolveStatus, message: str, eval_ns: int, solve_ns: int
               ) -> SolveResult:
         self.last_x = np.zeros(self.skill.layout.n_x)
         self.last_iact = np.zeros(0, dtype=int)
         self.last_status = status
+        self.last_levels_solved = 0
         return SolveResult(x=np.zeros(self.skill.layout.n_x), status=status, message=message,
                            eval_ns=eval_ns, solve_ns=solve_ns, iterations=0)
 
     # ------------------------------------------------------ lower levels
-    def _lower_levels(self, x: np.ndarray, z: np.ndarray, iact: np.ndarray
-                      ) -> tuple[np.ndarray, SolveStatus, str]:
-        """Solve levels 2.. in the null space of everything held so far (module docstring)."""
-        skill, out = self.skill, self._outputs
-        rows = skill.rows
-        J, lo, hi, w = out['J'], out['lo'], out['hi'], out['weight']
-        n_x = skill.layout.n_x
-        damping = self.p[skill.damping_param]
-        reg = damping * damping * skill.reg_diag
-        levels = skill.layout.levels
-        held_eq = list(self._hard_eq)
-        held_in: list[tuple[int, float, float]] = [(i, lo[i], hi[i]) for i in self._hard_in]
-        box_lo, box_hi = out['box_lo'], out['box_hi']
-        done = self._level_rows[levels[0]][0]
-        for level_index in range(1, len(levels)):
-            jx = J @ x
-            for i in done:
-                if rows[i].kind == 'equal':
-                    held_eq.append(i)
-                else:
-                    slack = max(0.0, lo[i] - jx[i]) + max(0.0, jx[i] - hi[i])
-                    held_in.append((i, lo[i] - slack - HOLD_MARGIN, hi[i] + slack + HOLD_MARGIN))
-            E = J[held_eq] if held_eq else np.zeros((0, n_x))
-            if E.shape[0]:
-                _, sv, vt = np.linalg.svd(E)
-                rank = int((sv > RANK_TOLERANCE * max(sv[0], 1e-300)).sum())
-                N = vt[rank:].T
-            else:
-                N = np.eye(n_x)
-            if N.shape[1] == 0:
-                break
-            level = levels[level_index]
-            now, eq, ineq = self._level_rows[level]
-            sw = np.sqrt(w[eq])
-            H = J[eq] * sw[:, None]
-            Gx = H.T @ H + np.diag(reg)
-            ax = H.T @ (sw * lo[eq])
-            n_y, n_s = N.shape[1], len(ineq)
-            G = np.zeros((n_y + n_s, n_y + n_s))
-            G[:n_y, :n_y] = N.T @ Gx @ N
-            G[n_y:, n_y:] = np.diag(w[ineq]) if n_s else np.zeros((0, 0))
-            a = np.concatenate([N.T @ (ax - Gx @ x), np.zeros(n_s)])
-            cols, rhs = [], []
+    def _lower_levels(self, x: np.ndarray) -> tuple[np.ndarray, int, str]:
+        """Levels 2..: each one compiled call and one QP call (module docstring).
 
-            def add(row_vec: np.ndarray, bound: float, slack_at: int | None) -> None:
-                col = np.zeros(n_y + n_s)
-                col[:n_y] = N.T @ row_vec
-                if slack_at is not None:
-                    col[n_y + slack_at] = 1.0
-                cols.append(col)
-                rhs.append(bound - row_vec @ x)
-
-            for i, low, high in held_in:
-                if np.isfinite(low):
-                    add(J[i], low, None)
-                if np.isfinite(high):
-                    add(-J[i], -high, None)
-            for k, i in enumerate(ineq):
-                if np.isfinite(lo[i]):
-                    add(J[i], lo[i], k)
-                if np.isfinite(hi[i]):
-                    add(-J[i], -hi[i], k)
-            eye = np.eye(n_x)
-            for j in range(n_x):
-                add(eye[j], box_lo[j], None)
-                add(-eye[j], -box_hi[j], None)
-            C = np.array(cols).T
+        Returns the solution of the last level solved, how many levels were solved and, when
+        one failed, why. A failed lower level never fails the tick.
+        """
+        X = self._X
+        n_x = x.size
+        X[:, 0] = x
+        lay = self.skill.layout
+        for k, level in enumerate(self._levels, start=1):
+            level.evaluate()
+            out = level.out
             try:
-                y = quadprog.solve_qp(G, a, C, np.array(rhs), 0)[0]
-            except ValueError as err:
-                return x, SolveStatus.INFEASIBLE, f'level {level}: {err}'
-            x = x + N @ y[:n_y]
-            done = now
-        return x, SolveStatus.OK, ''
+                z, _, _ = level.qp(out['G'], out['a'], out['C'], out['b'])
+            except QpFailure as err:
+                return self._clip(X[:, k - 1]), k, _not_solved(lay.levels[k], str(err),
+                                                               lay.levels[k - 1])
+            if not np.isfinite(z).all():
+                return self._clip(X[:, k - 1]), k, _not_solved(
+                    lay.levels[k], 'non-finite solution: ' + _bad_rows(self), lay.levels[k - 1])
+            if k < X.shape[1]:
+                X[:, k] = z[:n_x]
+            else:
+                x = z[:n_x]
+        return self._clip(x), len(lay.levels), ''
+
+    def _clip(self, x: np.ndarray) -> np.ndarray:
+        """Back into the box: lower levels see the box widened by the hold margin."""
+        out = self._outputs
+        return np.clip(x, out['box_lo'], out['box_hi'])
 
     # -------------------------------------------------------- diagnostics
     def diagnostics(self) -> RowReport:
-        """Per-row value, error, slack and active flag of the last solve (fresh arrays)."""
+        """Per-row value, error, slack, active and solved flags of the last solve (fresh arrays)."""
         out = self._outputs
         x = self.last_x
         jx = out['J'] @ x if out['J'].size else np.zeros(0)
@@ -284,12 +366,18 @@ class SkillSolver:
         active = self._is_eq.copy()
         con_row = self.skill.layout.con_row
         hits = self.last_iact[self.last_iact > 0] - 1
-        rows_hit = con_row[hits]
+        rows_hit = con_row[hits[hits < con_row.size]]
         active[rows_hit[rows_hit >= 0]] = True
+        solved = self._level_of_row < self.last_levels_solved
         if self.last_status is not SolveStatus.OK:
             active[:] = False
+        active &= solved
         return RowReport(value=out['value'].copy(), error=out['error'].copy(), slack=slack,
-                         active=active)
+                         active=active, solved=solved)
+
+
+def _not_solved(level: int, why: str, used: int) -> str:
+    return f'level {level} not solved ({why}); the solution of level {used} is used'
 
 
 def _which_bad(inp: dict[str, np.ndarray]) -> str:
@@ -305,4 +393,4 @@ def _bad_rows(solver: SkillSolver) -> str:
     return ', '.join(names) if names else 'limits'
 
 
-__all__ = ['RowReport', 'SkillSolver', 'SolveResult', 'SolveStatus']
+__all__ = ['QP_SOLVERS', 'RowReport', 'SkillSolver', 'SolveResult', 'SolveStatus']

@@ -10,7 +10,7 @@ import gc
 import json
 import platform
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Callable
 
@@ -20,10 +20,13 @@ import quadprog
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
 from ..skill.schema import BehaviourSpec, ConstraintSpec, SkillSpec
-from ..solve.qp import SkillSolver
+from ..solve.qp import DAQP_EQUALITY, DAQP_INF, DAQP_PRIMAL_TOL, QP_SOLVERS, SkillSolver
 
 CONFIG = Path(__file__).resolve().parents[2] / 'config'
 EXAMPLE_SKILL = CONFIG / 'skills' / 'keep_tool_vertical.yaml'
+#: Rows of the example skill that become its second priority level in the two-level example:
+#: the wishes that may give way (tool heading, elbow height) below the path and the tool axis.
+SECOND_LEVEL_ROWS = ('tool_heading', 'elbow_up')
 
 
 @dataclass(frozen=True, slots=True)
@@ -68,9 +71,37 @@ def _interleaved(fns: list[Callable[[], object]], n: int) -> list[np.ndarray]:
     return out
 
 
-def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict[str, object]:
-    """Engine tick (evaluate + assemble + solve) against the raw bound on identical matrices."""
-    solver = SkillSolver(skill)
+def two_level_example(spec: SkillSpec) -> SkillSpec:
+    """The example skill with SECOND_LEVEL_ROWS moved to priority 2."""
+    constraints = tuple(replace(c, priority=2) if c.name in SECOND_LEVEL_ROWS else c
+                        for c in spec.constraints)
+    return replace(spec, name=spec.name + '_two_levels', constraints=constraints)
+
+
+def _raw_qp(qp_solver: str, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray,
+            meq: int) -> Callable[[], object]:
+    """The bare library call on fixed matrices (no wrapper of ours around it)."""
+    if qp_solver == 'quadprog':
+        return lambda: quadprog.solve_qp(G, a, C, b, meq)
+    import daqp
+    f = -a
+    A = np.ascontiguousarray(C.T)
+    upper = np.full(b.size, DAQP_INF)
+    upper[:meq] = b[:meq]
+    sense = np.zeros(b.size, dtype=np.intc)
+    sense[:meq] = DAQP_EQUALITY
+    return lambda: daqp.solve(G, f, A, upper, b, sense, primal_tol=DAQP_PRIMAL_TOL)
+
+
+def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000,
+                qp_solver: str = 'quadprog') -> dict[str, object]:
+    """Engine tick (evaluate + assemble + solve every level) against the raw bound.
+
+    The raw bound is what the tick cannot avoid: every compiled call (the skill function, and the
+    function of each lower level) and one bare QP call per level on identical matrices, timed
+    interleaved with the engine.
+    """
+    solver = SkillSolver(skill, qp_solver=qp_solver)
     s = skill.start_unknowns()
     solver.set_start(q, s)
     u = np.array([skill.spec.offline.inputs.get(name, 0.0) for name in skill.input_names])
@@ -80,28 +111,38 @@ def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict
     for k in range(300):
         res = solver.solve(q, s, u, k * dt, dt, x)
         x = res.x
-        q = q + dt * x[:skill.n_q]
+        q = q + dt * x
         s = s + dt * x[skill.n_q:]
     t = 300 * dt
 
     def engine() -> object:
         return solver.solve(q, s, u, t, dt, x)
 
-    engine()
-    # the raw bound: the compiled CasADi call alone, then quadprog on the very same matrices
-    G = solver.outputs['G'].copy(order='F')
-    a = solver.outputs['a'].copy()
-    C = solver.outputs['C'].copy(order='F')
-    b = solver.outputs['b'].copy()
-    meq = skill.layout.meq
+    last = solver.solve(q, s, u, t, dt, x)
+    # the raw bound: the compiled calls alone, then the QP solver on the very same matrices
+    out = solver.outputs
+    qps = [_raw_qp(qp_solver, out['G'].copy(order='F'), out['a'].copy(),
+                   out['C'].copy(order='F'), out['b'].copy(), skill.layout.meq)]
+    levels = solver._levels   # noqa: SLF001
+    for level in levels:
+        lo = level.out
+        qps.append(_raw_qp(qp_solver, lo['G'].copy(order='F'), lo['a'].copy(),
+                           lo['C'].copy(order='F'), lo['b'].copy(), 0))
     evaluate = solver._evaluate   # noqa: SLF001
+    level_calls = [level.evaluate for level in levels]
 
-    def raw_qp() -> object:
-        return quadprog.solve_qp(G, a, C, b, meq)
+    def compiled_calls() -> None:
+        evaluate()
+        for call in level_calls:
+            call()
+
+    def qp_calls() -> None:
+        for call in qps:
+            call()
 
     gc.disable()
     try:
-        eng, ev, qp = _interleaved([engine, evaluate, raw_qp], ticks)
+        eng, ev, qp = _interleaved([engine, compiled_calls, qp_calls], ticks)
     finally:
         gc.enable()
     raw = ev + qp
@@ -109,6 +150,9 @@ def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict
     raw_stats = Stats.of(raw)
     return {
         'skill': skill.spec.name,
+        'solver': qp_solver,
+        'levels': len(skill.layout.levels),
+        'levels_solved': last.levels_solved,
         'joints': skill.n_q,
         'unknowns': skill.n_s,
         'rows': skill.n_rows,
@@ -116,7 +160,7 @@ def bench_skill(skill: CompiledSkill, q: np.ndarray, ticks: int = 20000) -> dict
         'qp_constraints': skill.layout.n_con,
         'engine_tick': engine_stats.as_dict(),
         'raw_casadi_call': Stats.of(ev).as_dict(),
-        'raw_quadprog': Stats.of(qp).as_dict(),
+        f'raw_{qp_solver}': Stats.of(qp).as_dict(),
         'raw_bound': raw_stats.as_dict(),
         'ratio_median': round(engine_stats.median_us / raw_stats.median_us, 3),
         'ratio_p99': round(engine_stats.p99_us / raw_stats.p99_us, 3),
@@ -139,8 +183,12 @@ def generated_chain_urdf(n_joints: int) -> str:
     return '\n'.join(parts)
 
 
-def generated_skill(urdf_path: Path, n_joints: int, n_rows: int) -> SkillSpec:
-    """n_rows soft scalar rows over points along the chain (positions and spacing)."""
+def generated_skill(urdf_path: Path, n_joints: int, n_rows: int, levels: int = 1) -> SkillSpec:
+    """n_rows soft scalar rows over points along the chain (positions and spacing).
+
+    With ``levels`` > 1 the rows are dealt out over that many priority levels in turn (the same
+    rows and bounds as the one-level skill, so the cells compare).
+    """
     rng = np.random.default_rng(n_joints * 1000 + n_rows)
     constraints = []
     kinds = ['equal', 'at_most', 'at_least']
@@ -155,28 +203,36 @@ def generated_skill(urdf_path: Path, n_joints: int, n_rows: int) -> SkillSpec:
             ({'upper': bound} if kind == 'at_most' else {'lower': bound})
         constraints.append(ConstraintSpec(name=f'row_{k}', function=value, kind=kind,
                                           behaviour=BehaviourSpec(order=1, gain=2.0),
-                                          weight=float(1 + k % 5), **fields))
-    return SkillSpec(name=f'chain_{n_joints}_{n_rows}', robot=urdf_path,
+                                          weight=float(1 + k % 5), priority=1 + k % levels,
+                                          **fields))
+    return SkillSpec(name=f'chain_{n_joints}_{n_rows}_{levels}', robot=urdf_path,
                      constraints=tuple(constraints))
 
 
 def bench_scaling(workdir: Path, joints: tuple[int, ...] = (6, 12, 24, 48),
-                  rows: tuple[int, ...] = (10, 50, 200), ticks: int = 2000
-                  ) -> list[dict[str, object]]:
+                  rows: tuple[int, ...] = (10, 50, 200), ticks: int = 2000,
+                  levels: tuple[int, ...] = (1, 2),
+                  solvers: tuple[str, ...] = QP_SOLVERS) -> list[dict[str, object]]:
+    """Every joints x rows x levels cell, with each QP solver on the very same skill."""
     table = []
     workdir.mkdir(parents=True, exist_ok=True)
     for n in joints:
         urdf = workdir / f'chain_{n}.urdf'
         urdf.write_text(generated_chain_urdf(n))
         for m in rows:
-            skill = compile_skill(generated_skill(urdf, n, m))
-            q = np.full(n, 0.3)
-            result = bench_skill(skill, q, ticks=ticks)
-            table.append({'joints': n, 'rows': m,
-                          'median_us': result['engine_tick']['median_us'],  # type: ignore[index]
-                          'p99_us': result['engine_tick']['p99_us'],  # type: ignore[index]
-                          'ratio_median': result['ratio_median'],
-                          'compile_ms': result['compile_ms']})
+            for n_levels in levels:
+                skill = compile_skill(generated_skill(urdf, n, m, n_levels))
+                for qp_solver in solvers:
+                    result = bench_skill(skill, np.full(n, 0.3), ticks=ticks,
+                                         qp_solver=qp_solver)
+                    engine = result['engine_tick']
+                    table.append({'joints': n, 'rows': m, 'levels': n_levels,
+                                  'solver': qp_solver,
+                                  'median_us': engine['median_us'],  # type: ignore[index]
+                                  'p99_us': engine['p99_us'],  # type: ignore[index]
+                                  'ratio_median': result['ratio_median'],
+                                  'qp_variables': result['qp_variables'],
+                                  'compile_ms': result['compile_ms']})
     return table
 
 
@@ -195,11 +251,18 @@ def bench_compile(skill_files: list[Path], repeats: int = 5) -> dict[str, float]
 
 
 def run(json_path: Path | None, *, quick: bool = False, scaling: bool = True,
-        extra: dict[str, Callable[[], dict[str, object]]] | None = None) -> dict[str, object]:
-    """Run every benchmark section; write JSON if asked; return the report."""
+        extra: dict[str, Callable[[], dict[str, object]]] | None = None,
+        qp_solver: str = 'quadprog', cells: tuple[tuple[int, int], ...] | None = None
+        ) -> dict[str, object]:
+    """Run every benchmark section; write JSON if asked; return the report.
+
+    ``qp_solver`` is the solver of the example ticks; the scaling table always runs every solver.
+    ``cells`` restricts the scaling table to these (joints, rows) pairs.
+    """
     ticks = 3000 if quick else 20000
     spec = load_skill(EXAMPLE_SKILL)
     skill = compile_skill(spec)
+    two_levels = compile_skill(two_level_example(spec))
     start = np.array([spec.offline.start.get(j, 0.0) for j in skill.joint_names])
     report: dict[str, object] = {
         'machine': {'python': platform.python_version(), 'processor': platform.machine(),
@@ -207,14 +270,19 @@ def run(json_path: Path | None, *, quick: bool = False, scaling: bool = True,
                             'side by side; shared 2-core machine'},
         'targets': {'engine_median_us': 100, 'engine_p99_us': 300, 'ratio_median': 1.5,
                     'scaling_48x200_median_us': 5000, 'compile_ms': 200},
-        'example_tick': bench_skill(skill, start, ticks=ticks),
+        'example_tick': bench_skill(skill, start, ticks=ticks, qp_solver=qp_solver),
+        'example_tick_levels': bench_skill(two_levels, start, ticks=ticks, qp_solver=qp_solver),
         'compile_ms': bench_compile(sorted((CONFIG / 'skills').glob('*.yaml')),
                                     repeats=2 if quick else 5),
     }
     if scaling:
-        report['scaling'] = bench_scaling(Path(json_path).parent / 'bench_chains'
-                                          if json_path else Path('out/bench_chains'),
-                                          ticks=300 if quick else 2000)
+        workdir = Path(json_path).parent / 'bench_chains' if json_path else Path('out/bench_chains')
+        scaling_ticks = 300 if quick else 2000
+        if cells is None:
+            report['scaling'] = bench_scaling(workdir, ticks=scaling_ticks)
+        else:
+            report['scaling'] = [cell for n, m in cells
+                                 for cell in bench_scaling(workdir, (n,), (m,), scaling_ticks)]
     for name, fn in (extra or {}).items():
         report[name] = fn()
     if json_path is not None:
@@ -224,4 +292,4 @@ def run(json_path: Path | None, *, quick: bool = False, scaling: bool = True,
 
 
 __all__ = ['Stats', 'bench_compile', 'bench_scaling', 'bench_skill', 'generated_chain_urdf',
-           'generated_skill', 'run']
+           'generated_skill', 'run', 'two_level_example']

@@ -56,7 +56,7 @@ def plot_simulation(skill: CompiledSkill, trace: Trace, out_dir: Path) -> list[P
     for j, name in enumerate(skill.joint_names):
         axes[0].plot(t, trace.joint_velocity[:, j], label=name)
     axes[0].set_ylabel('joint velocity (rad/s)')
-    axes[0].set_title(f'{skill.spec.name}: commanded velocities')
+    axes[0].set_title(f'{skill.spec.name}: published velocities (after the watchdog)')
     axes[0].grid(True, alpha=0.3)
     axes[0].legend(fontsize=8, ncol=3)
     if skill.n_s:

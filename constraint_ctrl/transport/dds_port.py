@@ -20,11 +20,11 @@ subscription or service callback (guard shared state with a lock). Callbacks onl
 spin() runs. An exception escaping a subscription or timer callback ends spin() and is
 re-raised from it, as an exception in an rclpy callback ends executor.spin(); one escaping a
 service callback (ours or the parameter services) is logged and answered with an error reply
-instead, so a bad request never ends the node.
+instead, so a bad request never ends the node. SIGINT and SIGTERM end spin(); from then until
+shutdown() has finished they are only counted (transport/signals.py).
 """
 from __future__ import annotations
 
-import signal
 import sys
 import threading
 import time
@@ -48,6 +48,7 @@ from constraint_ctrl.transport.dds_services import ServiceClient, ServiceServer
 from constraint_ctrl.transport.dds_types import ros_type_of, types_for
 from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS, ParameterView
 from constraint_ctrl.transport.qos import PROFILES, profile
+from constraint_ctrl.transport.signals import StopSignals
 from constraint_ctrl.transport.ros_args import (node_fqn, node_identity, overrides_for,
                                                 parse_ros_args, resolve_name, topic_dds_name,
                                                 validate_node_name)
@@ -75,6 +76,11 @@ class DdsPublisher:
         self.name = name
         self._type = msg_type
 
+    @property
+    def topic_name(self) -> str:
+        """The fully qualified topic name after remapping, as rclpy's Publisher.topic_name."""
+        return self.name
+
     def publish(self, msg: Any) -> None:
         if not isinstance(msg, self._type):
             text = (f'publisher {self.name}: message is {type(msg).__name__}, expected '
@@ -87,6 +93,11 @@ class DdsSubscription:
     def __init__(self, reader: DataReader, name: str) -> None:
         self.reader = reader
         self.name = name
+
+    @property
+    def topic_name(self) -> str:
+        """The fully qualified topic name after remapping, as rclpy's Subscription.topic_name."""
+        return self.name
 
 
 class DdsPort:
@@ -112,6 +123,7 @@ class DdsPort:
         self._writers: list[DataWriter] = []
         self._timers: list[FixedRateTimer] = []
         self._stop = threading.Event()
+        self._signals = StopSignals(self._stop.set)
         self._failure: tuple[str, BaseException] | None = None
         self._spinning = False
         self._closed = False
@@ -273,7 +285,7 @@ class DdsPort:
         if self._closed:
             msg = f'node {self.fqn}: spin() after shutdown()'
             raise TransportError(msg)
-        previous = self._install_signal_handlers()
+        self._signals.catch()
         self._spinning = True
         self._topic_dispatch.start()
         self._service_dispatch.start()
@@ -288,20 +300,11 @@ class DdsPort:
                 timer.stop()
             self._topic_dispatch.stop()
             self._service_dispatch.stop()
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
+            self._signals.hold()     # a second signal must not cut the shutdown short
         if self._failure is not None:
             label, exc = self._failure
             msg = f'node {self.fqn}: {label} raised {exc!r}'
             raise TransportError(msg) from exc
-
-    def _install_signal_handlers(self) -> dict[int, Any]:
-        if threading.current_thread() is not threading.main_thread():
-            return {}
-        previous = {}
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            previous[sig] = signal.signal(sig, lambda *_: self._stop.set())
-        return previous
 
     def shutdown(self) -> None:
         """From a callback: end spin(). Otherwise: also withdraw the node and close DDS."""
@@ -320,3 +323,4 @@ class DdsPort:
             if left > 0:
                 writer.wait_for_acks(duration(seconds=left))
         delete_entity(self._participant)   # and with it every entity of the node
+        self._signals.release()

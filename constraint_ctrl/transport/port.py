@@ -12,11 +12,16 @@ rclpy offers and names things as rclpy does:
 * callbacks (subscriptions, services, parameter changes, timers) run only while `spin()` runs,
   on threads of the port: the timer has its own thread, so a timer tick may run at the same time
   as a subscription or service callback. Guard shared state with a lock.
-* QoS is chosen by profile name (see qos.py).
+* QoS is chosen by profile name (see qos.py);
+* `port.distro` ('jazzy' or 'humble') names the message layouts and the bag format. On rclpy
+  it is the installed ROS 2's (detect_distro), and a `--distro` that contradicts it is refused:
+  rclpy's messages are the installed ones whatever a flag says. The DDS port has no installed
+  ROS to follow: jazzy unless told otherwise.
 """
 from __future__ import annotations
 
 import importlib.util
+import os
 from collections.abc import Callable
 from dataclasses import dataclass
 from types import SimpleNamespace
@@ -25,6 +30,7 @@ from typing import Any, Protocol
 from constraint_ctrl.errors import TransportError
 
 DISTROS = ('jazzy', 'humble')
+DISTRO_CHOICES = ('auto', *DISTROS)
 TRANSPORTS = ('auto', 'rclpy', 'dds')
 LOG_LEVELS = ('debug', 'info', 'warn', 'error')
 
@@ -40,7 +46,13 @@ class ParameterView:
 
 
 class Publisher(Protocol):
+    topic_name: str   # fully qualified, after remapping (rclpy: Publisher.topic_name)
+
     def publish(self, msg: Any) -> None: ...
+
+
+class Subscription(Protocol):
+    topic_name: str   # fully qualified, after remapping (rclpy: Subscription.topic_name)
 
 
 class Client(Protocol):
@@ -74,7 +86,7 @@ class Port(Protocol):
     def create_publisher(self, msg_type: Any, topic: str, qos: str) -> Publisher: ...
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
-                            qos: str) -> object: ...
+                            qos: str) -> Subscription: ...
 
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> object:
@@ -137,11 +149,64 @@ def _available(module: str) -> bool:
         return False
 
 
+def detect_distro() -> tuple[str, str]:
+    """(distro, how it was found) for the ROS 2 install rclpy loads its messages from.
+
+    sensor_msgs/Range is the one message the nodes use whose layout differs: it has
+    `variance` from Iron on and not in Humble (rosbags' ROS2_HUMBLE and ROS2_JAZZY type
+    stores). ROS_DISTRO (set by the install's setup.bash) must agree with it; a distro other
+    than humble or jazzy runs with the layout family its Range shows.
+    """
+    try:
+        from sensor_msgs.msg import Range
+        fields = set(Range.get_fields_and_field_types())
+    except (ImportError, AttributeError) as exc:
+        msg = (f'cannot tell which ROS 2 is installed: sensor_msgs/Range is not usable ({exc}); '
+               'source /opt/ros/<distro>/setup.bash first')
+        raise TransportError(msg) from None
+    layout = 'jazzy' if 'variance' in fields else 'humble'
+    seen = f"the installed sensor_msgs/Range has {'a' if layout == 'jazzy' else 'no'} `variance`"
+    name = os.environ.get('ROS_DISTRO', '').strip()
+    if not name:
+        return layout, f'ROS_DISTRO is not set; {seen}'
+    if name in DISTROS and name != layout:
+        msg = (f'ROS_DISTRO={name} but {seen} field (the {layout} layout): the sourced '
+               'setup.bash and the Python path belong to different ROS 2 installs; source '
+               'only one of them')
+        raise TransportError(msg)
+    if name in DISTROS:
+        return name, f'ROS_DISTRO={name}; {seen}'
+    return layout, (f'ROS_DISTRO={name} is neither {" nor ".join(DISTROS)}; {seen}, so the '
+                    f'{layout} message layouts and bag format are used')
+
+
+def _choose(transport: str, requested: str) -> tuple[str, str]:
+    if requested not in DISTRO_CHOICES:
+        msg = f'distro {requested!r} is not supported; use one of {", ".join(DISTRO_CHOICES)}'
+        raise TransportError(msg)
+    if transport != 'rclpy':
+        return ('jazzy', 'the default') if requested == 'auto' else (requested, 'as asked')
+    detected, evidence = detect_distro()
+    if requested not in ('auto', detected):
+        msg = (f'--distro {requested} contradicts the installed ROS 2 ({detected}: {evidence}); '
+               'on rclpy the message layouts are those of the installed ROS, so leave '
+               f'--distro out or give --distro {detected}')
+        raise TransportError(msg)
+    return detected, evidence
+
+
+def choose_distro(transport: str, requested: str = 'auto') -> str:
+    """The distro a port on ``transport`` ('rclpy' or 'dds') uses when asked for
+    ``requested`` ('auto', 'jazzy', 'humble'); raises when rclpy's install contradicts it."""
+    return _choose(transport, requested)[0]
+
+
 def open_port(transport: str, node_name: str, argv: list[str], *,
-              distro: str = 'jazzy') -> Port:
-    """Create the node's port. 'auto' picks rclpy when it can be imported, else DDS."""
-    if distro not in DISTROS:
-        msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTROS)}'
+              distro: str = 'auto') -> Port:
+    """Create the node's port. 'auto' picks rclpy when it can be imported, else DDS; the
+    distro follows choose_distro."""
+    if distro not in DISTRO_CHOICES:
+        msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTRO_CHOICES)}'
         raise TransportError(msg)
     if transport not in TRANSPORTS:
         msg = f'transport {transport!r} is unknown; use one of {", ".join(TRANSPORTS)}'
@@ -160,10 +225,13 @@ def open_port(transport: str, node_name: str, argv: list[str], *,
             msg = ("transport 'rclpy' needs a ROS 2 install: source /opt/ros/<distro>/setup.bash "
                    "first, or use transport 'dds'")
             raise TransportError(msg)
+        chosen, evidence = _choose('rclpy', distro)
         from constraint_ctrl.transport.rclpy_port import RclpyPort
-        return RclpyPort(node_name, argv, distro=distro)
+        port = RclpyPort(node_name, argv, distro=chosen)
+        port.log('info', f'ROS 2 message layouts and bag format: {chosen} ({evidence})')
+        return port
     if not _available('cyclonedds'):
         msg = "transport 'dds' needs the Python package 'cyclonedds' (pip install cyclonedds)"
         raise TransportError(msg)
     from constraint_ctrl.transport.dds_port import DdsPort
-    return DdsPort(node_name, argv, distro=distro)
+    return DdsPort(node_name, argv, distro=choose_distro('dds', distro))

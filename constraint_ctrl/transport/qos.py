@@ -5,6 +5,10 @@ port maps the neutral record below onto its own QoS objects. Values follow ROS 2
 (rmw/include/rmw/qos_profiles.h): 'sensor' = sensor_data, 'default' = the default profile,
 'services' = services_default, 'parameters' = parameters and parameter_events. 'status' is
 our own latched profile for late joiners (reliable, keep last 1, transient local).
+'tf' and 'tf_static' are tf2_ros's TransformListener subscriptions (tf2_ros_py
+transform_listener.py, Humble and Jazzy: QoSProfile(depth=100, VOLATILE / TRANSIENT_LOCAL,
+KEEP_LAST), reliable by QoSProfile's default); 'robot_description' is what
+robot_state_publisher offers on that topic (rclcpp::QoS(1).transient_local(), reliable).
 """
 from __future__ import annotations
 
@@ -28,6 +32,9 @@ PROFILES: dict[str, QosProfile] = {
     'status': QosProfile(depth=1, reliable=True, transient_local=True),
     'services': QosProfile(depth=10, reliable=True, transient_local=False),
     'parameters': QosProfile(depth=1000, reliable=True, transient_local=False),
+    'tf': QosProfile(depth=100, reliable=True, transient_local=False),
+    'tf_static': QosProfile(depth=100, reliable=True, transient_local=True),
+    'robot_description': QosProfile(depth=1, reliable=True, transient_local=True),
 }
 
 # Not selectable by nodes: the writer side of rmw_cyclonedds' node-discovery topic.

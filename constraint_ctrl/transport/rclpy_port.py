@@ -15,7 +15,11 @@ project's CI (no ROS install); every call below is one rclpy documents:
 * validator -> add_on_set_parameters_callback returning SetParametersResult; listeners ->
   add_post_set_parameters_callback (Jazzy), or called from the on-set callback after the
   validator accepted (Humble has no post-set callbacks);
-* timers use a steady clock (Clock(clock_type=ClockType.STEADY_TIME)), as the DDS port's do.
+* timers use a steady clock (Clock(clock_type=ClockType.STEADY_TIME)), as the DDS port's do;
+* publishers and subscriptions are rclpy's own: their topic_name property (Humble and Jazzy)
+  is the fully qualified name after remapping;
+* the distro is the installed ROS 2's (port.detect_distro: ROS_DISTRO and the installed
+  sensor_msgs/Range fields), never a flag's.
 
 Additions over plain rclpy, kept identical to the DDS port: declare_parameter adopts a value
 that a launch override already declared (rclpy would raise ParameterAlreadyDeclaredException;
@@ -27,7 +31,6 @@ outside them (Node._apply_floating_point_range) before the validator runs.
 """
 from __future__ import annotations
 
-import signal
 import threading
 import time
 from collections.abc import Callable
@@ -37,6 +40,7 @@ from typing import Any
 from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS
 from constraint_ctrl.transport.qos import profile
+from constraint_ctrl.transport.signals import StopSignals
 
 
 def _types() -> SimpleNamespace:
@@ -153,6 +157,7 @@ class RclpyPort:
         self._on_set_added = False
         self._post_set = hasattr(self.node, 'add_post_set_parameters_callback')  # Jazzy
         self._stop = threading.Event()
+        self._signals = StopSignals(self._stop.set)
         self.spinning = False
         self._closed = False
 
@@ -333,10 +338,7 @@ class RclpyPort:
 
     def spin(self) -> None:
         from rclpy.executors import ExternalShutdownException
-        previous = {}
-        if threading.current_thread() is threading.main_thread():
-            for sig in (signal.SIGINT, signal.SIGTERM):
-                previous[sig] = signal.signal(sig, lambda *_: self._stop.set())
+        self._signals.catch()
         self.spinning = True
         try:
             while not self._stop.is_set() and self._rclpy.ok():
@@ -345,8 +347,7 @@ class RclpyPort:
             pass
         finally:
             self.spinning = False
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
+            self._signals.hold()     # a second signal must not cut the shutdown short
 
     def shutdown(self) -> None:
         """From a callback: end spin(). Otherwise: also destroy the node and rclpy's context."""
@@ -354,6 +355,9 @@ class RclpyPort:
         if self.spinning or self._closed:
             return
         self._closed = True
-        self.executor.shutdown()
-        self.node.destroy_node()
-        self._rclpy.try_shutdown()
+        try:
+            self.executor.shutdown()
+            self.node.destroy_node()
+            self._rclpy.try_shutdown()
+        finally:
+            self._signals.release()

@@ -12,6 +12,7 @@ CORE = ['constraint_ctrl.model.kinematics', 'constraint_ctrl.skill.compile',
         'constraint_ctrl.runtime.loop', 'constraint_ctrl.runtime.library',
         'constraint_ctrl.plan.machine', 'constraint_ctrl.sim.world',
         'constraint_ctrl.tools.check', 'constraint_ctrl.tools.simulate']
+CORE += ['constraint_ctrl.frames.buffer', 'constraint_ctrl.frames.messages']
 
 
 def test_core_imports_neither_rclpy_nor_cyclonedds() -> None:
