@@ -148,6 +148,7 @@ class ControllerNode:
         self._person_problems = ProblemLog(port.log)
         self._js_stamp: float | None = None
         self._js_header = (0, 0)
+        self._answered = (0, 0)   # stamp of the joint_states sample the current tick answers
         self._inputs: dict[str, InputSample] = {}
         self._people: dict[str, PersonSample] = {}
         self._last_tick = 0.0
@@ -349,6 +350,9 @@ class ControllerNode:
 
     def _snapshot(self) -> Snapshot:
         with self._lock:
+            # the command of this tick answers the latest sample in this snapshot, not one that
+            # arrives while the tick runs
+            self._answered = self._js_header
             seen = all(self._seen)
             q = np.array(self._q) if seen else None
             missing = [] if seen else [j for j, s in zip(self.model.joint_names, self._seen)
@@ -396,7 +400,7 @@ class ControllerNode:
                                                                  size=n, stride=n)],
                                       data_offset=0),
             data=data)
-        sec, nanosec = self._js_header
+        sec, nanosec = self._answered
         joint = t.JointState(header=t.Header(stamp=t.Time(sec=int(sec), nanosec=int(nanosec)),
                                              frame_id=''),
                              name=list(self.joint_names), position=[], velocity=data, effort=[])

@@ -169,3 +169,32 @@ def test_person_positions_in_an_unusable_frame_are_logged_once_per_source(
         assert h.status_values()['person_samples_ignored'] == '400'
     finally:
         h.close()
+
+
+def test_joint_command_is_stamped_with_the_sample_the_tick_used(node: NodeHarness) -> None:
+    """~/joint_command carries the stamp of the joint_states sample its command answers: one
+    arriving while the tick computes belongs to the next tick (found as 'moved on a stale person
+    source' by the process-level fault test under load)."""
+    run_fresh(node)
+    t = node.t
+
+    def sample(sec: int) -> object:
+        return t.JointState(header=t.Header(stamp=t.Time(sec=sec, nanosec=0), frame_id=''),
+                            name=JOINTS, position=node.q.tolist(), velocity=[], effort=[])
+    node.node._on_joint_states(sample(1000))
+    step = node.node.loop.step
+
+    def step_with_a_late_sample(snap):  # noqa: ANN001, ANN202
+        node.node._on_joint_states(sample(2000))     # arrives during the tick
+        return step(snap)
+    node.node.loop.step = step_with_a_late_sample
+    sent: list[object] = []
+    pub = node.node._pub_joint_command
+    original = pub.publish
+    pub.publish = sent.append
+    try:
+        node.node._tick()
+    finally:
+        pub.publish = original
+        node.node.loop.step = step
+    assert [m.header.stamp.sec for m in sent] == [1000]
