@@ -117,7 +117,9 @@ class ControllerNode:
         for line in report.log_lines():   # one failed file per line
             port.log('info' if report.ok else 'warn', f'skills: {line}')
         self.loop = ControlLoop(self.library, self.watchdog, self.dt, person_sources=sources)
-        self._switch_timeout = max(1.0, 20 * self.dt)
+        # how long a switch request waits for its first tick (below the 5 s our sequencer
+        # allows for the reply); one not taken by then is withdrawn
+        self._switch_timeout = max(3.0, 20 * self.dt)
         self._initial = str(declare('initial_skill', '', 'skill to activate at start',
                                     read_only=True).value)
         declare('activate_skill', '', 'write-only (reads back empty): setting it activates that '

@@ -132,13 +132,31 @@ class ControlLoop:
             self._replace = request
         return self._wait(request, timeout)
 
-    @staticmethod
-    def _wait(request: _Request, timeout: float | None) -> tuple[bool, str]:
+    def _wait(self, request: _Request, timeout: float | None) -> tuple[bool, str]:
+        """The outcome of ``request``; one that no tick took within ``timeout`` is withdrawn,
+        so a refused request never switches later."""
         if timeout is None:
             return True, 'requested'
-        if not request.done.wait(timeout):
-            return False, f'no control tick within {timeout:.3f} s (is the controller running?)'
-        return request.ok, request.message
+        if request.done.wait(timeout):
+            return request.ok, request.message
+        with self._lock:
+            withdrawn = self._switch is request or self._replace is request
+            if self._switch is request:
+                self._switch = None
+            if self._replace is request:
+                self._replace = None
+        if withdrawn:
+            return False, (f'no control tick within {timeout:.3f} s (is the controller '
+                           'running?); nothing was switched')
+        # a tick has taken it meanwhile: its outcome comes at the end of that tick
+        if request.done.wait(max(timeout, 1.0)):
+            return request.ok, request.message
+        return False, 'the tick that took the request did not finish it'
+
+    def _abandon(self, requests: tuple[_Request | None, ...], exc: BaseException) -> None:
+        for request in requests:
+            if request is not None and not request.done.is_set():
+                request.finish(False, f'the tick failed: {exc!r}')
 
     def set_parameters(self, skill: str, values: Mapping[str, float]) -> None:
         """Queue tunable values by name (already validated) for the next tick boundary."""
@@ -151,6 +169,16 @@ class ControlLoop:
             request, self._switch = self._switch, None
             replace, self._replace = self._replace, None
             params, self._params = self._params, []
+        if request is None and replace is None:
+            return self._step(snap, params, None, None)
+        try:
+            return self._step(snap, params, request, replace)
+        except BaseException as exc:   # whoever waits must not wait for an answer forever
+            self._abandon((request, replace), exc)
+            raise
+
+    def _step(self, snap: Snapshot, params: list[tuple[str, str, float]],
+              request: _Request | None, replace: _Request | None) -> LoopOutput:
         for skill, name, value in params:
             loaded = self.library.get(skill)
             if loaded is not None:
