@@ -34,6 +34,7 @@ JOINTS = [f'joint_{i}' for i in range(1, 7)]
 def bench_end_to_end(duration: float = 60.0, rate_hz: float = 1000.0,
                      activations: int = 20) -> dict[str, Any]:
     import json
+    import shutil
     import tempfile
     from pathlib import Path
 
@@ -126,12 +127,15 @@ def bench_end_to_end(duration: float = 60.0, rate_hz: float = 1000.0,
             proc.wait(10)
         except subprocess.TimeoutExpired:
             proc.kill()
-    if stats_file.exists():
-        node = json.loads(stats_file.read_text())
-        result['latency_us'] = node['latency_us']
-        result['activation']['node_ticks'] = node['switch_delay_ticks']
-        result['node_ticks'] = node['ticks']
-        result['node_timer_missed'] = node['timer_missed']
+    try:
+        if stats_file.exists():
+            node = json.loads(stats_file.read_text())
+            result['latency_us'] = node['latency_us']
+            result['activation']['node_ticks'] = node['switch_delay_ticks']
+            result['node_ticks'] = node['ticks']
+            result['node_timer_missed'] = node['timer_missed']
+    finally:
+        shutil.rmtree(stats_file.parent, ignore_errors=True)   # our temporary folder
     result['targets'] = {'latency_p99_us': 1000, 'missed_percent': 0.1, 'activation_ticks': 2}
     return result
 
