@@ -39,7 +39,7 @@ setup(
         'tqdm>=4.60',
     ],
     extras_require={
-        'test': ['pytest>=7', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6', 'pytransform3d>=3'],
+        'test': ['pytest>=7.3', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6', 'pytransform3d>=3'],
     },
     tests_require=['pytest'],
     zip_safe=False,

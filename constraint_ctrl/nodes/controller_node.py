@@ -13,14 +13,27 @@ ControlLoop. Interface (names relative to the node, default node name constraint
 - serves ~/skills/<skill>/activate and ~/reload_skills (std_srvs/Trigger) and the standard
   parameter services; each skill's tunables are parameters <skill>.<tunable>.
 
+Joint states are judged per joint: a valid sample refreshes exactly the model joints it names,
+and every joint must be fresh for the watchdog to let the arm move; malformed samples are
+rejected whole, counted in ~/status and logged once (see _on_joint_states).
+
+Parameters: only tunables (with their ranges in the descriptors), watchdog.reduced_mode and the
+write-only activate_skill change anything at run time; everything else is refused with a
+reason. What is read back is always the value in force (refused launch values are replaced by
+the file's value). Activation replies come after the new skill's first tick with its outcome.
+A reload keeps values set at run time, undeclares removed skills' parameters and switches the
+running skill to its reloaded version at a tick boundary (see _on_reload).
+
 Threads: the control tick runs on the port's timer thread (or on the joint_states callback with
 tick_on = joint_states); callbacks only store the latest samples under a lock. Any exception in
-a tick publishes a zero command; so does shutdown.
+a tick publishes a zero command; so does shutdown. An exception in a service or parameter
+callback is an error reply and a log line, never an exit.
 """
 from __future__ import annotations
 
 import argparse
 import json
+import math
 import sys
 import threading
 import time
@@ -40,8 +53,9 @@ from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
 from ..transport.port import RECEIVE_THREADS
 from .common import config_dir, serve, split_ros_args, transport_options
-from .inputs import TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
-    parse_input_mappings
+from ..problem_log import ProblemLog
+from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
+    joint_sample_problem, parse_input_mappings
 from .status import StatusWorker, build_status
 
 NODE_NAME = 'constraint_controller'
@@ -50,6 +64,12 @@ SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Pytho
 STARTUP_PARAMETERS = ('robot_description_file', 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
                       'people.sources', 'people.timeout')
+#: Names of the node's own parameters and parameter groups (and those rclpy declares on every
+#: node): a skill named like one would mix its tunables into them, so it is refused at load.
+NODE_PARAMETER_GROUPS = tuple(sorted(
+    {n.split('.')[0] for n in STARTUP_PARAMETERS}
+    | {'inputs', 'watchdog', 'activate_skill', 'use_sim_time', 'qos_overrides',
+       'start_type_description_service'}))
 
 
 class ControllerNode:
@@ -100,24 +120,46 @@ class ControllerNode:
                                        {s: person_timeout for s in sources})
         folder = Path(str(declare('skills_folder', str(cfg / 'skills'),
                                   'folder of skill files', read_only=True).value))
-        self.library = SkillLibrary(folder, self.model.joint_names)
+        self.library = SkillLibrary(folder, self.model.joint_names,
+                                    reserved=NODE_PARAMETER_GROUPS)
         report = self.library.reload()
         for line in report.log_lines():   # one failed file per line
             port.log('info' if report.ok else 'warn', f'skills: {line}')
         self.loop = ControlLoop(self.library, self.watchdog, self.dt, person_sources=sources)
+        # how long a switch request waits for its first tick (below the 5 s our sequencer
+        # allows for the reply); one not taken by then is withdrawn
+        self._switch_timeout = max(3.0, 20 * self.dt)
         self._initial = str(declare('initial_skill', '', 'skill to activate at start',
                                     read_only=True).value)
-        declare('activate_skill', '', 'write-only: setting it activates that skill at the next '
-                'tick, together with the tunables set in the same (atomic) call')
-        self.mappings = parse_input_mappings(
-            {k: v.value for k, v in port.get_parameters_by_prefix('inputs').items()})
+        declare('activate_skill', '', 'write-only (reads back empty): setting it activates that '
+                'skill, together with its tunables set in the same (atomic) call; the reply '
+                'comes after the first tick of the new skill, with its outcome')
+        inputs = port.get_parameters_by_prefix('inputs')
+        self.mappings = parse_input_mappings({k: v.value for k, v in inputs.items()})
+        for key, param in inputs.items():   # mapped at start-up only: read-only from now on
+            declare(f'inputs.{key}', param.value, 'skill input mapping (read at start-up)',
+                    read_only=True)
+        self._declaring: set[str] = set()      # parameters the node is (re)declaring now
+        self._user_set: set[str] = set()       # tunables set at launch or at run time
+        self._declared: dict[str, list[str]] = {}   # skill -> its declared tunables
+        self._switched_with: set[str] = set()  # applied with the last activate_skill switch
+        self._reload_values: dict[str, dict[str, float]] = {}
+        self._reload_notes: list[str] = []
+        self._param_problems = ProblemLog(port.log)
 
         # latest samples (guarded by self._lock)
         n = self.model.n_joints
-        self._q = np.full(n, np.nan)
-        self._seen = np.zeros(n, dtype=bool)
+        # per model joint (plain lists: a sample writes a few items, a tick copies them once)
+        self._q = [math.nan] * n
+        self._seen = [False] * n
+        self._joint_stamps = [math.nan] * n       # each joint's last valid update (monotonic s)
+        self._js_plans: dict[tuple[str, ...], list[tuple[int, int]]] = {}
+        self._js_rejected = 0
+        self._js_problems = ProblemLog(port.log)
+        self._person_problems = ProblemLog(port.log)
         self._js_stamp: float | None = None
         self._js_header = (0, 0)
+        self._answered = (0, 0)   # stamp of the joint_states sample the current tick answers
         self._inputs: dict[str, InputSample] = {}
         self._people: dict[str, PersonSample] = {}
         self._last_tick = 0.0
@@ -148,7 +190,8 @@ class ControllerNode:
         for source in sources:
             self._subscribe(t.PointStamped, source, self._person_callback(source))
         self._services: dict[str, object] = {}
-        port.create_service(t.Trigger, '~/reload_skills', self._on_reload)
+        port.create_service(t.Trigger, '~/reload_skills',
+                            self._guarded('~/reload_skills', self._on_reload))
         for name in self.library.names():
             self._add_skill(name)
         port.set_parameter_validator(self._validate_parameters)
@@ -229,28 +272,67 @@ class ControllerNode:
                             time.monotonic())
 
     def _on_joint_states(self, msg: Any) -> None:
+        """Per joint: a valid sample refreshes exactly the model joints it names.
+
+        A sample is checked whole first (size bound, lengths, duplicates, non-finite values) and
+        rejected whole on any problem; it is counted and logged once (ProblemLog). A rejected
+        sample that names model joints also invalidates them (their data can no longer be
+        trusted), so the watchdog stops at once rather than after the timeout. Samples that
+        carry none of the model's joints (a gripper's) refresh nothing.
+        """
         arrived = time.perf_counter_ns()
         if self.realtime is not None:
             self._enter_realtime()
-        names = list(msg.name)
-        positions = list(msg.position)
-        if len(positions) != len(names):
-            return  # malformed: never move on it (the stale timeout will stop the arm)
-        stamp = self._stamp(msg.header)
-        with self._lock:
-            for name, value in zip(names, positions):
-                i = self._joint_index.get(name)
-                if i is not None:
-                    self._q[i] = value
-                    self._seen[i] = True
-            self._js_stamp = stamp
-            self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
-        if self.tick_on == 'joint_states':
+        names = msg.name
+        positions = msg.position
+        key = tuple(names) if len(names) <= MAX_JOINT_NAMES else None
+        plan = self._js_plans.get(key) if key is not None else None
+        problem = joint_sample_problem(names, positions, names_checked=plan is not None)
+        if problem is not None:
+            self._reject_joint_states(problem, names)
+            return
+        if plan is None:
+            # (sample position, model joint) pairs of this name list, cached: publishers repeat
+            # the same names every sample (a few lists per cell: arm, gripper, ...)
+            index = self._joint_index
+            plan = [(k, index[name]) for k, name in enumerate(names) if name in index]
+            if len(self._js_plans) >= 16:
+                self._js_plans.clear()
+            self._js_plans[key] = plan            # type: ignore[index]
+        if plan:
+            stamp = self._stamp(msg.header)
+            with self._lock:
+                q, stamps, seen = self._q, self._joint_stamps, self._seen
+                for k, i in plan:
+                    q[i] = positions[k]
+                    stamps[i] = stamp
+                    seen[i] = True
+                self._js_stamp = stamp
+                self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
+        self._js_problems.ok('joint_states', 'valid samples again')
+        if plan and self.tick_on == 'joint_states':
             self._arrived_ns = arrived
             self._tick()
             # the fallback timer stands in only when samples stop: on rclpy each timer call
             # costs an executor wake-up, so it restarts its period after every sample's tick
             self.timer.reset()
+
+    def _reject_joint_states(self, problem: tuple[str, str], names: Any) -> None:
+        kind, detail = problem
+        invalidated: set[str] = set()
+        if kind != 'too many names':
+            index = self._joint_index
+            with self._lock:
+                for name in names:
+                    i = index.get(name)
+                    if i is not None:
+                        self._joint_stamps[i] = math.nan
+                        invalidated.add(name)
+        self._js_rejected += 1
+        if invalidated:
+            detail += (f'; it named joints {", ".join(sorted(invalidated)[:6])}, which count '
+                       'as stale until a valid sample')
+        self._js_problems.problem('joint_states', f'sample rejected ({kind})', detail)
 
     def _input_callback(self, mapping: InputMapping) -> Any:
         def callback(msg: Any) -> None:
@@ -264,12 +346,19 @@ class ControllerNode:
         return callback
 
     def _person_callback(self, source: str) -> Any:
+        problems = self._person_problems
+        expected = ('', self.base_frame)
+
         def callback(msg: Any) -> None:
             frame = msg.header.frame_id
-            if frame not in ('', self.base_frame):
-                self.port.log('warn', f'{source}: person position in frame {frame!r}, expected '
-                              f'{self.base_frame!r}; ignored (no transform lookup here)')
+            if frame not in expected:
+                # counted and logged once per source (and once when it stops), not per message;
+                # the source goes stale, which the watchdog treats as a person anywhere
+                problems.problem(source, 'person positions in an unusable frame',
+                                 f'frame {frame!r}, expected {self.base_frame!r}; ignored (no '
+                                 'transform lookup here)')
                 return
+            problems.ok(source, f'person positions in {self.base_frame!r} again')
             point = np.array([msg.point.x, msg.point.y, msg.point.z], dtype=float)
             with self._lock:
                 self._people[source] = PersonSample(source, point, self._stamp(msg.header))
@@ -284,13 +373,17 @@ class ControllerNode:
 
     def _snapshot(self) -> Snapshot:
         with self._lock:
-            seen = self._seen.all()
-            q = self._q.copy() if seen else None
+            # the command of this tick answers the latest sample in this snapshot, not one that
+            # arrives while the tick runs
+            self._answered = self._js_header
+            seen = all(self._seen)
+            q = np.array(self._q) if seen else None
             missing = [] if seen else [j for j, s in zip(self.model.joint_names, self._seen)
                                        if not s]
             return Snapshot(now=time.monotonic(), q=q, joint_state_stamp=self._js_stamp,
                             inputs=dict(self._inputs), people=dict(self._people),
-                            missing_joints=missing if self._js_stamp is not None else [])
+                            missing_joints=missing if self._js_stamp is not None else [],
+                            joint_stamps=np.array(self._joint_stamps))
 
     def _enter_realtime(self, below: int = 0) -> None:
         """SCHED_FIFO for the thread that calls (once per thread, then one set lookup)."""
@@ -350,7 +443,7 @@ class ControllerNode:
         array.data = data
         joint.velocity = data
         stamp = joint.header.stamp
-        sec, nanosec = self._js_header
+        sec, nanosec = self._answered
         stamp.sec, stamp.nanosec = int(sec), int(nanosec)
         return array, joint
 
@@ -387,6 +480,9 @@ class ControllerNode:
         faults = self.port.faults().values()
         extra = {'missed_ticks': str(getattr(self.timer, 'missed', 0)),
                  'tick_errors': str(self._errors),
+                 'joint_states_rejected': str(self._js_rejected),
+                 'joint_states_last_rejection': self._js_problems.last_reason,
+                 'person_samples_ignored': str(self._person_problems.total),
                  'recorder': recorder.state if recorder is not None else 'off',
                  'recorder_written': str(recorder.written if recorder is not None else 0),
                  'recorder_dropped': str((recorder.dropped if recorder is not None else 0)
@@ -399,20 +495,80 @@ class ControllerNode:
         self._publish(self._pub_status, '~/status', msg)
 
     # ------------------------------------------------------------- skills
+    def _guarded(self, what: str, handler: Any) -> Any:
+        """A Trigger handler whose exceptions become an error reply and a log line (on rclpy
+        an exception escaping a service callback would end spin(), i.e. the node)."""
+        def callback(request: Any, response: Any) -> Any:
+            try:
+                return handler(request, response)
+            except Exception as exc:  # noqa: BLE001 - never an exit because of one request
+                self.port.log('error', f'{what} failed; answered with an error reply:\n'
+                              + traceback.format_exc())
+                response.success, response.message = False, f'internal error: {exc!r}'
+                return response
+        return callback
+
     def _add_skill(self, name: str) -> None:
+        """Declare a new (or re-added) skill's tunables, adopting launch values that are valid,
+        and create its activation service."""
         loaded = self.library.get(name)
         assert loaded is not None
-        for info in loaded.compiled.params:
-            param = f'{name}.{info.name}'
-            value = float(self.port.declare_parameter(
-                param, float(info.value), f'{info.description} [{info.unit}]'.strip()).value)
-            problem = info.check(value)
-            if problem:
-                self.port.log('warn', f'parameter {param}: {problem}; keeping {info.value}')
-            elif value != info.value:
-                self.loop.set_parameters(name, {loaded.compiled.param_index(info.name): value})
-        self._services[name] = self.port.create_service(
-            self.port.types.Trigger, f'~/skills/{name}/activate', self._activate_callback(name))
+        declared = []
+        for index, info in enumerate(loaded.compiled.params):
+            value = self._declare_tunable(name, info)
+            declared.append(info.name)
+            if value != info.value:
+                loaded.runner.solver.set_param(index, value)
+        self._declared[name] = declared
+        if name not in self._services:
+            self._services[name] = self.port.create_service(
+                self.port.types.Trigger, f'~/skills/{name}/activate',
+                self._guarded(f'~/skills/{name}/activate', self._activate_callback(name)))
+
+    def _declare_tunable(self, skill: str, info: Any, in_force: float | None = None) -> float:
+        """Declare ``<skill>.<tunable>`` with its range and description; return the value in
+        force. With ``in_force`` (a reload) that value is declared, any launch value ignored.
+        Otherwise a launch value is adopted if valid; a refused one does not stay in the
+        parameter: it is declared again with the file's value, and that is logged once.
+        """
+        name = f'{skill}.{info.name}'
+        unit = f' [{info.unit}]' if info.unit else ''
+        description = f'{info.description}{unit}'.strip() or f'tunable {info.name} of {skill}'
+        value_range = (float(info.lower), float(info.upper))
+        declare = self.port.declare_parameter
+        self._declaring.add(name)
+        try:
+            if in_force is not None:
+                self._undeclare(name)
+                declare(name, float(in_force), description, value_range=value_range,
+                        ignore_override=True)
+                return float(in_force)
+            try:
+                got = declare(name, float(info.value), description,
+                              value_range=value_range).value
+                problem = (info.check(float(got)) if isinstance(got, float)
+                           else f'{info.name} must be a double (write 1.0, not 1), got {got!r}')
+            except TransportError as err:
+                got, problem = None, str(err)
+            if problem is None:
+                if got != info.value:
+                    self._user_set.add(name)
+                return float(got)
+            self._undeclare(name)
+            declare(name, float(info.value), description, value_range=value_range,
+                    ignore_override=True)
+            self._param_problems.problem(
+                name, 'launch value refused',
+                f'{problem}; the value in force (and read back) is the file\'s {info.value}')
+            return float(info.value)
+        finally:
+            self._declaring.discard(name)
+
+    def _undeclare(self, name: str) -> None:
+        try:
+            self.port.undeclare_parameter(name)
+        except TransportError:
+            pass                         # not declared (or read-only: not one of ours)
 
     def _activate_callback(self, name: str) -> Any:
         def callback(request: Any, response: Any) -> Any:
@@ -420,7 +576,7 @@ class ControllerNode:
             if problem:
                 response.success, response.message = False, problem
                 return response
-            ok, message = self.loop.request_activation(name, timeout=max(1.0, 20 * self.dt))
+            ok, message = self.loop.request_activation(name, timeout=self._switch_timeout)
             response.success, response.message = ok, message
             return response
         return callback
@@ -436,38 +592,82 @@ class ControllerNode:
         return None
 
     def _on_reload(self, request: Any, response: Any) -> Any:
-        before = set(self._services)
-        report = self.library.reload()
-        for name in report.added:
-            if name not in before:
-                self._add_skill(name)
-        for name in report.changed:
-            self._reapply_parameters(name)
+        """Reload the skills folder off the control thread.
+
+        Removed skills lose their parameters and service (the running one stays until another
+        skill is active); new ones are declared; a changed file keeps every value set at run
+        time that is still valid for it (others: the file's value, said in the reply), and if
+        it is the running skill, the controller switches to the new version at a tick boundary
+        and the reply says how (continued or restarted) or why not.
+        """
+        active = self.loop.active
+        running = active.name if active is not None else None
+        self._reload_values, self._reload_notes = {}, []
+        report = self.library.reload(prepare=self._prepare_reloaded,
+                                     keep=(running,) if running else ())
+        report.notes.extend(self._reload_notes)
+        ok = report.ok
         for name in report.removed:
+            for param in self._declared.pop(name, []):
+                self._undeclare(f'{name}.{param}')
+                self._user_set.discard(f'{name}.{param}')
             handle = self._services.pop(name, None)
             if handle is not None:
                 self.port.destroy_service(handle)
-        response.success = report.ok
+        for name in report.added:
+            self._add_skill(name)
+        for name in report.changed:
+            values = self._reload_values.pop(name, None)
+            if values is None:            # renamed in place: a new name for this node
+                self._add_skill(name)
+                continue
+            for param in set(self._declared.get(name, [])) - set(values):
+                self._undeclare(f'{name}.{param}')
+                self._user_set.discard(f'{name}.{param}')
+            loaded = self.library.get(name)
+            assert loaded is not None
+            for info in loaded.compiled.params:
+                self._declare_tunable(name, info, in_force=values[info.name])
+            self._declared[name] = list(values)
+        if running is not None and running in report.changed:
+            switched, message = self.loop.request_reload_switch(running, self._switch_timeout)
+            report.notes.append(message)
+            ok = ok and switched
+        response.success = ok
         response.message = report.summary()
         for line in report.log_lines():   # one failed file per line
-            self.port.log('info' if report.ok else 'warn', f'reload: {line}')
+            self.port.log('info' if ok else 'warn', f'reload: {line}')
         return response
 
-    def _reapply_parameters(self, name: str) -> None:
-        """A changed file keeps the values set on the node (declared parameters win)."""
-        loaded = self.library.get(name)
-        assert loaded is not None
-        values = {}
-        for info in loaded.compiled.params:
-            try:
-                value = float(self.port.get_parameter(f'{name}.{info.name}').value)
-            except Exception:  # noqa: BLE001 - a new tunable: declare it
-                self.port.declare_parameter(f'{name}.{info.name}', float(info.value),
-                                            info.description)
-                continue
-            if info.check(value) is None:
-                values[loaded.compiled.param_index(info.name)] = value
-        loaded.runner.solver.p[list(values)] = list(values.values())
+    def _prepare_reloaded(self, new: Any, old: Any) -> None:
+        """Before a changed file becomes visible: give its runner the values in force.
+
+        A value set at run time (or at launch) carries over when the reloaded file still
+        accepts it; every other tunable takes the reloaded file's value.
+        """
+        if old is None:
+            return
+        skill = new.name
+        values: dict[str, float] = {}
+        for index, info in enumerate(new.compiled.params):
+            name = f'{skill}.{info.name}'
+            value = float(info.value)
+            if name in self._user_set:
+                try:
+                    current = float(self.port.get_parameter(name).value)
+                except (TransportError, TypeError, ValueError):
+                    current = value
+                problem = info.check(current)
+                if problem is None:
+                    value = current
+                else:
+                    self._user_set.discard(name)
+                    self._reload_notes.append(f'{name}: the value set at run time is not valid '
+                                              f'for the reloaded file ({problem}); the file\'s '
+                                              f'{info.value} is in force')
+            new.runner.solver.set_param(index, value)
+            values[info.name] = value
+        self._reload_values[skill] = values
 
     # ---------------------------------------------------------- parameters
     def _tunable(self, name: str) -> tuple[str, Any, str] | None:
@@ -476,8 +676,27 @@ class ControllerNode:
         loaded = self.library.get(skill) if rest else None
         return (skill, loaded, rest) if loaded is not None else None
 
+    def _not_settable(self, name: str) -> str:
+        """Why a parameter that is not a run-time parameter of this node cannot be set."""
+        if name in STARTUP_PARAMETERS or name.startswith('watchdog.'):
+            return f'{name} is read at start-up only; restart the node to change it'
+        if name.startswith('inputs.'):
+            return (f'{name}: input topics are mapped at start-up only; restart the node to '
+                    'change them')
+        if name == 'use_sim_time':
+            return ('use_sim_time cannot change at run time: the controller ticks on the '
+                    'monotonic clock and does not follow simulated time')
+        return (f'{name} has no effect on this node at run time (run-time parameters: '
+                '<skill>.<tunable>, activate_skill, watchdog.reduced_mode)')
+
     def _validate_parameters(self, values: dict[str, Any]) -> tuple[bool, str]:
+        """Check every value; then, if activate_skill is set, switch (with that skill's
+        tunables from the same call) and answer with the outcome of its first tick: a failed
+        switch rejects the whole call, so what is read back is what is in force."""
+        target = None
         for name, value in values.items():
+            if name in self._declaring:
+                continue                  # declared by the node itself, checked there
             if name == 'activate_skill':
                 if not isinstance(value, str):
                     return False, f'activate_skill must be a skill name, got {value!r}'
@@ -485,52 +704,62 @@ class ControllerNode:
                     problem = self._cannot_activate(value)
                     if problem:
                         return False, problem
+                    target = value
                 continue
-            if name in STARTUP_PARAMETERS or (name.startswith('watchdog.')
-                                              and name != 'watchdog.reduced_mode'):
-                return False, f'{name} is read at start-up only; restart the node to change it'
             if name == 'watchdog.reduced_mode':
                 if not isinstance(value, bool):
                     return False, f'{name} must be true or false, got {value!r}'
                 continue
             found = self._tunable(name)
             if found is None:
-                continue
+                return False, self._not_settable(name)
             skill, loaded, param = found
             try:
                 info = loaded.compiled.params[loaded.compiled.param_index(param)]
             except KeyError:
                 return False, f'skill {skill!r} has no tunable {param!r}'
-            if isinstance(value, bool) or not isinstance(value, (int, float)):
-                return False, f'{name} must be a number, got {value!r}'
-            problem = info.check(float(value))
+            if not isinstance(value, float):
+                return False, f'{name} must be a double (write 1.0, not 1), got {value!r}'
+            problem = info.check(value)
             if problem:
                 return False, f'{skill}.{problem}'
+        if target is None:
+            return True, ''
+        prefix = f'{target}.'
+        changes = {n[len(prefix):]: float(v) for n, v in values.items()
+                   if n.startswith(prefix) and n not in self._declaring}
+        ok, message = self.loop.request_activation(target, timeout=self._switch_timeout,
+                                                   params=changes)
+        self.port.log('info' if ok else 'warn', f'activate_skill {target}: {message}')
+        if not ok:
+            return False, f'activate_skill {target}: {message}'
+        self._switched_with = {prefix + n for n in changes} | {'activate_skill'}
         return True, ''
 
     def _apply_parameters(self, values: dict[str, Any]) -> None:
-        per_skill: dict[str, dict[int, float]] = {}
-        target = values.get('activate_skill') or None
+        switched, self._switched_with = self._switched_with, set()
+        per_skill: dict[str, dict[str, float]] = {}
         for name, value in values.items():
+            if name in self._declaring or name == 'activate_skill':
+                continue
             if name == 'watchdog.reduced_mode':
                 self.watchdog.set_reduced_mode(bool(value))
                 continue
             found = self._tunable(name)
             if found is None:
                 continue
-            skill, loaded, param = found
-            per_skill.setdefault(skill, {})[loaded.compiled.param_index(param)] = float(value)
-        if target is not None:
-            # tunables of the skill being activated go in with the switch, in one tick
-            changes = per_skill.pop(target, {})
-            for skill, other in per_skill.items():
-                self.loop.set_parameters(skill, other)
-            ok, message = self.loop.request_activation(target, timeout=max(1.0, 20 * self.dt),
-                                                       params=changes)
-            self.port.log('info' if ok else 'warn', f'activate_skill {target}: {message}')
-            return
+            self._user_set.add(name)
+            if name in switched:
+                continue                  # already applied with the switch, in its tick
+            skill, _, param = found
+            per_skill.setdefault(skill, {})[param] = float(value)
         for skill, changes in per_skill.items():
             self.loop.set_parameters(skill, changes)
+        if 'activate_skill' in switched and values.get('activate_skill'):
+            # write-only: once the switch is done, reading it gives '' again
+            ok, reason = self.port.set_parameter('activate_skill', '')
+            if not ok:
+                self.port.log('warn', f'activate_skill could not be cleared: {reason}')
 
     def stats(self) -> dict[str, Any]:
         """Measured on the node's monotonic clock: latency sample arrival -> command published
@@ -609,4 +838,4 @@ def main(argv: list[str] | None = None) -> int:
     return report_errors(run, list(sys.argv[1:] if argv is None else argv))
 
 
-__all__ = ['ControllerNode', 'NODE_NAME', 'main', 'run']
+__all__ = ['ControllerNode', 'NODE_NAME', 'NODE_PARAMETER_GROUPS', 'main', 'run']

@@ -8,6 +8,10 @@ parameters file:
       tool_force_z: {topic: /wrist/wrench, type: geometry_msgs/msg/WrenchStamped,
                      field: wrench.force.z, scale: 1.0}
 
+Joint states: each sample is checked whole before any of it is used (``joint_sample_problem``):
+more names than MAX_JOINT_NAMES, a name/position length mismatch, duplicate names or a
+non-finite position reject the whole sample.
+
 Stamps: a message's header stamp (ROS time) is turned into the controller's monotonic clock by
 its age at arrival, so staleness is judged from capture time, not receive time; a stamp from the
 future (clock skew beyond FUTURE_TOLERANCE) or an unset stamp falls back to the receive time.
@@ -15,6 +19,7 @@ future (clock skew beyond FUTURE_TOLERANCE) or an unset stamp falls back to the 
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -36,6 +41,12 @@ TYPE_ATTRIBUTE = {
 }
 #: How far in the future (s) a header stamp may be before it is not trusted.
 FUTURE_TOLERANCE = 0.005
+#: Most names a joint_states sample may carry; a larger one is rejected before any per-name
+#: work (a real robot has tens of joints; 10,000 bounds the work a hostile sample can cause).
+MAX_JOINT_NAMES = 10_000
+#: The kinds of joint_states samples that are rejected whole.
+JOINT_SAMPLE_PROBLEMS = ('too many names', 'length mismatch', 'duplicate names',
+                         'non-finite position')
 
 
 @dataclass(frozen=True, slots=True)
@@ -103,6 +114,33 @@ def check_field(mapping: InputMapping, sample: Any) -> None:
         raise TransportError(msg) from None
 
 
+def joint_sample_problem(names: Sequence[str], positions: Sequence[float], *,
+                         names_checked: bool = False) -> tuple[str, str] | None:
+    """(kind, detail) of the reason a joint_states sample must be rejected whole, or None.
+
+    ``kind`` is one of JOINT_SAMPLE_PROBLEMS (stable, for counting and logging once); ``detail``
+    names the values. The checks are ordered by cost and the size bound comes first, so a huge
+    sample costs O(1) here. ``names_checked``: this exact name list passed before (no
+    duplicates), so only lengths and values are checked. Velocity and effort are not read by
+    the controller and not checked.
+    """
+    n = len(names)
+    if n > MAX_JOINT_NAMES:
+        return 'too many names', f'{n} joint names, more than the {MAX_JOINT_NAMES} accepted'
+    if len(positions) != n:
+        return 'length mismatch', f'{n} joint names but {len(positions)} positions'
+    if not names_checked and len(set(names)) != n:
+        seen: set[str] = set()
+        dups = sorted({x for x in names if x in seen or seen.add(x)})  # type: ignore[func-returns-value]
+        return 'duplicate names', f'duplicate joint names {dups[:5]}'
+    # one sum is finite for finite values (it overflows only beyond ~1e308: then look closer)
+    if not math.isfinite(sum(positions)) and \
+            not all(map(math.isfinite, positions)):
+        bad = next(i for i, v in enumerate(positions) if not math.isfinite(v))
+        return 'non-finite position', f'position of {names[bad]!r} is {positions[bad]!r}'
+    return None
+
+
 def capture_time(stamp_sec: int, stamp_nanosec: int, recv_ros_ns: int, recv_mono: float) -> float:
     """The sample's capture time on the monotonic clock (s), from its header stamp."""
     stamp_ns = int(stamp_sec) * 1_000_000_000 + int(stamp_nanosec)
@@ -114,5 +152,5 @@ def capture_time(stamp_sec: int, stamp_nanosec: int, recv_ros_ns: int, recv_mono
     return recv_mono - max(age, 0.0)
 
 
-__all__ = ['INPUT_TYPES', 'InputMapping', 'TYPE_ATTRIBUTE', 'capture_time', 'check_field',
-           'parse_input_mappings']
+__all__ = ['INPUT_TYPES', 'InputMapping', 'JOINT_SAMPLE_PROBLEMS', 'MAX_JOINT_NAMES', 'TYPE_ATTRIBUTE', 'capture_time',
+           'check_field', 'joint_sample_problem', 'parse_input_mappings']

@@ -4,11 +4,18 @@ A reload looks at every ``*.yaml`` file of the skills folder, loads and compiles
 changed ones (by content digest) and keeps the previous version of any file that fails, so a bad
 edit never takes a working skill away. All skills must drive the controller's robot (same joint
 names), because the command is published in one fixed joint order.
+
+A skill's name becomes the prefix of its parameters (``<skill>.<tunable>``) and of its
+activation service, so names the node uses itself (``reserved``: its parameters and parameter
+groups such as ``watchdog`` or ``inputs``) are refused at load, located at the file's ``skill``
+field. A skill listed in ``keep`` (the running one) whose file disappeared stays loaded until a
+later reload, so the running skill and its parameters never vanish under the controller.
 """
 from __future__ import annotations
 
 import hashlib
 import threading
+from collections.abc import Callable, Collection
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -39,6 +46,8 @@ class ReloadReport:
     unchanged: list[str] = field(default_factory=list)
     removed: list[str] = field(default_factory=list)
     failed: dict[str, str] = field(default_factory=dict)   # file name -> error message
+    kept: dict[str, str] = field(default_factory=dict)     # skill -> why it stays loaded
+    notes: list[str] = field(default_factory=list)         # what the node did about it
 
     @property
     def ok(self) -> bool:
@@ -47,13 +56,15 @@ class ReloadReport:
     def _loaded_parts(self) -> list[str]:
         return [f'{label}: {", ".join(sorted(names))}' for label, names in
                 (('added', self.added), ('changed', self.changed), ('removed', self.removed),
-                 ('unchanged', self.unchanged)) if names]
+                 ('unchanged', self.unchanged)) if names] + \
+            [f'kept {name}: {why}' for name, why in sorted(self.kept.items())]
 
     def summary(self) -> str:
         """One line (the ~/reload_skills reply): loaded names, then each failed file."""
         parts = self._loaded_parts()
         for path, message in sorted(self.failed.items()):
             parts.append(f'FAILED {path}: {message}')
+        parts.extend(self.notes)
         return '; '.join(parts) if parts else 'no skill files found'
 
     def log_lines(self) -> list[str]:
@@ -67,18 +78,20 @@ class ReloadReport:
         lines = [head or 'no skill files found']
         lines += [f'FAILED {path}: {" ".join(message.split())}'
                   for path, message in sorted(self.failed.items())]
-        return lines
+        return lines + list(self.notes)
 
 
 class SkillLibrary:
     """Skills by name. ``reload`` may run on any thread; lookups are cheap and thread-safe."""
 
     def __init__(self, folder: Path, joint_names: tuple[str, ...],
-                 qp_solver: str = 'quadprog') -> None:
-        """``qp_solver``: 'quadprog' (default) or 'daqp', the QP solver of every skill."""
+                 qp_solver: str = 'quadprog', reserved: Collection[str] = ()) -> None:
+        """``qp_solver``: 'quadprog' (default) or 'daqp', the QP solver of every skill;
+        ``reserved``: names a skill may not have (see the module docstring)."""
         self.folder = Path(folder)
         self.joint_names = tuple(joint_names)
         self.qp_solver = qp_solver
+        self.reserved = frozenset(reserved)
         self._skills: dict[str, LoadedSkill] = {}
         self._by_path: dict[Path, str] = {}
         self._lock = threading.Lock()
@@ -96,6 +109,11 @@ class SkillLibrary:
         """Load and compile one file; raises ConstraintCtrlError with the file's location."""
         data = path.read_bytes()
         spec = load_skill(path)
+        if spec.name in self.reserved:
+            raise spec.error(f'skill name {spec.name!r} is used by the controller itself (its '
+                             f'parameters or parameter groups: '
+                             f'{", ".join(sorted(self.reserved))}); rename the skill',
+                             'skill')
         key = (spec.robot.resolve(), spec.base_link)
         model = self._models.get(key)
         if model is None:
@@ -109,7 +127,13 @@ class SkillLibrary:
         return LoadedSkill(path=path, digest=hashlib.sha256(data).hexdigest(),
                            compiled=compiled, runner=SkillRunner(compiled, self.qp_solver))
 
-    def reload(self) -> ReloadReport:
+    def reload(self, prepare: Callable[[LoadedSkill, LoadedSkill | None], None] | None = None,
+               keep: Collection[str] = ()) -> ReloadReport:
+        """Load new and changed files; drop skills whose file is gone (except those in
+        ``keep``). ``prepare(new, old)`` runs on each new or changed skill before it becomes
+        visible to ``get`` (old is the version it replaces, or None), e.g. to give it the
+        values set at run time; an exception there fails that file like a load error.
+        """
         report = ReloadReport()
         files = sorted(self.folder.glob('*.yaml')) if self.folder.is_dir() else []
         if not self.folder.is_dir():
@@ -144,22 +168,36 @@ class SkillLibrary:
                 if old is not None:
                     seen.add(old.name)
                 continue
+            if prepare is not None:
+                try:
+                    prepare(loaded, other)
+                except ConstraintCtrlError as err:
+                    report.failed[path.name] = str(err)
+                    if old is not None:
+                        seen.add(old.name)
+                    continue
             staged[loaded.name] = loaded
             seen.add(loaded.name)
-            (report.changed if old is not None or loaded.name in self._skills
-             else report.added).append(loaded.name)
+            # a new version of a skill by the same name is a change; a new name is an addition
+            (report.changed if loaded.name in self._skills else report.added).append(loaded.name)
         with self._lock:
             for name, loaded in staged.items():
-                old_name = self._by_path.get(loaded.path)
-                if old_name and old_name != name:
-                    self._skills.pop(old_name, None)
                 self._skills[name] = loaded
                 self._by_path[loaded.path] = name
+            # gone: files removed, and the old name of a file whose skill was renamed
             for name in list(self._skills):
-                if name not in seen:
-                    report.removed.append(name)
-                    self._by_path.pop(self._skills[name].path, None)
-                    del self._skills[name]
+                if name in seen:
+                    continue
+                if name in keep:
+                    report.kept[name] = ('its file is gone (or names another skill now) but it '
+                                         'is running; it stays until another skill is active '
+                                         'and the folder is reloaded')
+                    continue
+                report.removed.append(name)
+                path = self._skills[name].path
+                if self._by_path.get(path) == name:
+                    del self._by_path[path]
+                del self._skills[name]
         return report
 
 

@@ -6,8 +6,13 @@ Middleware-free: the controller node fills a Snapshot from its subscriptions and
 Skill switches and parameter changes are requested from other threads (service and parameter
 callbacks) and applied at the next tick boundary, so a tick always runs one consistent skill
 with one consistent set of tunables. The new skill starts from the command that was last
-published (its acceleration limits keep the command continuous); if its first tick cannot be
-solved, the switch counts as failed and the watchdog stops the arm.
+published (its acceleration limits keep the command continuous). A switch is answered after
+the new skill's first tick: if that tick cannot produce a command from fresh inputs, the
+switch counts as failed, the requester is told why and the watchdog stops the arm.
+
+A reloaded file of the running skill is switched in the same way (``request_reload_switch``):
+at a tick boundary, from the last command, with its clock, unknowns, start pose and event
+states carried over when its unknowns are unchanged (else restarted from its start values).
 """
 from __future__ import annotations
 
@@ -42,6 +47,9 @@ class Snapshot:
     inputs: Mapping[str, InputSample] = field(default_factory=dict)
     people: Mapping[str, PersonSample] = field(default_factory=dict)
     missing_joints: Sequence[str] = ()
+    #: capture time of each joint's last valid update (model order, NaN = none); when given
+    #: the watchdog needs every joint fresh, not just the latest sample
+    joint_stamps: np.ndarray | None = None
 
 
 @dataclass(slots=True)
@@ -55,15 +63,26 @@ class LoopOutput:
 
 
 class _Request:
-    """A switch asked for by another thread; ``done`` is set once the tick has handled it."""
+    """A switch asked for by another thread; ``done`` is set once a tick has run its outcome.
 
-    def __init__(self, name: str, params: Mapping[int, float] | None = None) -> None:
+    ``kind`` is 'activate' (switch to ``name``) or 'reload' (the running skill ``name`` takes
+    its reloaded version). ``params`` are tunable values by name, applied with the switch.
+    """
+
+    def __init__(self, name: str, params: Mapping[str, float] | None = None,
+                 kind: str = 'activate') -> None:
         self.name = name
+        self.kind = kind
         self.params = dict(params or {})
         self.asked_at = time.monotonic()
         self.done = threading.Event()
         self.ok = False
         self.message = ''
+        self.restore: list[tuple[int, float]] = []   # values to put back if the switch fails
+
+    def finish(self, ok: bool, message: str) -> None:
+        self.ok, self.message = ok, message
+        self.done.set()
 
 
 class ControlLoop:
@@ -76,7 +95,8 @@ class ControlLoop:
         self.active: SkillRunner | None = None
         self._lock = threading.Lock()
         self._switch: _Request | None = None
-        self._params: list[tuple[str, int, float]] = []
+        self._replace: _Request | None = None
+        self._params: list[tuple[str, str, float]] = []
         self._last_command = np.zeros(watchdog.config.n_joints)
         self._switch_failed = False
         #: seconds from each activation request to the tick that ran the new skill first
@@ -84,43 +104,97 @@ class ControlLoop:
 
     # ------------------------------------------------------ other threads
     def request_activation(self, name: str, timeout: float | None = None,
-                           params: Mapping[int, float] | None = None) -> tuple[bool, str]:
+                           params: Mapping[str, float] | None = None) -> tuple[bool, str]:
         """Ask for ``name`` to become active at the next tick; wait for the outcome.
 
-        ``params`` (tunable index -> value of that skill) are applied in the same tick, just
-        before the switch, so a new goal never reaches the skill that is still running.
-        Without ``timeout`` it returns at once with (True, 'requested').
+        The outcome is known after the new skill's first tick: ok when it produced a command
+        from fresh inputs, else why not (then the watchdog stops the arm, as for any failed
+        switch). ``params`` (tunable name -> value of that skill) are applied in the same tick,
+        just before the switch, so a new goal never reaches the skill that is still running;
+        if the switch fails they are put back. Without ``timeout`` it returns at once with
+        (True, 'requested').
         """
         request = _Request(name, params)
         with self._lock:
             if self._switch is not None:
-                self._switch.message = f'superseded by a request for {name!r}'
-                self._switch.done.set()
+                self._switch.finish(False, f'superseded by a request for {name!r}')
             self._switch = request
+        return self._wait(request, timeout)
+
+    def request_reload_switch(self, name: str, timeout: float) -> tuple[bool, str]:
+        """The running skill ``name`` was reloaded: switch to the library's new version at the
+        next tick boundary, continuing its clock and unknowns where possible
+        (SkillRunner.continue_from); (ok, what happened) after its first tick."""
+        request = _Request(name, kind='reload')
+        with self._lock:
+            if self._replace is not None:
+                self._replace.finish(False, 'superseded by a later reload')
+            self._replace = request
+        return self._wait(request, timeout)
+
+    def _wait(self, request: _Request, timeout: float | None) -> tuple[bool, str]:
+        """The outcome of ``request``; one that no tick took within ``timeout`` is withdrawn,
+        so a refused request never switches later."""
         if timeout is None:
             return True, 'requested'
-        if not request.done.wait(timeout):
-            return False, f'no control tick within {timeout:.3f} s (is the controller running?)'
-        return request.ok, request.message
-
-    def set_parameters(self, skill: str, values: Mapping[int, float]) -> None:
-        """Queue tunable values (already validated) for the next tick boundary, all at once."""
+        if request.done.wait(timeout):
+            return request.ok, request.message
         with self._lock:
-            self._params.extend((skill, index, value) for index, value in values.items())
+            withdrawn = self._switch is request or self._replace is request
+            if self._switch is request:
+                self._switch = None
+            if self._replace is request:
+                self._replace = None
+        if withdrawn:
+            return False, (f'no control tick within {timeout:.3f} s (is the controller '
+                           'running?); nothing was switched')
+        # a tick has taken it meanwhile: its outcome comes at the end of that tick
+        if request.done.wait(max(timeout, 1.0)):
+            return request.ok, request.message
+        return False, 'the tick that took the request did not finish it'
+
+    def _abandon(self, requests: tuple[_Request | None, ...], exc: BaseException) -> None:
+        for request in requests:
+            if request is not None and not request.done.is_set():
+                request.finish(False, f'the tick failed: {exc!r}')
+
+    def set_parameters(self, skill: str, values: Mapping[str, float]) -> None:
+        """Queue tunable values by name (already validated) for the next tick boundary."""
+        with self._lock:
+            self._params.extend((skill, name, value) for name, value in values.items())
 
     # -------------------------------------------------------------- tick
     def step(self, snap: Snapshot) -> LoopOutput:
         with self._lock:
             request, self._switch = self._switch, None
+            replace, self._replace = self._replace, None
             params, self._params = self._params, []
-        for skill, index, value in params:
+        if request is None and replace is None:
+            return self._step(snap, params, None, None)
+        try:
+            return self._step(snap, params, request, replace)
+        except BaseException as exc:   # whoever waits must not wait for an answer forever
+            self._abandon((request, replace), exc)
+            raise
+
+    def _step(self, snap: Snapshot, params: list[tuple[str, str, float]],
+              request: _Request | None, replace: _Request | None) -> LoopOutput:
+        for skill, name, value in params:
             loaded = self.library.get(skill)
             if loaded is not None:
+                try:
+                    index = loaded.compiled.param_index(name)
+                except KeyError:
+                    continue          # the tunable went away with a reload
                 loaded.runner.solver.set_param(index, value)
-        activated = None
-        events: list[str] = []
+        pending: _Request | None = None
+        if replace is not None:
+            pending = self._take_reloaded(replace, snap)
         if request is not None:
-            activated = self._activate(request, snap)
+            if pending is not None:
+                pending.finish(False, f'superseded by a switch to {request.name!r}')
+            pending = self._activate(request, snap)
+        events: list[str] = []
         tick: TickResult | None = None
         runner = self.active
         command: np.ndarray | None = np.zeros_like(self._last_command)
@@ -150,8 +224,11 @@ class ControlLoop:
                 command = None
                 solver_ok, status = False, 'no joint positions' if snap.q is None \
                     else 'non-finite or missing skill input'
-        switch_ok = activated is not None and tick is not None and tick.ok
-        if activated is not None:
+        problem = None
+        if pending is not None:
+            problem = _first_tick_problem(runner, tick, status, snap)
+        switch_ok = pending is not None and problem is None
+        if pending is not None:
             # a skill that cannot produce its first command is a failed switch: stop
             self._switch_failed = not switch_ok
         out = self.watchdog.step(WatchdogInput(
@@ -159,36 +236,114 @@ class ControlLoop:
             solver_ok=solver_ok, solver_status=status, input_stamps=input_stamps,
             input_timeouts=input_timeouts, inputs_finite=finite, people=snap.people,
             person_sources=self.person_sources, switch_failed=self._switch_failed,
-            skill_activated=switch_ok, missing_joints=snap.missing_joints))
+            skill_activated=switch_ok, missing_joints=snap.missing_joints,
+            joint_stamps=snap.joint_stamps))
         if runner is not None:
             moving = out.state in (State.NORMAL, State.REDUCED)
             runner.commit(out.command, out.speed_scale if moving else 0.0, self.dt)
         self._last_command = out.command
         events.extend(f'watchdog_{t.to_state.value}' for t in out.transitions)
+        activated = None
+        if pending is not None:
+            activated = self._finish(pending, problem)
         return LoopOutput(command=out.command, skill=runner.name if runner else None,
                           tick=tick, watchdog=out, events=events, activated=activated)
 
-    def _activate(self, request: _Request, snap: Snapshot) -> str | None:
+    def _activate(self, request: _Request, snap: Snapshot) -> _Request | None:
         loaded = self.library.get(request.name)
         if loaded is None:
-            request.ok, request.message = False, f'no skill named {request.name!r} is loaded'
-            request.done.set()
+            request.finish(False, f'no skill named {request.name!r} is loaded')
             return None
         if snap.q is None:
-            request.ok, request.message = False, 'no joint positions yet; cannot start a skill'
-            request.done.set()
+            request.finish(False, 'no joint positions yet; cannot start a skill')
             return None
         runner = loaded.runner
-        for index, value in request.params.items():
-            runner.solver.set_param(index, value)
+        solver = runner.solver
+        try:
+            indices = {name: loaded.compiled.param_index(name) for name in request.params}
+        except KeyError as err:
+            request.finish(False, str(err.args[0]))
+            return None
+        for name, value in request.params.items():
+            request.restore.append((indices[name], float(solver.p[indices[name]])))
+            solver.set_param(indices[name], value)
         runner.activate(snap.q, self._last_command)
         self.active = runner
-        delay = max(0.0, time.monotonic() - request.asked_at)
-        self.switch_delays.append(delay)
-        request.ok = True
-        request.message = f'{request.name} active ({delay * 1000:.2f} ms after the request)'
-        request.done.set()
-        return request.name
+        self.switch_delays.append(max(0.0, time.monotonic() - request.asked_at))
+        return request
+
+    def _take_reloaded(self, request: _Request, snap: Snapshot) -> _Request | None:
+        old = self.active
+        loaded = self.library.get(request.name)
+        if old is None or old.name != request.name:
+            request.finish(True, f'{request.name} is not running; its next activation uses '
+                                 'the reloaded version')
+            return None
+        if loaded is None or loaded.runner is old:
+            request.finish(True, f'{request.name} keeps running (no new version loaded)')
+            return None
+        if snap.q is None:
+            request.finish(False, f'{request.name}: no joint positions; the reloaded version '
+                                  'was not switched in')
+            return None
+        restarted = loaded.runner.continue_from(old, snap.q, self._last_command)
+        request.message = restarted or (f'continued at skill time {old.time:.3f} s with its '
+                                        'unknowns and the values set at run time')
+        self.active = loaded.runner
+        return request
+
+    def _finish(self, request: _Request, problem: str | None) -> str | None:
+        """Answer a switch after its first tick; the name for ``activated`` on success."""
+        delay_ms = (time.monotonic() - request.asked_at) * 1000
+        if problem is None:
+            if request.kind == 'reload':
+                request.finish(True, f'{request.name} (running) switched to the reloaded '
+                                     f'version: {request.message}')
+                return None
+            request.finish(True, f'{request.name} active: first tick ok ({delay_ms:.2f} ms '
+                                 'after the request)')
+            return request.name
+        runner = self.active
+        if runner is not None:
+            for index, value in request.restore:
+                runner.solver.set_param(index, value)
+        what = 'reloaded version of' if request.kind == 'reload' else 'switch to'
+        request.finish(False, f'{what} {request.name} failed at its first tick: {problem}; '
+                              'the watchdog stops the arm until a skill is activated')
+        return None
+
+
+def _first_tick_problem(runner: SkillRunner | None, tick: TickResult | None, status: str,
+                        snap: Snapshot) -> str | None:
+    """Why the first tick of a new skill does not count as a working start, or None.
+
+    It must have solved with inputs that are all present, finite and fresh (an input older
+    than its timeout would have the watchdog stop the arm in the same tick).
+    """
+    if runner is None:
+        return 'no skill active'
+    missing, bad, stale = [], [], []
+    for inp in runner.skill.spec.inputs:
+        sample = snap.inputs.get(inp.name)
+        if sample is None:
+            missing.append(inp.name)
+        elif not np.isfinite(sample.value):
+            bad.append(inp.name)
+        elif not -inp.timeout <= snap.now - sample.stamp <= inp.timeout:
+            stale.append(f'{inp.name} ({snap.now - sample.stamp:.3f} s old, timeout '
+                         f'{inp.timeout:g} s)')
+    parts = []
+    if missing:
+        parts.append(f'no data yet for input(s) {", ".join(missing)}')
+    if bad:
+        parts.append(f'non-finite input(s) {", ".join(bad)}')
+    if stale:
+        parts.append(f'stale input(s) {", ".join(stale)}')
+    if tick is not None and not tick.ok:
+        parts.append(f'solver: {status}')
+    elif tick is None and not parts:
+        parts.append(status)
+    return '; '.join(parts) or None
 
 
 __all__ = ['ControlLoop', 'InputSample', 'LoopOutput', 'Snapshot']

@@ -65,6 +65,8 @@ class SkillRunner:
         self.skill = skill
         self.solver = SkillSolver(skill, qp_solver=qp_solver)
         self.unknowns = skill.start_unknowns()
+        self.start_q = np.zeros(skill.n_q)                 # pose at activation (start_value())
+        self.start_unknowns = self.unknowns.copy()
         self.time = 0.0
         self.x_prev = np.zeros(skill.n_x)
         self.events = EventTracker(skill.event_names,
@@ -81,11 +83,45 @@ class SkillRunner:
         ``q`` is remembered as the start pose that start_value() in formulas refers to.
         """
         self.unknowns = self.skill.start_unknowns()
+        self.start_q = np.array(q, dtype=float)
+        self.start_unknowns = self.unknowns.copy()
         self.solver.set_start(q, self.unknowns)
         self.time = 0.0
         self.x_prev = np.concatenate([joint_velocity, np.zeros(self.skill.n_s)])
         self.events = EventTracker(self.skill.event_names,
                                    tuple(ev.hold_for for ev in self.skill.spec.events))
+
+    def continue_from(self, old: SkillRunner, q: np.ndarray,
+                      joint_velocity: np.ndarray) -> str | None:
+        """Take over from another version of this skill (a reloaded file) without a restart.
+
+        The skill clock, the start pose (what start_value() refers to), the unknowns, their
+        last velocities and the event states carry over when the unknowns are the same (by
+        name); rows may differ, since they are recomputed from these every tick. Returns None
+        when it carried over, else why it restarted instead (activate(): clock 0, unknowns at
+        their start values, start pose = ``q``).
+        """
+        if sorted(old.skill.unknown_names) != sorted(self.skill.unknown_names):
+            self.activate(q, joint_velocity)
+            return (f'unknowns changed ({list(old.skill.unknown_names)} -> '
+                    f'{list(self.skill.unknown_names)}): restarted with its start values')
+        where = [old.skill.unknown_names.index(n) for n in self.skill.unknown_names]
+        self.unknowns = old.unknowns[where].copy()
+        self.start_q = old.start_q.copy()
+        self.start_unknowns = old.start_unknowns[where].copy()
+        self.solver.set_start(self.start_q, self.start_unknowns)
+        self.time = old.time
+        n_q = self.skill.n_q
+        self.x_prev = np.concatenate([joint_velocity, old.x_prev[n_q:][where]])
+        self._last_unknown_velocity = old._last_unknown_velocity[where].copy()
+        self.events = EventTracker(self.skill.event_names,
+                                   tuple(ev.hold_for for ev in self.skill.spec.events))
+        for i, name in enumerate(self.skill.event_names):
+            if name in old.skill.event_names:
+                j = old.skill.event_names.index(name)
+                self.events.since[i] = old.events.since[j]
+                self.events.raised[i] = old.events.raised[j]
+        return None
 
     def tick(self, q: np.ndarray, u: np.ndarray, dt: float) -> TickResult:
         result: SolveResult = self.solver.solve(q, self.unknowns, u, self.time, dt, self.x_prev)

@@ -8,7 +8,9 @@ Recovery rules (also in ``RECOVERY``; ``resume_after`` is a watchdog setting, 1 
 
 - stale, missing or non-finite inputs (joint_states, skill inputs, person sources, missing
   joints) and non-finite monitored-point kinematics: clear once fresh valid data has been seen
-  continuously for ``resume_after``;
+  continuously for ``resume_after``. With per-joint stamps (``WatchdogInput.joint_stamps``)
+  joint_states freshness is judged per joint: each joint needs its own valid update within the
+  timeout, so a sample carrying only other joints (a gripper's) keeps none of them fresh;
 - solver failure or an unusable solver command: clears once the solver has reported ok with a
   finite command continuously for ``resume_after``;
 - person too close (separation at or inside S_p(0)): clears once every monitored point has
@@ -184,7 +186,13 @@ class FaultDetector:
             return False
         valid = True
         timeout = self.joint_state_timeout
-        if not -timeout <= inp.now - inp.joint_state_stamp <= timeout:
+        stamps = inp.joint_stamps
+        if stamps is not None:
+            # per joint: the oldest and the newest stamp bound every age (NaN fails both tests)
+            now = inp.now
+            if not (now - float(stamps.min()) <= timeout and now - float(stamps.max()) >= -timeout):
+                faults.append(self._stale_joints_fault(stamps, now, timeout))
+        elif not -timeout <= inp.now - inp.joint_state_stamp <= timeout:
             faults.append(_age_fault(FaultKind.JOINT_STATES_STALE, '', 'joint_states',
                                      inp.joint_state_stamp, inp.now, timeout))
         if q.shape != (self.n_joints,):
@@ -200,6 +208,29 @@ class FaultDetector:
                                 f'{float(q[bad])!r}', {'joint_index': float(bad)}))
             valid = False
         return valid
+
+    def _stale_joints_fault(self, stamps: np.ndarray, now: float, timeout: float) -> Fault:
+        """Name every joint not updated by a valid sample within ``timeout`` (stamps further
+        than ``timeout`` in the future count as stale too), with the largest age."""
+        ages = now - stamps
+        with np.errstate(invalid='ignore'):
+            stale = ~((ages <= timeout) & (ages >= -timeout))     # NaN (never updated) is stale
+        idx = np.flatnonzero(stale)
+        names = ', '.join(self._joint(int(i)) for i in idx)
+        bad = ages[idx]
+        if not np.isfinite(bad).all():
+            age = math.inf
+            detail = 'no valid update: never received, or invalidated by a rejected sample'
+        elif float(bad.max()) > timeout:
+            age = float(bad.max())
+            detail = f'oldest update {age:.3f} s ago'
+        else:
+            age = float(bad.min())
+            detail = f'stamped {-age:.3f} s in the future'
+        reason = (f'joint_states: joint(s) {names} not updated within {timeout:.3f} s '
+                  f'({detail}; samples without these joints do not count)')
+        return Fault(FaultKind.JOINT_STATES_STALE, '', reason,
+                     {'age': age, 'timeout': timeout, 'stale_joints': float(idx.size)})
 
     def _check_solver(self, inp: WatchdogInput, faults: list[Fault]) -> None:
         if not inp.solver_ok:

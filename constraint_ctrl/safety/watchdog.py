@@ -186,6 +186,9 @@ class WatchdogInput:
         switch_failed: a skill switch failed mid-motion (latched until ``skill_activated``).
         skill_activated: a skill was activated successfully this tick.
         missing_joints: configured joints absent from joint_states (names).
+        joint_stamps: capture time of each joint's last valid update, shape (n,), model order
+            (NaN: never updated). When given, every joint must be fresh on its own: a sample
+            that carried other joints (a gripper's) refreshes none of these.
     """
 
     now: float
@@ -202,6 +205,7 @@ class WatchdogInput:
     switch_failed: bool = False
     skill_activated: bool = False
     missing_joints: Sequence[str] = ()
+    joint_stamps: np.ndarray | None = None
 
 
 @dataclass

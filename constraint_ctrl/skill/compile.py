@@ -475,9 +475,15 @@ class _Builder:
             speed[j] = min(speed[j], value)
         speed_sx = ca.SX(ca.DM(speed))
         if lim.joint_speed is not None:
-            cap = self.params.add(ParamInfo('limits.joint_speed', lim.joint_speed, 0.0,
-                                            float('inf'), 'rad/s or m/s',
-                                            'speed cap of every joint', strictly_positive=True))
+            # Safety limits may be lowered at run time and restored, never raised above the
+            # file's value; nor above the loosest URDF velocity limit, beyond which a cap (the
+            # URDF limit of each joint applies too) changes nothing.
+            finite = model.velocity_limit[np.isfinite(model.velocity_limit)]
+            top = min(lim.joint_speed, float(finite.max())) if finite.size else lim.joint_speed
+            cap = self.params.add(ParamInfo('limits.joint_speed', top, 0.0, top,
+                                            'rad/s or m/s', 'speed cap of every joint (may be '
+                                            "lowered at run time, not raised above the file's "
+                                            'value)', strictly_positive=True))
             speed_sx = ca.fmin(speed_sx, cap)
         kp = self.params.add(ParamInfo('limits.position_gain', lim.position_gain, 0.0,
                                        float('inf'), '1/s', 'gain of the position-limit rows',
@@ -496,9 +502,11 @@ class _Builder:
             if np.isfinite(upper[i]):
                 hi[i] = ca.fmin(hi[i], kp * (float(upper[i]) - pos[i]))
         if lim.joint_acceleration is not None:
+            # URDF <limit> has no acceleration: the file's value is the upper bound at run time
             acc = self.params.add(ParamInfo('limits.joint_acceleration', lim.joint_acceleration,
-                                            0.0, float('inf'), 'rad/s^2 or m/s^2',
-                                            'acceleration limit of every joint',
+                                            0.0, lim.joint_acceleration, 'rad/s^2 or m/s^2',
+                                            'acceleration limit of every joint (may be lowered '
+                                            "at run time, not raised above the file's value)",
                                             strictly_positive=True))
             n_q = model.n_joints
             step = acc * self.dt

@@ -28,6 +28,7 @@ from __future__ import annotations
 import json
 import os
 import random
+import shutil
 import signal
 import subprocess
 import sys
@@ -150,7 +151,6 @@ def _measure(workdir: Path, rate_hz: float, seconds: float, block_s: float,
     for name, path in stats.items():
         if path.exists():
             result['targets'][name]['node'] = json.loads(path.read_text())
-    result['logs'] = {name: str(path) for name, path in logs.items()}
     return result
 
 
@@ -196,6 +196,22 @@ def bench_end_to_end(duration: float = 30.0, rate_hz: float = 1000.0, activation
     loaded part runs on DDS.
     """
     workdir = Path(tempfile.mkdtemp(prefix='ctrl_e2e_'))
+    try:
+        return _bench_in(workdir, duration, rate_hz, activations, load, transport,
+                         realtime_priority, block_s)
+    except Exception as exc:
+        # the last lines of each process's log go into the error: the folder goes away
+        tails = [f'{log.relative_to(workdir)}: ' + ' | '.join(
+                     log.read_text(errors='replace').strip().splitlines()[-3:])
+                 for log in sorted(workdir.glob('*/*.log'))]
+        msg = '\n'.join([str(exc), *tails])
+        raise RuntimeError(msg) from exc
+    finally:
+        shutil.rmtree(workdir, ignore_errors=True)
+
+
+def _bench_in(workdir: Path, duration: float, rate_hz: float, activations: int, load: int,
+              transport: str, realtime_priority: int, block_s: float) -> dict[str, Any]:
     block_s = min(block_s, duration)
     (workdir / 'quiet').mkdir()
     (workdir / 'loaded').mkdir()

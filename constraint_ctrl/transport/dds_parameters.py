@@ -2,9 +2,15 @@
 
 Rules mirrored from rclpy's Node (node.py, parameter_service.py):
 * launch overrides are declared when the node starts (automatically_declare_parameters_from_
-  overrides=True); a later `declare_parameter` of such a name adopts the override's value;
+  overrides=True); a later `declare_parameter` of such a name adopts the override's value; the
+  overrides are kept, so a parameter undeclared and declared again gets its override again
+  (unless declared with ignore_override);
 * parameters are statically typed: a change to another type is rejected, as is a change of a
   read-only parameter or of an undeclared name;
+* a double parameter may carry a floating-point range (ParameterDescriptor.floating_point_range):
+  values outside it are rejected before the validator runs, with rclpy's reason; the ends count
+  as inside within a relative tolerance of 1e-6, as rclpy's PARAM_REL_TOL;
+* `undeclare` removes a parameter (not a read-only one) and publishes it as deleted;
 * SetParameters validates and applies each parameter on its own (one result per parameter);
   SetParametersAtomically validates all together and applies all or none;
 * GetParameters / DescribeParameters / GetParameterTypes answer an empty list when any
@@ -12,11 +18,15 @@ Rules mirrored from rclpy's Node (node.py, parameter_service.py):
 * every accepted change is published as rcl_interfaces/ParameterEvent on /parameter_events.
 
 The validator sees {name: new value} and returns (ok, reason); listeners see the new values
-after they were stored. Register both after declaring the node's parameters.
+after they were stored. Register both after declaring the node's parameters. An exception in
+the validator rejects the change with its text; one in a listener is logged (the values stay
+stored); neither ends the node.
 """
 from __future__ import annotations
 
+import math
 import threading
+import traceback
 from collections.abc import Callable
 from dataclasses import dataclass
 from types import SimpleNamespace
@@ -29,6 +39,8 @@ from constraint_ctrl.transport.port import ParameterValue, ParameterView
 PT = types_for('jazzy').ParameterType   # its constants are the same on every distro
 Validator = Callable[[dict[str, ParameterValue]], tuple[bool, str]]
 Listener = Callable[[dict[str, ParameterValue]], None]
+#: rclpy Node.PARAM_REL_TOL: values this close to a range end count as inside
+PARAM_REL_TOL = 1e-6
 
 _TYPE_NAMES = {
     PT.PARAMETER_NOT_SET: 'not set', PT.PARAMETER_BOOL: 'bool', PT.PARAMETER_INTEGER: 'integer',
@@ -97,6 +109,20 @@ class _Entry:
     description: str = ''
     read_only: bool = False
     claimed: bool = False  # declared by node code (not only by a launch override)
+    value_range: tuple[float, float] | None = None
+
+
+def range_problem(name: str, value: Any, value_range: tuple[float, float] | None) -> str:
+    """rclpy's floating-point range check (Node._apply_floating_point_range, step 0)."""
+    if value_range is None or not isinstance(value, float):
+        return ''
+    low, high = min(value_range), max(value_range)
+    if math.isclose(value, low, rel_tol=PARAM_REL_TOL) or \
+            math.isclose(value, high, rel_tol=PARAM_REL_TOL):
+        return ''
+    if not low < value < high:
+        return f'Parameter {name} out of range Min: {low}, Max: {high}, value: {value}'
+    return ''
 
 
 class ParameterStore:
@@ -104,13 +130,16 @@ class ParameterStore:
 
     def __init__(self, node_fqn: str, overrides: dict[str, Any], types: SimpleNamespace,
                  now_ns: Callable[[], int],
-                 publish_event: Callable[[Any], None] | None = None) -> None:
+                 publish_event: Callable[[Any], None] | None = None,
+                 log: Callable[[str, str], None] | None = None) -> None:
         self._fqn = node_fqn
         self._types = types
         self._now_ns = now_ns
         self._publish_event = publish_event
+        self._log = log
         self._lock = threading.RLock()
         self._entries: dict[str, _Entry] = {}
+        self._overrides: dict[str, Any] = {}
         self._validator: Validator | None = None
         self._listeners: list[Listener] = []
         for name, value in overrides.items():
@@ -119,12 +148,20 @@ class ParameterStore:
                 msg = f'parameter override {name!r}: {value!r} is not a parameter value'
                 raise TransportError(msg)
             self._entries[name] = _Entry(value, code)
+            self._overrides[name] = value
         self._event({n: e.value for n, e in self._entries.items()}, new=True)
 
     # --- node-side API ---------------------------------------------------------------------
 
-    def declare(self, name: str, value: Any, description: str = '',
-                read_only: bool = False) -> ParameterView:
+    def declare(self, name: str, value: Any, description: str = '', read_only: bool = False,
+                value_range: tuple[float, float] | None = None,
+                ignore_override: bool = False) -> ParameterView:
+        """Declare ``name``; its value is the launch override unless ``ignore_override``.
+
+        Raises TransportError when the value is outside ``value_range`` or the validator
+        rejects it (rclpy raises InvalidParameterValueException); the parameter is then left
+        as it was (a launch override stays declared, unclaimed).
+        """
         code = type_of(value)
         if code == PT.PARAMETER_NOT_SET:
             msg = (f'parameter {name!r}: default {value!r} has no ROS parameter type; use bool, '
@@ -135,14 +172,40 @@ class ParameterStore:
             if entry is not None and entry.claimed:
                 msg = f'parameter {name!r} is declared twice'
                 raise TransportError(msg)
-            final = entry.value if entry is not None else value
-            self._validate({name: final}, f'parameter {name!r} = {final!r}')
-            if entry is None:
-                self._entries[name] = _Entry(value, code, description, read_only, claimed=True)
-                self._event({name: value}, new=True)
+            if ignore_override:
+                final, final_code = value, code
+            elif entry is not None:
+                final, final_code = entry.value, entry.type
+            elif name in self._overrides:
+                final = self._overrides[name]
+                final_code = type_of(final)
             else:
-                entry.description, entry.read_only, entry.claimed = description, read_only, True
+                final, final_code = value, code
+            problem = range_problem(name, final, value_range)
+            if problem:
+                msg = f'parameter {name!r} = {final!r} rejected: {problem}'
+                raise TransportError(msg)
+            self._validate({name: final}, f'parameter {name!r} = {final!r}')
+            self._entries[name] = _Entry(final, final_code, description, read_only,
+                                         claimed=True, value_range=value_range)
+            if entry is None:
+                self._event({name: final}, new=True)
+            elif entry.value != final or entry.type != final_code:
+                self._event({name: final}, new=False)
             return ParameterView(name, final)
+
+    def undeclare(self, name: str) -> None:
+        """rclpy Node.undeclare_parameter: unknown names and read-only parameters raise."""
+        with self._lock:
+            entry = self._entries.get(name)
+            if entry is None:
+                msg = f'parameter {name!r} is not declared'
+                raise TransportError(msg)
+            if entry.read_only:
+                msg = f'parameter {name!r} is read-only and cannot be undeclared'
+                raise TransportError(msg)
+            del self._entries[name]
+            self._event({name: entry.value}, new=False, deleted=True)
 
     def get(self, name: str) -> ParameterView:
         with self._lock:
@@ -166,7 +229,7 @@ class ParameterStore:
         self._listeners.append(callback)
 
     def set_atomically(self, changes: dict[str, Any]) -> tuple[bool, str]:
-        """Check types and read-only, then the validator; store all or nothing."""
+        """Check types, read-only and ranges, then the validator; store all or nothing."""
         if not changes:
             return False, 'no parameters given'
         with self._lock:
@@ -175,7 +238,11 @@ class ParameterStore:
                 if problem:
                     return False, problem
             if self._validator is not None:
-                ok, reason = self._validator(dict(changes))
+                try:
+                    ok, reason = self._validator(dict(changes))
+                except Exception as exc:  # noqa: BLE001 - a node bug must not end the node
+                    self._report('parameter validator', exc)
+                    return False, f'rejected: the node failed to check it ({exc!r})'
                 if not ok:
                     return False, reason or 'rejected by the node'
             for name, value in changes.items():
@@ -183,8 +250,17 @@ class ParameterStore:
             self._event(changes, new=False)
             listeners = list(self._listeners)
         for listener in listeners:
-            listener(dict(changes))
+            try:
+                listener(dict(changes))
+            except Exception as exc:  # noqa: BLE001 - logged; the values stay stored
+                self._report('parameter listener', exc)
         return True, ''
+
+    def _report(self, what: str, exc: BaseException) -> None:
+        text = f'{what} raised (the node goes on):\n' + ''.join(
+            traceback.format_exception(exc)).rstrip()
+        if self._log is not None:
+            self._log('error', text)
 
     def _check_change(self, name: str, value: Any) -> str:
         entry = self._entries.get(name)
@@ -196,17 +272,21 @@ class ParameterStore:
         if code != entry.type:
             return (f'parameter {name!r} is of type {_TYPE_NAMES[entry.type]}, '
                     f'cannot set it to type {_TYPE_NAMES.get(code, "unknown")}')
-        return ''
+        return range_problem(name, value, entry.value_range)
 
     def _validate(self, values: dict[str, Any], what: str) -> None:
         if self._validator is None:
             return
-        ok, reason = self._validator(dict(values))
+        try:
+            ok, reason = self._validator(dict(values))
+        except Exception as exc:  # noqa: BLE001 - reported as a refusal
+            self._report('parameter validator', exc)
+            ok, reason = False, f'the node failed to check it ({exc!r})'
         if not ok:
             msg = f'{what} rejected: {reason}'
             raise TransportError(msg)
 
-    def _event(self, values: dict[str, Any], *, new: bool) -> None:
+    def _event(self, values: dict[str, Any], *, new: bool, deleted: bool = False) -> None:
         if self._publish_event is None or not values:
             return
         t = self._types
@@ -214,7 +294,9 @@ class ParameterStore:
         params = [t.Parameter(name=n, value=to_msg(v, t)) for n, v in values.items()]
         event = t.ParameterEvent(stamp=t.Time(sec=now // 1_000_000_000,
                                               nanosec=now % 1_000_000_000), node=self._fqn)
-        if new:
+        if deleted:
+            event.deleted_parameters = params
+        elif new:
             event.new_parameters = params
         else:
             event.changed_parameters = params
@@ -252,13 +334,17 @@ class ParameterStore:
     def on_describe_parameters(self, request: Any, response: Any) -> Any:
         with self._lock:
             if all(n in self._entries for n in request.names):
-                response.descriptors = [
-                    self._types.ParameterDescriptor(
-                        name=n, type=self._entries[n].type,
-                        description=self._entries[n].description,
-                        read_only=self._entries[n].read_only)
-                    for n in request.names]
+                response.descriptors = [self._descriptor(n) for n in request.names]
         return response
+
+    def _descriptor(self, name: str) -> Any:
+        t = self._types
+        entry = self._entries[name]
+        ranges = [] if entry.value_range is None else [t.FloatingPointRange(
+            from_value=float(entry.value_range[0]), to_value=float(entry.value_range[1]),
+            step=0.0)]
+        return t.ParameterDescriptor(name=name, type=entry.type, description=entry.description,
+                                     read_only=entry.read_only, floating_point_range=ranges)
 
     def on_list_parameters(self, request: Any, response: Any) -> Any:
         prefixes, depth = list(request.prefixes), int(request.depth)

@@ -13,7 +13,7 @@ Limits to know:
   frame requests differently.
 * Networking: loopback only unless CYCLONEDDS_URI is set (see dds_discovery.py for the default
   and how to override it); domain from ROS_DOMAIN_ID.
-* Not provided: parameter ranges in descriptors, the logger-level services.
+* Not provided: the logger-level services.
 
 Time: `now_ns()` is ROS time (dds_time.py): the system clock, or with use_sim_time true the
 latest /clock time (0 before the first). A timer created while use_sim_time is true runs on
@@ -29,7 +29,8 @@ on another, and each timer has its own, so a timer tick can run at the same time
 subscription or service callback (guard shared state with a lock). Callbacks only run while
 spin() runs. A sample that cannot be decoded is dropped; an exception raised by a callback is
 caught; both are counted per source (`faults()`) and logged at most once a minute per source,
-and spin() goes on (receive_faults.py). This differs from rclpy, where an exception in a
+and spin() goes on (receive_faults.py); a service callback that raises also gives the caller an
+error reply. This differs from rclpy, where an exception in a
 callback ends executor.spin(): the nodes already turn their own failures into safe outputs,
 and one bad sample from a peer must not end the node. SIGINT and SIGTERM end spin(); from
 then until shutdown() has finished they are only counted (transport/signals.py).
@@ -180,7 +181,7 @@ class DdsPort:
         events = self.create_publisher(self.types.ParameterEvent, '/parameter_events',
                                        'parameters')
         self._params = ParameterStore(self.fqn, overrides_for(args, self.fqn), self.types,
-                                      self.now_ns, events.publish)
+                                      self.now_ns, events.publish, log=self.log)
         # rclpy's TimeSource declares use_sim_time on every node and follows its changes
         self._set_sim_time(self._params.declare('use_sim_time', False).value)
         self._params.add_listener(self._on_parameters)
@@ -322,8 +323,17 @@ class DdsPort:
     # --- parameters ------------------------------------------------------------------------
 
     def declare_parameter(self, name: str, value: Any, description: str = '',
-                          read_only: bool = False) -> ParameterView:
-        return self._params.declare(name, value, description, read_only)
+                          read_only: bool = False,
+                          value_range: tuple[float, float] | None = None,
+                          ignore_override: bool = False) -> ParameterView:
+        return self._params.declare(name, value, description, read_only, value_range,
+                                    ignore_override)
+
+    def undeclare_parameter(self, name: str) -> None:
+        self._params.undeclare(name)
+
+    def set_parameter(self, name: str, value: Any) -> tuple[bool, str]:
+        return self._params.set_atomically({name: value})
 
     def get_parameter(self, name: str) -> ParameterView:
         return self._params.get(name)

@@ -14,6 +14,10 @@ both sides can tell when the other has discovered the endpoints a call needs:
 
 Only peers on rmw_cyclonedds_cpp (or Connext in its Cyclone compatibility mode) use this
 header; Fast DDS peers frame services differently and cannot call or serve us.
+
+The port wraps every server callback (receive_faults.FaultLog.guard_service), so an exception
+in it becomes a counted log line and an error reply (``success=False`` and the error as
+``message`` where the type has them): a request that trips a bug never ends the node.
 """
 from __future__ import annotations
 

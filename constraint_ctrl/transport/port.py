@@ -124,8 +124,23 @@ class Port(Protocol):
         does not fire while /clock stands still, as rclpy's ROS-time timers do."""
 
     def declare_parameter(self, name: str, value: ParameterValue, description: str = '',
-                          read_only: bool = False) -> Any:
-        """Declare (or adopt, if a launch override already declared it) a parameter."""
+                          read_only: bool = False,
+                          value_range: tuple[float, float] | None = None,
+                          ignore_override: bool = False) -> Any:
+        """Declare (or adopt, if a launch override already declared it) a parameter.
+
+        ``value_range`` (doubles) becomes the descriptor's floating_point_range: `ros2 param
+        describe` shows it and values outside are refused. A launch value outside the range
+        or refused by the validator raises TransportError (the override stays as it was);
+        ``ignore_override`` declares ``value`` whatever the launch gave (rclpy's own flag).
+        """
+
+    def undeclare_parameter(self, name: str) -> None:
+        """rclpy Node.undeclare_parameter; TransportError for unknown or read-only names."""
+
+    def set_parameter(self, name: str, value: ParameterValue) -> tuple[bool, str]:
+        """Set one parameter from the node itself, through the validator and listeners as a
+        SetParameters call would; (ok, reason)."""
 
     def get_parameter(self, name: str) -> Any: ...
 

@@ -39,7 +39,9 @@ project's CI (no ROS install); every call below is one rclpy documents:
   sensor_msgs/Range fields), never a flag's.
 
 Additions over plain rclpy, kept identical to the DDS port: declare_parameter adopts a value
-that a launch override already declared (rclpy would raise ParameterAlreadyDeclaredException),
+that a launch override already declared (rclpy would raise ParameterAlreadyDeclaredException;
+with ignore_override the override is undeclared first, then the given value declared), a
+rejected launch value raises TransportError (rclpy: InvalidParameterValueException),
 timers count `missed` periods, client.call takes a timeout and works before spin(), and
 callbacks are wrapped by receive_faults.FaultLog: an exception raised by a subscription or
 timer callback is counted and logged at most once a minute (rclpy would end spin()), one
@@ -47,6 +49,8 @@ raised by a service callback also gives the caller an error reply, and an except
 rclpy's executor raises while taking a sample (a sample rclpy cannot convert, such as a string
 that is not UTF-8) is counted as a dropped sample of 'rclpy executor' and spinning goes on.
 Sources are named by the names given to the port (before remapping).
+Parameter ranges are ParameterDescriptor.floating_point_range, so rclpy itself refuses values
+outside them (Node._apply_floating_point_range) before the validator runs.
 """
 from __future__ import annotations
 
@@ -316,25 +320,59 @@ class RclpyPort:
     # --- parameters ------------------------------------------------------------------------
 
     def declare_parameter(self, name: str, value: Any, description: str = '',
-                          read_only: bool = False) -> Any:
-        from rcl_interfaces.msg import ParameterDescriptor
+                          read_only: bool = False,
+                          value_range: tuple[float, float] | None = None,
+                          ignore_override: bool = False) -> Any:
+        from rcl_interfaces.msg import FloatingPointRange, ParameterDescriptor
+        from rclpy.exceptions import ParameterException
         if isinstance(value, (list, tuple)) and not value:
             msg = (f'parameter {name!r}: an empty list default has no element type; give a '
                    'non-empty default')
             raise TransportError(msg)
+        ranges = [] if value_range is None else [FloatingPointRange(
+            from_value=float(value_range[0]), to_value=float(value_range[1]), step=0.0)]
+        if name in self._adoptable and ignore_override:
+            # declared from the launch override at start: drop it, declare the given value
+            self._adoptable.discard(name)
+            self.node.undeclare_parameter(name)
         if name not in self._adoptable:
-            descriptor = ParameterDescriptor(description=description, read_only=read_only)
-            return self.node.declare_parameter(name, value, descriptor)
-        self._adoptable.discard(name)
+            descriptor = ParameterDescriptor(description=description, read_only=read_only,
+                                             floating_point_range=ranges)
+            try:
+                return self.node.declare_parameter(name, value, descriptor,
+                                                   ignore_override=ignore_override)
+            except ParameterException as exc:   # out of range, refused or of another type
+                msg = f'parameter {name!r} rejected: {exc}'
+                raise TransportError(msg) from None
         current = self.node.get_parameter(name)
         if self._validator is not None:
             ok, reason = self._validator({name: current.value})
             if not ok:
                 msg = f'parameter {name!r} = {current.value!r} rejected: {reason}'
                 raise TransportError(msg)
-        self.node.set_descriptor(name, ParameterDescriptor(
-            type=current.type_.value, description=description, read_only=read_only))
+        try:
+            self.node.set_descriptor(name, ParameterDescriptor(
+                type=current.type_.value, description=description, read_only=read_only,
+                floating_point_range=ranges))
+        except ParameterException as exc:   # the launch value is out of range
+            msg = f'parameter {name!r} = {current.value!r} rejected: {exc}'
+            raise TransportError(msg) from None
+        self._adoptable.discard(name)
         return self.node.get_parameter(name)
+
+    def undeclare_parameter(self, name: str) -> None:
+        from rclpy.exceptions import ParameterImmutableException, ParameterNotDeclaredException
+        try:
+            self.node.undeclare_parameter(name)
+        except (ParameterNotDeclaredException, ParameterImmutableException) as exc:
+            msg = f'parameter {name!r} cannot be undeclared: {exc}'
+            raise TransportError(msg) from None
+        self._adoptable.discard(name)
+
+    def set_parameter(self, name: str, value: Any) -> tuple[bool, str]:
+        from rclpy.parameter import Parameter
+        (result,) = self.node.set_parameters([Parameter(name, value=value)])
+        return bool(result.successful), str(result.reason)
 
     def get_parameter(self, name: str) -> Any:
         if not self.node.has_parameter(name):
@@ -348,16 +386,29 @@ class RclpyPort:
     def _on_set(self, params: list[Any]) -> Any:
         from rcl_interfaces.msg import SetParametersResult
         values = {p.name: p.value for p in params}
-        ok, reason = (True, '') if self._validator is None else self._validator(values)
+        try:
+            ok, reason = (True, '') if self._validator is None else self._validator(values)
+        except Exception as exc:  # noqa: BLE001 - a refusal with a log line, never an exit
+            self._report('parameter validator', exc)
+            ok, reason = False, f'rejected: the node failed to check it ({exc!r})'
         if ok and not self._post_set:
-            for listener in self._listeners:
-                listener(values)
+            self._notify(values)
         return SetParametersResult(successful=bool(ok), reason='' if ok else reason)
 
     def _post_set_callback(self, params: list[Any]) -> None:
-        values = {p.name: p.value for p in params}
+        self._notify({p.name: p.value for p in params})
+
+    def _notify(self, values: dict[str, Any]) -> None:
         for listener in self._listeners:
-            listener(values)
+            try:
+                listener(values)
+            except Exception as exc:  # noqa: BLE001 - logged; the values stay set
+                self._report('parameter listener', exc)
+
+    def _report(self, what: str, exc: BaseException) -> None:
+        import traceback
+        self.log('error', f'{what} raised (the node goes on):\n'
+                 + ''.join(traceback.format_exception(exc)).rstrip())
 
     def _ensure_on_set(self) -> None:
         if not self._on_set_added:

@@ -145,7 +145,11 @@ def test_activate_move_retune_and_reject(setup) -> None:
     assert ok.results[0].successful, ok.results[0].reason
     bad = robot.set_double('move_to_point.tip_on_line.gain', -1.0)
     assert not bad.results[0].successful
-    assert 'must be > 0' in bad.results[0].reason
+    # the descriptor's range refuses it first, with rclpy's reason (Node._apply_floating_point_
+    # range); 0.0, at the edge of the range, reaches the node's own check (gains are > 0)
+    assert 'out of range Min: 0.0, Max: inf' in bad.results[0].reason
+    zero = robot.set_double('move_to_point.tip_on_line.gain', 0.0)
+    assert not zero.results[0].successful and 'must be > 0' in zero.results[0].reason
     # a tunable goal: the arm moves to the new goal after re-activation
     assert robot.set_double('move_to_point.goal_z', 0.40).results[0].successful
     robot.events.clear()

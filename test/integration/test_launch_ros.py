@@ -14,6 +14,7 @@ the node (a rosbag2 folder with metadata.yaml is left behind).
 from __future__ import annotations
 
 import os
+import shutil
 import tempfile
 import unittest
 from pathlib import Path
@@ -74,5 +75,6 @@ class TestControllerAfterShutdown(unittest.TestCase):
         launch_testing.asserts.assertExitCodes(proc_info)
 
     def test_record_argument_made_a_bag(self, bag: Path) -> None:
+        self.addCleanup(shutil.rmtree, bag.parent, True)    # the mkdtemp folder of this test
         self.assertTrue((bag / 'metadata.yaml').is_file(),
                         f'record:={bag} did not leave a rosbag2 metadata.yaml')

@@ -1,5 +1,8 @@
 """Fault injection into the controller process over DDS: the watchdog's contract end to end.
 
+A gripper driver (its own process) publishes its finger joint on /joint_states all the time (a
+second publisher, as in most cells): it must never keep the arm's joints fresh (issue 8 item 1).
+
 Stale joint_states, a stale person source and NaN from a sensor must each give a zero command,
 nothing published may exceed the joint speed limits, and motion resumes only after the clear
 condition held for resume_after (hysteresis). Timeouts and recovery rules: constraint_ctrl/safety/
@@ -74,6 +77,20 @@ limits:
   joint_acceleration: 10.0
 """
 
+GRIPPER = """
+from constraint_ctrl.transport.port import open_port
+port = open_port('dds', 'gripper_driver', ['--ros-args'])
+t = port.types
+pub = port.create_publisher(t.JointState, '/joint_states', 'sensor')
+def tick():
+    ns = port.now_ns()
+    pub.publish(t.JointState(header=t.Header(stamp=t.Time(sec=ns // 10**9, nanosec=ns % 10**9)),
+                             name=['finger_joint'], position=[0.01], velocity=[], effort=[]))
+port.create_timer(0.02, tick)
+port.spin()
+port.shutdown()
+"""
+
 
 class Peer:
     def __init__(self) -> None:
@@ -97,8 +114,18 @@ class Peer:
         self.person = self.port.create_publisher(t.PointStamped, '/cell/operator', 'sensor')
         self.value = self.port.create_publisher(t.Float64, '/test/offset', 'sensor')
         self.last_js = 0.0
+        self.status: list[tuple[float, dict[str, str]]] = []
+        self.port.create_subscription(t.DiagnosticArray, f'{NODE}/status', self._on_status,
+                                      'default')
         self.port.create_timer(0.004, self._publish)
         threading.Thread(target=self.port.spin, daemon=True).start()
+
+    def _on_status(self, msg: Any) -> None:
+        for st in msg.status:
+            if st.name.endswith(': watchdog'):
+                with self.lock:
+                    self.status.append((time.monotonic(),
+                                        {kv.key: kv.value for kv in st.values}))
 
     def _on_cmd(self, msg: Any) -> None:
         with self.lock:
@@ -169,6 +196,10 @@ def peer(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Peer]:
     proc = subprocess.Popen([sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport',
                              'dds', '--ros-args', '--params-file', str(params)],
                             env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+    # the gripper driver: its own joint on the same topic, always on, at 50 Hz, so it alone
+    # would refresh a per-message stamp well within JS_TIMEOUT
+    gripper = subprocess.Popen([sys.executable, '-c', GRIPPER], env=env,
+                               stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT)
     os.environ['ROS_DOMAIN_ID'] = domain
     try:
         p = Peer()
@@ -180,6 +211,8 @@ def peer(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Peer]:
     assert p.moving(), 'the controller never started moving'
     yield p
     p.port.shutdown()
+    gripper.send_signal(signal.SIGINT)
+    gripper.wait(10)
     proc.send_signal(signal.SIGINT)
     proc.wait(10)
 
@@ -248,6 +281,11 @@ def test_fault_gives_zero_and_resumes_after_hysteresis(peer: Peer, fault: str) -
         # the tick that sees it go stale at the boundary); a busy node runs fewer ticks, not more
         moving = [c for s, c in peer.answers_since(last_good) if s == last_good and c.any()]
         assert len(moving) <= int(JS_TIMEOUT * RATE) + 2, len(moving)
+        # the status names the arm's joints, although the gripper's samples kept coming
+        with peer.lock:
+            reasons = [v['reason'] for t, v in peer.status if start <= t <= end + SLACK]
+        assert any('joint(s) joint_1, joint_2, joint_3, joint_4, joint_5, joint_6 not updated'
+                   in r for r in reasons), reasons
     elif fault == 'person':
         # a command answering joint_states stamped after the last person sample's stamp plus the
         # person timeout is computed at a node time later than that: the source is stale

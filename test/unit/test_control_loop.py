@@ -63,8 +63,7 @@ def test_tunable_change_moves_the_goal(loop: ControlLoop) -> None:
     q, t, _ = _run(loop, START, 0.0, 0.1)
     skill = loop.library.get('move_to_point')
     assert skill is not None
-    index = skill.compiled.param_index('goal_z')
-    loop.set_parameters('move_to_point', {index: 0.40})
+    loop.set_parameters('move_to_point', {'goal_z': 0.40})
     loop.request_activation('move_to_point')
     q, t, outs = _run(loop, q, t, 4.0)
     tip_z = skill.compiled.model.fk_function(['tool_tip'])(q)
@@ -116,3 +115,36 @@ def test_unknown_skill_is_refused_and_the_old_one_keeps_running(loop: ControlLoo
     q, t, outs = _run(loop, q, t, 0.1)
     assert outs[-1].skill == 'keep_tool_vertical'
     assert np.abs(outs[-1].command).max() > 0.0
+
+
+def test_a_request_no_tick_took_is_withdrawn_and_never_switches_later(loop: ControlLoop) -> None:
+    """A refused (timed out) activation must not happen at a later tick: the caller was told
+    it failed, and its tunables were not applied."""
+    q, t, _ = _run(loop, START, 0.0, 0.05)
+    ok, message = loop.request_activation('move_to_point', timeout=0.05,
+                                          params={'goal_z': 0.4})
+    assert not ok and 'nothing was switched' in message
+    q, t, outs = _run(loop, q, t, 0.05)
+    assert all(o.skill is None and o.activated is None for o in outs)
+    runner = loop.library.get('move_to_point').runner
+    assert runner.solver.p[runner.skill.param_index('goal_z')] != 0.4
+
+
+def test_a_tick_that_raises_answers_the_waiting_request(loop: ControlLoop,
+                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    import threading
+    q, t, _ = _run(loop, START, 0.0, 0.05)
+    result: list = []
+    waiter = threading.Thread(target=lambda: result.append(
+        loop.request_activation('move_to_point', timeout=5.0)))
+    waiter.start()
+    while loop._switch is None:
+        pass
+
+    def broken(*args, **kwargs):
+        raise FloatingPointError('kaput')
+    monkeypatch.setattr(loop.watchdog, 'step', broken)
+    with pytest.raises(FloatingPointError):
+        loop.step(Snapshot(now=t, q=q.copy(), joint_state_stamp=t))
+    waiter.join(5.0)
+    assert result and result[0][0] is False and 'kaput' in result[0][1]

@@ -156,6 +156,40 @@ def test_stale_joint_states_reports_age_and_timeout() -> None:
     assert transition.values['timeout'] == 0.05
 
 
+def test_every_joint_must_be_fresh_on_its_own() -> None:
+    """Per-joint freshness: one joint whose last valid update is older than the timeout stops
+    the arm in that tick, and the fault names that joint (issue 8 item 1: a second publisher
+    carrying other joints must not keep the arm's joints fresh). Timeout rule: common practice
+    (safety-facts.md section 6)."""
+    cell = _running_cell()
+    stamps = np.array([cell.now, cell.now - 0.08, cell.now])
+    out = cell.tick((0.4, 0.0, 0.0), joint_stamps=stamps)
+    assert out.state is State.STOPPED and not out.command.any()
+    assert "joint(s) y not updated within 0.050 s" in out.reason
+    assert 'x,' not in out.reason and ', z' not in out.reason
+    (transition,) = out.transitions
+    assert transition.values['age'] == pytest.approx(0.08)
+    assert transition.values['stale_joints'] == 1.0
+
+
+def test_fresh_per_joint_stamps_keep_moving_and_never_updated_joints_stop() -> None:
+    cell = _running_cell()
+    fresh = cell.tick((0.4, 0.0, 0.0), joint_stamps=np.array([cell.now - 0.04, cell.now,
+                                                                cell.now]))
+    assert fresh.state is State.NORMAL and fresh.command[0] == pytest.approx(0.4)
+    out = cell.tick((0.4, 0.0, 0.0), joint_stamps=np.array([cell.now, math.nan, math.nan]))
+    assert out.state is State.STOPPED and not out.command.any()
+    assert 'joint(s) y, z not updated' in out.reason and 'no valid update' in out.reason
+
+
+def test_a_joint_stamped_in_the_future_is_stale() -> None:
+    cell = _running_cell()
+    out = cell.tick((0.4, 0.0, 0.0), joint_stamps=np.array([cell.now, cell.now,
+                                                              cell.now + 0.2]))
+    assert out.state is State.STOPPED
+    assert 'joint(s) z' in out.reason and '0.200 s in the future' in out.reason
+
+
 def test_stamp_from_the_future_is_stale() -> None:
     """A clock problem is not fresh data (common practice: reject future timestamps)."""
     cell = _running_cell()
