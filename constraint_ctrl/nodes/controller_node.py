@@ -469,10 +469,14 @@ class ControllerNode:
 
     def _send_status(self, out: LoopOutput) -> None:
         """On the tick: take the rows of this solve; the worker builds and publishes."""
+        self._status.post(*self._status_job(out))
+
+    def _status_job(self, out: LoopOutput) -> tuple[LoopOutput, Any, list[str]]:
+        """What only the tick can read consistently: its output and the rows of its solve."""
         runner = self.loop.active
         rows = runner.diagnostics() if runner is not None and out.tick is not None else None
         names = [r.name for r in runner.skill.rows] if runner is not None else []
-        self._status.post(out, rows, names)
+        return out, rows, names
 
     def _publish_status(self, out: LoopOutput, rows: Any, names: list[str]) -> None:
         """On the status thread (StatusWorker)."""
