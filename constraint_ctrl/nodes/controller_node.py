@@ -166,6 +166,7 @@ class ControllerNode:
         self._closing = False
         # arrival of a joint_states sample -> its command published (tick_on joint_states)
         self._arrived_ns = 0
+        self._answered_arrival = 0   # arrival of the sample the current tick answers
         self._command_msgs: tuple[Any, Any] | None = None   # built on first use, then reused
         self._latency_ns = np.zeros(1 << 20, dtype=np.int64)
         self._latency_count = 0
@@ -309,9 +310,9 @@ class ControllerNode:
                     seen[i] = True
                 self._js_stamp = stamp
                 self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
+                self._arrived_ns = arrived
         self._js_problems.ok('joint_states', 'valid samples again')
         if plan and self.tick_on == 'joint_states':
-            self._arrived_ns = arrived
             self._tick()
             # the fallback timer stands in only when samples stop: on rclpy each timer call
             # costs an executor wake-up, so it restarts its period after every sample's tick
@@ -341,8 +342,8 @@ class ControllerNode:
             except (TypeError, ValueError):
                 value = float('nan')
             stamp = self._stamp(msg.header) if mapping.has_header else time.monotonic()
-            with self._lock:
-                self._inputs[mapping.name] = InputSample(value, stamp)
+            with self._lock:   # a new dict: a tick's snapshot keeps the one it took
+                self._inputs = {**self._inputs, mapping.name: InputSample(value, stamp)}
         return callback
 
     def _person_callback(self, source: str) -> Any:
@@ -360,8 +361,9 @@ class ControllerNode:
                 return
             problems.ok(source, f'person positions in {self.base_frame!r} again')
             point = np.array([msg.point.x, msg.point.y, msg.point.z], dtype=float)
-            with self._lock:
-                self._people[source] = PersonSample(source, point, self._stamp(msg.header))
+            sample = PersonSample(source, point, self._stamp(msg.header))
+            with self._lock:   # a new dict: a tick's snapshot keeps the one it took
+                self._people = {**self._people, source: sample}
         return callback
 
     # ----------------------------------------------------------------- tick
@@ -374,14 +376,17 @@ class ControllerNode:
     def _snapshot(self) -> Snapshot:
         with self._lock:
             # the command of this tick answers the latest sample in this snapshot, not one that
-            # arrives while the tick runs
+            # arrives while the tick runs (its arrival: for the node's latency statistics)
             self._answered = self._js_header
+            self._answered_arrival, self._arrived_ns = self._arrived_ns, 0
             seen = all(self._seen)
             q = np.array(self._q) if seen else None
             missing = [] if seen else [j for j, s in zip(self.model.joint_names, self._seen)
                                        if not s]
+            # inputs and people: the callbacks replace these dicts, never change them in
+            # place, so the snapshot takes them as they are
             return Snapshot(now=time.monotonic(), q=q, joint_state_stamp=self._js_stamp,
-                            inputs=dict(self._inputs), people=dict(self._people),
+                            inputs=self._inputs, people=self._people,
                             missing_joints=missing if self._js_stamp is not None else [],
                             joint_stamps=np.array(self._joint_stamps))
 
@@ -405,11 +410,10 @@ class ControllerNode:
                 self._initial = ''
             out = self.loop.step(snap)
             self._send(out)
-            if self._arrived_ns:
+            if self._answered_arrival:
                 self._latency_ns[self._latency_count % self._latency_ns.size] = \
-                    time.perf_counter_ns() - self._arrived_ns
+                    time.perf_counter_ns() - self._answered_arrival
                 self._latency_count += 1
-                self._arrived_ns = 0
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
