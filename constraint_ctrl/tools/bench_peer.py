@@ -113,8 +113,10 @@ class Peer:
         for target in self.targets:
             target.publisher = self.port.create_publisher(t.JointState, target.joint_states,
                                                           'sensor')
+            # a deep reader history (the parameters profile: reliable, keep last 1000), so a
+            # late wake-up of this process never loses an answer that the node did send
             self.port.create_subscription(t.JointState, target.answers,
-                                          self._on_answer(target), 'default')
+                                          self._on_answer(target), 'parameters')
             if target.events:
                 self.port.create_subscription(t.String, target.events,
                                               self._on_event(target), 'default')
