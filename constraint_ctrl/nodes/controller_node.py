@@ -313,7 +313,9 @@ class ControllerNode:
                 self._arrived_ns = arrived
         self._js_problems.ok('joint_states', 'valid samples again')
         if plan and self.tick_on == 'joint_states':
-            self._tick()
+            # waits for a fallback tick that runs on the timer's thread (DDS port), so this
+            # sample is still answered, right after it
+            self._tick(wait=True)
             # the fallback timer stands in only when samples stop: on rclpy each timer call
             # costs an executor wake-up, so it restarts its period after every sample's tick
             self.timer.reset()
@@ -397,12 +399,16 @@ class ControllerNode:
             self.port.log('warn' if self.realtime.refused and not self.realtime.granted
                           else 'info', f'realtime: {line}')
 
-    def _tick(self) -> None:
+    def _tick(self, wait: bool = False) -> None:
+        """One tick. ``wait``: for the tick lock (a sample's tick); without, a tick already
+        running (the timer's fallback tick) makes this one unnecessary."""
         if self.realtime is not None:
             self._enter_realtime()
-        if self._closing or not self._tick_lock.acquire(blocking=False):
+        if self._closing or not self._tick_lock.acquire(blocking=wait):
             return
         try:
+            if self._closing:            # close() held the lock meanwhile
+                return
             snap = self._snapshot()
             self._last_tick = snap.now
             if self._initial and snap.q is not None:
