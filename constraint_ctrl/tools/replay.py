@@ -18,8 +18,11 @@ node's tick had not seen it yet. With 500 Hz joint states and inputs on a 500 Hz
 happens to a good share of ticks on a busy machine; each such tick's command differs by the
 skill's response to one sample of sensor noise or motion, and the acceleration limits carry it
 into the next few ticks. The tick that activates the skill can be affected the same way, and
-then start_value() (the start pose) differs by one sample throughout. Everywhere else the
-replay computes the recorded command to round-off (see the README's replay section).
+then start_value() (the start pose) differs by one sample throughout. The watchdog's clock is
+the command's log time, a little after the node's snapshot: near a stale-data timeout the
+replay can stop where the node did not, or, having seen a sample the node had not, run on where
+the node stopped. Everywhere else the replay computes the recorded command to round-off (see
+the README's replay section).
 
 Open loop: the joints do not respond to the replayed commands, so a changed gain shows the
 command it would have sent from the recorded states, not how the arm would then have moved. The
@@ -49,6 +52,9 @@ from ..errors import ConstraintCtrlError
 LOOKBACK = 5.0
 #: ~/joint_command follows its ~/command within this (ns); further apart they are not paired.
 PAIRING = 50_000_000
+#: The node's shutdown zero commands (several, back to back) are this close together (ns).
+BURST_GAP = 500_000
+SHUTDOWN_ZEROS = 3
 
 
 class ReplayError(ConstraintCtrlError):
@@ -129,14 +135,37 @@ def index_bag(bag: Path, node: str | None = None) -> BagIndex:
             found = sorted(c.topic for c in reader.connections)
             raise ReplayError(f'{bag}: expected one controller ~/command topic'
                               + (f' of node {node}' if node else '') + f'; topics: {found}'
-                              + ('' if commands else '') + (
-                                  ' (give --node)' if len(commands) > 1 else ''))
+                              + (' (give --node)' if len(commands) > 1 else ''))
         prefix = commands[0].topic[:-len('/command')]
         events = [c for c in reader.connections if c.topic == f'{prefix}/events']
-        times = np.array([t for _, t, _ in reader.messages(connections=commands)], dtype=np.int64)
+        times, tail = [], []
+        for conn, t, raw in reader.messages(connections=commands):
+            times.append(t)
+            tail = [*tail[-(SHUTDOWN_ZEROS * 2):], (conn, raw)]
+        zeros = [not np.any(reader.deserialize(raw, conn.msgtype).data) for conn, raw in tail]
         names = [(t, reader.deserialize(raw, c.msgtype).data)
                  for c, t, raw in reader.messages(connections=events)]
-        return BagIndex(bag, int(reader.start_time), prefix, times, names)
+        start = int(reader.start_time)
+    times_ns = np.array(times, dtype=np.int64)
+    return BagIndex(bag, start, prefix,
+                    times_ns[:len(times_ns) - shutdown_burst(times_ns[-len(zeros):], zeros)],
+                    names)
+
+
+def shutdown_burst(times_ns: np.ndarray, zero: list[bool]) -> int:
+    """How many of the last commands are the node's shutdown zeros, not ticks.
+
+    At shutdown the node publishes zero commands back to back (ControllerNode.close): a trailing
+    run of all-zero commands each followed by the next within BURST_GAP. A tick is followed by
+    the next tick about one period later, so a real zero tick never counts.
+    """
+    count = 0
+    for k in range(len(times_ns) - 1, -1, -1):
+        last = k == len(times_ns) - 1
+        if not zero[k] or not (last or times_ns[k + 1] - times_ns[k] < BURST_GAP):
+            break
+        count += 1
+    return count if count >= 2 else 0
 
 
 @dataclass
@@ -529,6 +558,7 @@ def summarise(index: BagIndex, window: Window, trace: ReplayTrace, skill: str,
                            'max_abs_recorded': float(np.abs(trace.recorded[:, j]).max())}
     worst = np.abs(diff).max(axis=1)
     k = int(worst.argmax())
+    moving = np.abs(trace.recorded).max(axis=1) > 0.0
     return {
         'bag': str(index.path), 'node': index.node, 'skill': skill,
         'window': {'from_s': round(float(trace.time[0]), 6), 'to_s': round(float(trace.time[-1]), 6),
@@ -545,6 +575,11 @@ def summarise(index: BagIndex, window: Window, trace: ReplayTrace, skill: str,
         'max_abs_difference_at_s': round(float(trace.time[k]), 6),
         'rms_difference': float(np.sqrt(np.mean(diff ** 2))),
         'ticks_within': {f'{tol:g}': int((worst <= tol).sum()) for tol in (1e-9, 1e-6, 1e-3)},
+        'ticks_recorded_moving': int(moving.sum()),
+        'ticks_within_while_moving': {f'{tol:g}': int((worst[moving] <= tol).sum())
+                                      for tol in (1e-9, 1e-6, 1e-3)},
+        'median_abs_difference_while_moving': float(np.median(worst[moving]))
+        if moving.any() else None,
         'watchdog_states': {s: trace.state.count(s) for s in sorted(set(trace.state))},
         'solve_status': {s: trace.status.count(s) for s in sorted(set(trace.status))},
         'events': [{'time_s': round(t, 6), 'event': e} for t, e in trace.events],
@@ -565,6 +600,9 @@ def run_replay(args: argparse.Namespace) -> int:
                         node_params)
     args.out.mkdir(parents=True, exist_ok=True)
     (args.out / 'summary.json').write_text(json.dumps(summary, indent=2) + '\n')
+    np.savez_compressed(args.out / 'ticks.npz', time=trace.time, recorded=trace.recorded,
+                        replayed=trace.command, watchdog_state=np.array(trace.state),
+                        speed_scale=trace.speed_scale, joint_names=np.array(settings.joint_names))
     from .plots import plot_replay
     written = plot_replay(trace, rows, settings.joint_names, spec.name, args.out)
     print(f"replayed {spec.name} over {summary['ticks_compared']} ticks, "
@@ -577,7 +615,8 @@ def run_replay(args: argparse.Namespace) -> int:
     for name, values in summary['joints'].items():
         print(f"  {name:12s} max {values['max_abs_difference']:.3g}  RMS "
               f"{values['rms_difference']:.3g}")
-    print('outputs: ' + ', '.join(str(p) for p in [args.out / 'summary.json', *written]))
+    print('outputs: ' + ', '.join(str(p) for p in [args.out / 'summary.json',
+                                                    args.out / 'ticks.npz', *written]))
     return 0
 
 

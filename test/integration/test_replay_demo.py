@@ -5,23 +5,28 @@ processes over DDS; plan: approach the shaft, seat the gear), then `constraint-c
 re-runs seat_gear over the recorded joint states and wrist force, with the parameters file the
 controller ran with. The recorded bag, read independently with rosbags, is the reference.
 
-How close, and why not exactly (measured in one run on a busy 2-core machine: RMS difference
-2.4 % of the RMS command, 53 % of the ticks identical to 1e-9, the largest single difference
-0.01 rad/s = the skill's acceleration limit x one tick):
-- tick alignment: the bag says when each sample arrived, not whether it arrived before or
+How close, and why not exactly. Measured in three runs on a busy 2-core machine, over the ticks
+where the recorded command was not zero: 43 %, 53 % and 88 % of the ticks identical to 1e-9,
+every tick within 0.01 rad/s (the skill's acceleration limit x one tick); where the watchdog
+stopped in one and not the other, a whole command.
+- Tick alignment: the bag says when each sample arrived, not whether it arrived before or
   after the node took its snapshot; a 500 Hz force or joint sample logged while the node was
   computing is given to the replayed tick one tick early, so that tick answers one sample of
-  sensor noise differently;
-- the acceleration limits (the skill's 5 rad/s^2 and the watchdog's) bound each command
-  relative to the previous one, so such a difference carries into the next few ticks, and the
+  sensor noise differently.
+- The acceleration limits (the skill's 5 rad/s^2 and the watchdog's) bound each command
+  relative to the previous one, so such a difference carries into the next few ticks; the
   replay starts from a zero previous command where the node continued from the last command
-  of the previous skill;
-- the skill clock starts at the recorded activation tick and advances one tick per recorded
+  of the previous skill.
+- The skill clock starts at the recorded activation tick and advances one tick per recorded
   command, as in the node, so time-based targets agree; start_value() agrees unless the
-  activation tick itself was ambiguous;
-- the watchdog's caps are the same code with the same parameters; the operator stays outside
-  the cell in this piece, so they do not act.
-The bounds below leave a factor of four to ten over that run. A changed gain must move the
+  activation tick itself was ambiguous.
+- The watchdog is the same code with the same parameters, on the same recorded samples, so
+  its caps agree; but its clock in the replay is the command's log time, a little later than
+  the node's snapshot, and it may see a sample the node had not seen yet. Near a stale-data
+  timeout (a busy machine makes them: the sim or the node stalls for 50 ms) the replay can
+  stop where the node did not, or run on where the node stopped, and then differs by a whole
+  command until one of them resumes (one such stop in the second run, at the end of the bag).
+The bounds below leave a margin of two or more over those runs. A changed gain must move the
 commands much further than the alignment does (the replay can tell a change from noise).
 """
 from __future__ import annotations
@@ -107,29 +112,43 @@ def test_replay_reproduces_the_recorded_commands(run: Path, tmp_path: Path) -> N
     first = int(np.searchsorted(times, activated, side='right')) - 1
     later = [t for t, name in events if name.startswith('activated_') and t > activated]
     last = (int(np.searchsorted(times, later[0], side='right')) - 2) if later else len(times) - 1
-    # one replayed tick per recorded command of the skill's activation
+    # the node's close() ends the bag with zero commands sent back to back: not ticks
+    while last > first and not values[last].any() and \
+            (last == len(times) - 1 or times[last + 1] - times[last] < 500_000):
+        last -= 1
+    # one replayed tick per recorded command of the skill's activation, in the same order
     assert summary['ticks_compared'] == last - first + 1
     assert summary['solve_status'] == {'ok': summary['ticks_compared']}
-    recorded = values[first:last + 1]
-    rms_recorded = float(np.sqrt(np.mean(recorded ** 2)))
-    print(f"replay of the demo bag: {summary['ticks_compared']} ticks, RMS difference "
-          f"{summary['rms_difference']:.3g} = {summary['rms_difference'] / rms_recorded:.1%} of "
-          f"the RMS command {rms_recorded:.3g} rad/s, max {summary['max_abs_difference']:.3g}, "
-          f"identical to 1e-9: {summary['ticks_within']['1e-09']} ticks")
-    assert rms_recorded > 0.005                          # the skill really moved the arm
-    assert summary['rms_difference'] <= 0.1 * rms_recorded
-    assert summary['ticks_within']['1e-09'] >= 0.1 * summary['ticks_compared']
+    ticks = np.load(tmp_path / 'same' / 'ticks.npz')
+    assert np.array_equal(ticks['recorded'], values[first:last + 1])
+    moving = summary['ticks_recorded_moving']
+    identical = summary['ticks_within_while_moving']['1e-09']
+    print(f"replay of the demo bag: {summary['ticks_compared']} ticks, {moving} with a non-zero "
+          f"recorded command, {identical} of them identical to 1e-9; median difference "
+          f"{summary['median_abs_difference_while_moving']:.3g}, max "
+          f"{summary['max_abs_difference']:.3g} rad/s; states {summary['watchdog_states']}")
+    assert moving >= 200                                 # the skill really moved the arm
+    assert identical >= 0.25 * moving
     # the replay raises the skill's event where the node did (same recorded joint states)
     seated = [t for t, name in events if name == 'seated']
     replayed = [e['time_s'] for e in summary['events'] if e['event'] == 'seated']
     assert seated and replayed
     assert abs(replayed[0] - (seated[0] - start) * 1e-9) <= 0.05
-    assert set(summary['watchdog_states']) == {'normal'}   # the operator stayed outside
+    # one tick misattributed changes a command by at most about one acceleration step of the
+    # skill (5 rad/s^2 x 2 ms = 0.01 rad/s) relative to the same previous command
+    within = np.abs(ticks['replayed'] - ticks['recorded']).max(axis=1)
+    nonzero = np.abs(ticks['recorded']).max(axis=1) > 0.0
+    assert (within[nonzero] <= 0.02).mean() >= 0.8
     for name in ('commands.png', 'rows.png'):
         assert (tmp_path / 'same' / name).stat().st_size > 1000
 
 
 def test_a_changed_gain_stands_out_from_the_alignment(run: Path, tmp_path: Path) -> None:
+    """With the press gain tripled hardly a tick agrees, where the unchanged skill agrees on a
+    good share of them: what agrees is reproduction, not coincidence."""
     same = _replay(run, tmp_path / 'same')
     changed = _replay(run, tmp_path / 'changed', '--set', 'press.gain=15')
-    assert changed['rms_difference'] >= 5.0 * same['rms_difference']
+    moving = changed['ticks_recorded_moving']
+    assert same['ticks_within_while_moving']['1e-09'] >= 0.25 * moving
+    assert changed['ticks_within_while_moving']['1e-09'] <= 0.05 * moving
+    assert changed['median_abs_difference_while_moving'] >= 1e-4
