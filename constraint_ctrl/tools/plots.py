@@ -264,8 +264,9 @@ def replay_figures(trace: ReplayTrace, rows: RecordedRows, joint_names: Sequence
     axes[0].set_ylabel('|error| (unit of its function)')
     axes[1].set_ylabel('|slack| (unit of its function / s)')
     axes[1].set_xlabel(xlabel)
-    axes[0].set_title(f'{skill}: largest row of each constraint; lines replayed every tick, '
-                      f'dots recorded on ~/status (values <= {LOG_FLOOR:g} not drawn)')
+    axes[0].set_title(f'{skill}: largest row of each constraint; lines: replayed, every tick; '
+                      'dots: recorded on ~/status\n'
+                      f'(values <= {LOG_FLOOR:g}, e.g. a bound not reached, are not drawn)')
     figures['rows.png'] = fig
     return figures
 

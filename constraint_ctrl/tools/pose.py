@@ -14,8 +14,8 @@ from the target is a stationary point of every such row; several start guesses (
 then deterministic offsets within the joint limits) avoid it and other local minima.
 
 Output is YAML: comment lines, then one flow mapping ``{joint_1: ..., ...}`` that pastes into a
-skill's ``offline.start`` (values rounded to PRINT_DIGITS decimals; the residual reported is that
-of the rounded values).
+skill's ``offline.start`` (values rounded to PRINT_DIGITS decimals, more for a tolerance below
+1e-5; the residual reported is that of the rounded values).
 """
 from __future__ import annotations
 
@@ -48,6 +48,11 @@ STALL_STEPS = 60
 #: Start guesses tried in all (the first is --near or the default pose).
 ATTEMPTS = 6
 PRINT_DIGITS = 6
+
+
+def print_digits(tolerance: float) -> int:
+    """Decimals that keep rounding well inside the tolerance (a 1 m lever, six joints)."""
+    return max(PRINT_DIGITS, min(12, math.ceil(-math.log10(tolerance)) + 2))
 
 
 class PoseError(ConstraintCtrlError):
@@ -277,19 +282,19 @@ def solve(urdf: Path, tool: str, target: Target, start: np.ndarray | None = None
             break
     assert best is not None
     q = _wrap_continuous(model, np.clip(best[1], model.lower, model.upper))
-    rounded = np.round(q, PRINT_DIGITS)
+    rounded = np.round(q, print_digits(tolerance))
     pos, ang = residuals(tool_pose(model, tool, rounded), target)
     joints = {name: float(v) + 0.0 for name, v in zip(model.joint_names, rounded)}
     return Solution(joints, pos, ang, best[2], tried, pos <= tolerance and ang <= tolerance)
 
 
-def flow_mapping(values: Mapping[str, float]) -> str:
+def flow_mapping(values: Mapping[str, float], digits: int = PRINT_DIGITS) -> str:
     """'{joint_1: 0.1, joint_2: -0.4}': YAML, pastes into offline.start."""
-    return '{' + ', '.join(f'{k}: {_number(v)}' for k, v in values.items()) + '}'
+    return '{' + ', '.join(f'{k}: {_number(v, digits)}' for k, v in values.items()) + '}'
 
 
-def _number(value: float) -> str:
-    text = f'{float(value) + 0.0:.{PRINT_DIGITS}f}'.rstrip('0')
+def _number(value: float, digits: int = PRINT_DIGITS) -> str:
+    text = f'{float(value) + 0.0:.{digits}f}'.rstrip('0')
     if text in ('-0.', '0.'):
         return '0.0'
     return text + '0' if text.endswith('.') else text
@@ -317,6 +322,9 @@ def run_pose(urdf: Path, tool: str, at: Sequence[float] | None, *, tool_down: bo
              base_link: str | None = None, tolerance: float = TOLERANCE) -> tuple[int, list[str],
                                                                                   str | None]:
     """(exit code, stdout lines, stderr message) of the `pose` command."""
+    if not SOLVE_TOLERANCE * 10 <= tolerance <= 0.1:
+        raise PoseError(f'--tolerance {tolerance:g}: expected a value between '
+                        f'{SOLVE_TOLERANCE * 10:g} and 0.1 (m and rad)')
     model = RobotModel.from_urdf(urdf, base_link=base_link)
     check_tool(model, tool)
     start = parse_joints(near, model) if near is not None else default_joints(model)
@@ -327,18 +335,19 @@ def run_pose(urdf: Path, tool: str, at: Sequence[float] | None, *, tool_down: bo
     target = Target.make(at, tool_down=tool_down, rpy=rpy)
     sol = solve(urdf, tool, target, start, base_link=base_link, tolerance=tolerance,
                 model=model)
+    digits = print_digits(tolerance)
     residual = (f'position off by {sol.position_error:.2g} m'
                 + (f', orientation by {sol.orientation_error:.2g} rad'
                    if target.z_axis is not None else ''))
     lines = [f'# {tool} in {model.base_link} {target.describe()}']
     if sol.reached:
-        lines.append(f'# reached: {residual} (values rounded to {PRINT_DIGITS} decimals; '
+        lines.append(f'# reached: {residual} (values rounded to {digits} decimals; '
                      f'{sol.steps} steps)')
-        lines.append(flow_mapping(sol.joints))
+        lines.append(flow_mapping(sol.joints, digits))
         return 0, lines, None
     lines.append(f'# NOT reached: the closest pose found ({sol.attempts} start guesses) has its '
                  f'{residual}')
-    lines.append(flow_mapping(sol.joints))
+    lines.append(flow_mapping(sol.joints, digits))
     message = (f'{tool} cannot reach the target within {tolerance:g} (m, rad): closest pose '
                f'found has its {residual}; printed above. Is the target within reach and the '
                'orientation possible there? Try --near with a start guess close to it.')

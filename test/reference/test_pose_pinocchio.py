@@ -204,3 +204,15 @@ def test_bad_link_and_bad_joint_are_clear_errors(capsys) -> None:
     code, _, err = pose_cli(capsys, str(ARM), '--tool', TOOL, '--near', '{joint_2: 5.0}')
     assert code == 2
     assert 'outside its URDF limits' in err
+
+
+def test_position_only_and_a_tighter_tolerance(ref: Reference, capsys) -> None:
+    """Without an orientation only the position is asked for; --tolerance 1e-8 prints more
+    decimals so that rounding stays inside it."""
+    target = np.array([0.40, 0.15, 0.50])
+    code, out, err = pose_cli(capsys, str(ARM), '--tool', TOOL, '--at', *map(str, target),
+                              '--tolerance', '1e-8')
+    assert code == 0, out + err
+    joints = printed_joints(out)
+    assert np.linalg.norm(ref.pose(joints).translation - target) <= 1e-8
+    assert ref.within_limits(joints)
