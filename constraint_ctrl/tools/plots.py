@@ -237,7 +237,14 @@ def replay_figures(trace: ReplayTrace, rows: RecordedRows, joint_names: Sequence
                       fontsize=8)
     axes[n].grid(alpha=0.3, which='both')
     legend_outside(axes[n])
-    state_panel(axes[n + 1], t, trace.state, label='watchdog state\n(replayed)')
+    if len(rows.time) and any(rows.watchdog_state):
+        state_panel(axes[n + 1], rows.time, rows.watchdog_state, label='watchdog state',
+                    color='tab:blue', alpha=0.5)
+        axes[n + 1].lines[-1].set(linewidth=3.0, label='recorded (~/status)')
+    state_panel(axes[n + 1], t, trace.state, label='watchdog state', color='tab:orange',
+                linestyle='--')
+    axes[n + 1].lines[-1].set_label('replayed')
+    legend_outside(axes[n + 1])
     axes[-1].set_xlabel(xlabel)
     axes[0].set_title(f'{skill}: joint velocity commands, recorded and replayed')
     figures['commands.png'] = fig
@@ -251,14 +258,16 @@ def replay_figures(trace: ReplayTrace, rows: RecordedRows, joint_names: Sequence
             idx = trace.constraints[con]
             if not idx:
                 continue
-            ours = np.nanmax(np.abs(values[:, idx]), axis=1)
-            ax.semilogy(t, above_floor(ours), lw=1.0, label=f'{con} (replayed)', **style)
+            ours = above_floor(np.nanmax(np.abs(values[:, idx]), axis=1))
+            note = '' if np.isfinite(ours).any() else f', always <= {LOG_FLOOR:g}'
+            ax.semilogy(t, ours, lw=1.0, label=f'{con} (replayed{note})', **style)
             recorded = [rows.values.get(trace.row_names[i], {}).get(what) for i in idx]
             recorded = [r for r in recorded if r is not None]
             if recorded and len(rows.time):
-                theirs = np.nanmax(np.abs(np.vstack(recorded)), axis=0)
-                ax.semilogy(rows.time, above_floor(theirs), linestyle='none', ms=3,
-                            label=f'{con} (recorded)', **dot)
+                theirs = above_floor(np.nanmax(np.abs(np.vstack(recorded)), axis=0))
+                note = '' if np.isfinite(theirs).any() else f', always <= {LOG_FLOOR:g}'
+                ax.semilogy(rows.time, theirs, linestyle='none', ms=3,
+                            label=f'{con} (recorded{note})', **dot)
         ax.grid(alpha=0.3, which='both')
         legend_outside(ax, fontsize=7)
     axes[0].set_ylabel('|error| (unit of its function)')

@@ -341,6 +341,7 @@ class RecordedRows:
 
     time: np.ndarray
     values: dict[str, dict[str, np.ndarray]]    # row -> 'error' | 'slack' | 'value' -> series
+    watchdog_state: list[str] = field(default_factory=list)   # at the same times
 
 
 def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float) -> RecordedRows:
@@ -351,6 +352,7 @@ def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float
     """
     times: list[float] = []
     raw: list[dict[str, str]] = []
+    states: list[str] = []
     with _open(index.path) as reader:
         conns = [c for c in reader.connections if c.topic == f'{index.node}/status']
         start = index.start_ns + int(begin_s * 1e9)
@@ -363,6 +365,7 @@ def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float
                 continue
             times.append(float(index.seconds(t)))
             raw.append(by_name.get('rows', {}))
+            states.append(by_name.get('watchdog', {}).get('state', ''))
     values: dict[str, dict[str, np.ndarray]] = {}
     keys = sorted({k for r in raw for k in r})
     for key in keys:
@@ -371,7 +374,7 @@ def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float
             continue
         series = np.array([float(r.get(key, 'nan')) for r in raw])
         values.setdefault(row, {})[what] = series
-    return RecordedRows(np.array(times), values)
+    return RecordedRows(np.array(times), values, states)
 
 
 # -------------------------------------------------------------------------------- the replay
