@@ -207,7 +207,8 @@ def test_replay_plots_follow_the_rules(saved: list[Figure], tmp_path: Path) -> N
                         js_matched=n)
     recorded_rows = RecordedRows(t[::20], {f'c{i}': {'error': error[::20, i],
                                                      'slack': error[::20, i] * 0.1}
-                                           for i in range(rows)})
+                                           for i in range(rows)},
+                                 ['normal'] * 10 + ['stopped'] * 10)
     plot_replay(trace, recorded_rows, [f'joint_{j}' for j in range(1, 7)], 'demo_skill',
                 tmp_path)
     assert len(saved) == 2
