@@ -2,13 +2,18 @@
 
 Subcommands import what they need lazily, so `check` never loads a middleware and a missing
 optional dependency only affects the subcommand that needs it. Errors of this package are
-printed as one line (file:line: field: message) with exit code 2, never as a traceback.
+printed as one line (file:line: field: message) with exit code 2, never as a traceback; any
+other exception that escapes a command (a bug) is one line with exit code 1, and its full
+traceback is printed too with the global option ``--debug`` (or the environment variable
+CONSTRAINT_CTRL_DEBUG=1, for entry points started by ros2 run or launch).
 """
 from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
+import traceback
 from pathlib import Path
 
 from .errors import ConstraintCtrlError
@@ -18,13 +23,22 @@ QP_SOLVER_CHOICES = ('quadprog', 'daqp')
 
 
 def _check(args: argparse.Namespace) -> int:
+    """Check every file named; one that cannot be loaded is reported and the others still run.
+
+    Exit code: 0 all clean, 1 warnings or errors found, 2 a file could not be loaded.
+    """
     from .tools.check import check_file
     status = 0
     for path in args.skills:
-        report = check_file(Path(path))
+        try:
+            report = check_file(Path(path), rate_hz=args.rate)
+        except ConstraintCtrlError as err:
+            print(f'error: {err}', file=sys.stderr)
+            status = 2
+            continue
         print('\n'.join(report.lines()))
         if not report.clean:
-            status = 1
+            status = max(status, 1)
     return status
 
 
@@ -32,20 +46,32 @@ def _simulate(args: argparse.Namespace) -> int:
     from .tools.simulate import simulate_file
     summary, written = simulate_file(Path(args.skill), args.duration, Path(args.out),
                                      dt=args.tick, progress=not args.quiet,
-                                     qp_solver=args.qp_solver)
+                                     params_file=Path(args.params_file) if args.params_file
+                                     else None, qp_solver=args.qp_solver)
     cons = summary['constraints']
     assert isinstance(cons, dict)
     print(f"simulated {summary['skill']} for {args.duration} s "
-          f"({summary['ticks']} ticks of {args.tick} s)")
+          f"({summary['ticks']} ticks of {summary['tick_s']} s)")
     for name, row in cons.items():
-        print(f"  {name:24s} final error {row['final_error']:.3g}  max slack "
-              f"{row['max_slack']:.3g}")
+        print(f"  {name:24s} final error {_number(row['final_error'])}  max slack "
+              f"{_number(row['max_slack'])}")
     for ev in summary['events']:  # type: ignore[union-attr]
         print(f"  event {ev['event']} at {ev['time_s']:.3f} s")
+    watchdog = summary['watchdog']
+    assert isinstance(watchdog, dict)
+    for stage, tally in watchdog['stages'].items():
+        if tally['ticks']:
+            print(f"  watchdog {stage}: capped {tally['ticks']} ticks ({tally['seconds']:.3f} s)")
+    if watchdog['stopped']['ticks']:
+        print(f"  watchdog held the arm for {watchdog['stopped']['ticks']} ticks")
     print('outputs: ' + ', '.join(str(p) for p in written))
     statuses = summary['solve_status_counts']
     assert isinstance(statuses, dict)
     return 0 if set(statuses) <= {'ok'} else 1
+
+
+def _number(value: object) -> str:
+    return 'nan' if value is None else f'{value:.3g}'
 
 
 def _bench(args: argparse.Namespace) -> int:
@@ -81,6 +107,11 @@ def _bench_sections(args: argparse.Namespace) -> dict:
     except ImportError:  # pragma: no cover - during development only
         pass
     try:
+        from .tools.bench_wire import bench_wire
+        sections['wire'] = lambda: bench_wire(samples=3000 if args.quick else 20000)
+    except ImportError:  # pragma: no cover - without cyclonedds
+        pass
+    try:
         from .tools.bench_node import bench_end_to_end
         sections['end_to_end'] = lambda: bench_end_to_end(
             duration=args.e2e_seconds, rate_hz=args.e2e_rate)
@@ -90,7 +121,14 @@ def _bench_sections(args: argparse.Namespace) -> dict:
 
 
 def _functions(_args: argparse.Namespace) -> int:
-    from .skill.formula import FUNCTIONS
+    """Every name a formula may use: functions, constants and ``time``."""
+    from .skill.formula import CONSTANTS, FUNCTIONS
+    print('names (besides the skill\'s own inputs, unknowns, tunables and formulas):')
+    print('time -> scalar: seconds since the skill was activated (runs slower or stops while '
+          'the watchdog slows or holds the arm)')
+    for name, value in sorted(CONSTANTS.items()):
+        print(f'{name} -> scalar: the constant {value!r}')
+    print('functions:')
     for name in sorted(FUNCTIONS):
         print(FUNCTIONS[name])
     return 0
@@ -113,17 +151,28 @@ def _run_node(command: str, argv: list[str]) -> int:
 
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog='constraint-ctrl', description=__doc__.splitlines()[0])
+    parser.add_argument('--debug', action='store_true',
+                        help='print the full traceback of an unexpected error (before the '
+                             'command: constraint-ctrl --debug COMMAND ...)')
     sub = parser.add_subparsers(dest='command', required=True)
 
     p = sub.add_parser('check', help='validate skill files and inspect them at their start pose')
     p.add_argument('skills', nargs='+', help='skill YAML files')
+    p.add_argument('--rate', type=float, default=500.0, metavar='HZ',
+                   help="control rate the behaviours are checked against (default: the node's "
+                        'rate_hz, 500)')
     p.set_defaults(func=_check)
 
     p = sub.add_parser('simulate', help='lockstep kinematic simulation of one skill')
     p.add_argument('skill')
     p.add_argument('--duration', type=float, default=5.0, help='simulated seconds')
     p.add_argument('--out', default='out/simulate', help='output folder')
-    p.add_argument('--tick', type=float, default=0.002, help='control period, s')
+    p.add_argument('--tick', type=float, default=None,
+                   help="control period, s (default: the node's, 1 / rate_hz = 0.002)")
+    p.add_argument('--params-file', metavar='FILE',
+                   help='node parameters file (e.g. config/controller.yaml): watchdog.*, '
+                        'people.timeout and rate_hz as the node would use them (default: the '
+                        "node's defaults)")
     p.add_argument('--quiet', action='store_true', help='no progress bar')
     p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
                    help='QP solver of every level (same matrices, same answers)')
@@ -200,23 +249,49 @@ def _add_bag_and_pose_commands(sub) -> None:  # noqa: ANN001 - argparse's privat
     p.set_defaults(func=_replay)
 
 
-def report_errors(func, *args) -> int:  # noqa: ANN001 - any entry point
-    """Run an entry point; our own errors become one line on stderr and exit code 2."""
+def report_errors(func, *args, debug: bool | None = None) -> int:  # noqa: ANN001 - any entry
+    """Run an entry point; errors become one line on stderr.
+
+    Our own errors (a bad file, a bad argument) exit with 2; any other exception (a bug) with
+    1, its traceback printed only with ``debug`` (default: CONSTRAINT_CTRL_DEBUG=1 in the
+    environment). Ctrl-C exits with 130; a closed output pipe (``... | head``) quietly with 1.
+    """
+    if debug is None:
+        debug = os.environ.get('CONSTRAINT_CTRL_DEBUG', '') not in ('', '0')
     try:
         return int(func(*args) or 0)
     except ConstraintCtrlError as err:
+        if debug:
+            traceback.print_exc()
         print(f'error: {err}', file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:
+        # Python's documented way: point stdout at devnull so the exit flush does not fail again
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 1
+    except Exception as err:  # noqa: BLE001 - the last line of defence of every command
+        if debug:
+            traceback.print_exc()
+        text = ' '.join(str(err).split()) or '(no message)'
+        hint = '' if debug else '; run with --debug for the traceback'
+        print(f'error: unexpected {type(err).__name__}: {text} (a bug of constraint-ctrl, '
+              f'please report it{hint})', file=sys.stderr)
+        return 1
 
 
 def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
+    debug = False
+    while argv and argv[0] == '--debug':      # global options come before the command
+        debug = True
+        argv.pop(0)
     if argv and argv[0] in NODE_COMMANDS:
-        return report_errors(_run_node, argv[0], argv[1:])
+        return report_errors(_run_node, argv[0], argv[1:], debug=debug or None)
     args = build_parser().parse_args(argv)
-    return report_errors(args.func, args)
+    return report_errors(args.func, args, debug=debug or None)
 
 
 if __name__ == '__main__':

@@ -7,7 +7,8 @@ import sys
 from typing import Any, Callable
 from pathlib import Path
 
-from ..transport.port import DISTROS, TRANSPORTS
+from ..transport.port import DISTRO_CHOICES, TRANSPORTS
+from ..transport.signals import ignore_stop_signals
 
 
 def config_dir() -> Path:
@@ -35,10 +36,13 @@ def config_dir() -> Path:
 
 
 def serve(port: Any, build: Callable[[], Any]) -> Any | None:
-    """Build a node on ``port``, spin until shutdown or SIGINT, then close node and port.
+    """Build a node on ``port``, spin until shutdown or SIGINT/SIGTERM, then close node and port.
 
     ``close()`` of the node runs after spin() has returned (callbacks no longer run) and before
     the port goes away, so it can still publish its final zero command. Returns the node.
+    For process entry points: once the shutdown has begun, SIGINT and SIGTERM are ignored until
+    the process ends, so a second signal (``ros2 launch``, a terminal's Ctrl-C) can neither
+    leave a bag without metadata nor turn the exit code into 130.
     """
     node = None
     try:
@@ -49,6 +53,7 @@ def serve(port: Any, build: Callable[[], Any]) -> Any | None:
     except KeyboardInterrupt:
         pass          # SIGINT before spin() took over the signal: a normal stop
     finally:
+        ignore_stop_signals()
         if node is not None:
             node.close()
         port.shutdown()
@@ -66,8 +71,9 @@ def split_ros_args(argv: list[str]) -> tuple[list[str], list[str]]:
 def transport_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument('--transport', choices=TRANSPORTS, default='auto',
                         help='auto: rclpy when importable, else direct Cyclone DDS')
-    parser.add_argument('--distro', choices=DISTROS, default='jazzy',
-                        help='ROS 2 wire layout for the DDS transport and bags')
+    parser.add_argument('--distro', choices=DISTRO_CHOICES, default='auto',
+                        help='ROS 2 message layouts and bag format; auto: the installed ROS 2 '
+                             'on rclpy, jazzy on the DDS transport')
 
 
 __all__ = ['config_dir', 'serve', 'split_ros_args', 'transport_options']

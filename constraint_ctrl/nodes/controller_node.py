@@ -93,7 +93,8 @@ class ControllerNode:
                                   'folder of skill files', read_only=True).value))
         self.library = SkillLibrary(folder, self.model.joint_names)
         report = self.library.reload()
-        port.log('info' if report.ok else 'warn', f'skills: {report.summary()}')
+        for line in report.log_lines():   # one failed file per line
+            port.log('info' if report.ok else 'warn', f'skills: {line}')
         self.loop = ControlLoop(self.library, self.watchdog, self.dt, person_sources=sources)
         self._initial = str(declare('initial_skill', '', 'skill to activate at start',
                                     read_only=True).value)
@@ -120,11 +121,11 @@ class ControllerNode:
         self._errors = 0
 
         t = port.types
-        self.recorder = None
-        self._bag_topics: dict[str, str] = {}
-        if record is not None:
-            from ..transport.bag import BagRecorder
-            self.recorder = BagRecorder(record, distro=port.distro)
+        self.recorder: Any = None      # opened at the end of __init__ (see _open_recorder)
+        self._record_to = record
+        self._bag_topics: dict[str, tuple[str, str]] = {}  # name used -> (type, qos profile)
+        self._bag_names: dict[str, str] = {}               # publisher's topic -> name used
+        self._record_errors = 0
         self._pub_command = self._publisher(t.Float64MultiArray, '~/command', 'default')
         self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'default')
         self._pub_events = self._publisher(t.String, '~/events', 'default')
@@ -143,49 +144,68 @@ class ControllerNode:
         port.set_parameter_validator(self._validate_parameters)
         port.add_parameter_listener(self._apply_parameters)
         self.timer = port.create_timer(self.dt, self._on_timer)
+        self._open_recorder()
         port.log('info', f'{NODE_NAME} ready: {len(self.library.names())} skills, '
                  f'{self.rate:g} Hz, tick on {self.tick_on}, transport '
                  f'{type(port).__name__}')
 
     # ------------------------------------------------------------ plumbing
-    def _resolved(self, topic: str) -> str:
-        """Fully qualified topic name (after remapping), as recorded in the bag."""
-        resolve = getattr(self.port, 'resolve_topic_name', None)
-        if resolve is not None:
-            return str(resolve(topic))
-        ns = self.port.namespace.rstrip('/')
-        if topic.startswith('~'):
-            return f'{ns}/{self.port.node_name}{topic[1:]}'
-        return topic if topic.startswith('/') else f'{ns}/{topic}'
-
+    # The bag names each topic as the port really used it: the fully qualified name after
+    # remapping, from the publisher's or subscription's topic_name (rclpy's property, which the
+    # DDS port mirrors). Two entities on one topic record it once.
     def _publisher(self, msg_type: Any, topic: str, qos: str) -> Any:
         pub = self.port.create_publisher(msg_type, topic, qos)
-        if self.recorder is not None:
-            self._bag_topics[topic] = self._resolved(topic)
-            self.recorder.add_topic(self._bag_topics[topic], self.port.type_name(msg_type), qos)
+        name = str(pub.topic_name)
+        self._bag_names[topic] = name
+        self._bag_topics.setdefault(name, (self.port.type_name(msg_type), qos))
         return pub
 
     def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
-        if self.recorder is not None:
-            self._bag_topics[topic] = self._resolved(topic)
-            self.recorder.add_topic(self._bag_topics[topic], self.port.type_name(msg_type),
-                                    'sensor')
-            handler = callback
+        if self._record_to is None:
+            self.port.create_subscription(msg_type, topic, callback, 'sensor')
+            return
+        records_to: list[str] = []      # the bag topic, unless another subscription has it
 
-            def callback(msg: Any) -> None:
-                self._record(topic, msg)
-                handler(msg)
-        self.port.create_subscription(msg_type, topic, callback, 'sensor')
+        def recorded(msg: Any) -> None:
+            if records_to:
+                self._record(records_to[0], msg)
+            callback(msg)
+        sub = self.port.create_subscription(msg_type, topic, recorded, 'sensor')
+        name = str(sub.topic_name)
+        if name not in self._bag_topics:
+            self._bag_topics[name] = (self.port.type_name(msg_type), 'sensor')
+            records_to.append(name)
 
-    def _record(self, topic: str, msg: Any) -> None:
-        if self.recorder is not None:
-            self.recorder.write(self._bag_topics.get(topic, topic), self.port.now_ns(),
-                                self.port.serialize(msg))
+    def _open_recorder(self) -> None:
+        """Last step of start-up, so a node that fails to start leaves no bag folder behind."""
+        if self._record_to is None:
+            return
+        from ..transport.bag import BagRecorder
+        recorder = BagRecorder(self._record_to, distro=self.port.distro,
+                               on_failure=lambda text: self.port.log('error', text))
+        for name, (ros_type, qos) in self._bag_topics.items():
+            recorder.add_topic(name, ros_type, qos)
+        self.recorder = recorder
+        self.port.log('info', f'recording {len(self._bag_topics)} topics to {self._record_to} '
+                      f'(rosbag2 for ROS 2 {self.port.distro})')
+
+    def _record(self, name: str, msg: Any) -> None:
+        """Never lets recording disturb control: a failure here is counted and logged once."""
+        recorder = self.recorder
+        if recorder is None:
+            return
+        try:
+            recorder.write(name, self.port.now_ns(), self.port.serialize(msg))
+        except Exception as exc:  # noqa: BLE001 - the tick and the callbacks must go on
+            self._record_errors += 1
+            if self._record_errors == 1:
+                self.port.log('error', f'recording {name} failed: {exc!r}; such messages are '
+                              'left out of the bag (counted in ~/status recorder_dropped)')
 
     def _publish(self, pub: Any, topic: str, msg: Any) -> None:
         pub.publish(msg)
         if self.recorder is not None:
-            self._record(topic, msg)
+            self._record(self._bag_names[topic], msg)
 
     # ------------------------------------------------------------ callbacks
     def _stamp(self, header: Any) -> float:
@@ -319,9 +339,17 @@ class ControllerNode:
         runner = self.loop.active
         rows = runner.diagnostics() if runner is not None and out.tick is not None else None
         names = [r.name for r in runner.skill.rows] if runner is not None else []
+        recorder = self.recorder
+        faults = self.port.faults().values()
         extra = {'missed_ticks': str(getattr(self.timer, 'missed', 0)),
                  'tick_errors': str(self._errors),
-                 'bag_dropped': str(getattr(self.recorder, 'dropped', 0))}
+                 'recorder': recorder.state if recorder is not None else 'off',
+                 'recorder_written': str(recorder.written if recorder is not None else 0),
+                 'recorder_dropped': str((recorder.dropped if recorder is not None else 0)
+                                         + self._record_errors),
+                 'recorder_error': recorder.error if recorder is not None else '',
+                 'samples_dropped': str(sum(f.dropped for f in faults)),
+                 'callback_errors': str(sum(f.callback_errors for f in faults))}
         msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
                            extra)
         self._publish(self._pub_status, '~/status', msg)
@@ -377,7 +405,8 @@ class ControllerNode:
                 self.port.destroy_service(handle)
         response.success = report.ok
         response.message = report.summary()
-        self.port.log('info' if report.ok else 'warn', f'reload: {report.summary()}')
+        for line in report.log_lines():   # one failed file per line
+            self.port.log('info' if report.ok else 'warn', f'reload: {line}')
         return response
 
     def _reapply_parameters(self, name: str) -> None:
@@ -484,8 +513,14 @@ class ControllerNode:
         with self._tick_lock:
             for _ in range(3):
                 self._send_zero()
-        if self.recorder is not None:
-            self.recorder.close()
+        recorder = self.recorder
+        self.port.log('info', 'shutting down: zero command sent'
+                      + (', closing the bag' if recorder is not None else ''))
+        if recorder is not None:
+            recorder.close()      # never raises: a failure is logged through on_failure
+            if recorder.state == 'closed':
+                self.port.log('info', f'bag {recorder.path} closed: {recorder.written} '
+                              f'messages, {recorder.dropped + self._record_errors} dropped')
 
 
 def build_arg_parser() -> argparse.ArgumentParser:

@@ -9,6 +9,10 @@ and noise) and publishes what a real cell's drivers would:
 - /tool/wrench (geometry_msgs/WrenchStamped, tool frame, force on the tool) at wrench_rate_hz;
 - /cell/operator (geometry_msgs/PointStamped, base_link) at people_rate_hz.
 
+With --publish-clock it also publishes the simulated time on /clock (rosgraph_msgs/Clock, from
+0 at start, every step, before that step's messages) and stamps its headers with it, so nodes
+with use_sim_time true run on the simulation's time.
+
 Commands are read from command_topic (std_msgs/Float64MultiArray in the order of joint_names).
 With --log FILE the true state (not the noisy measurements) is saved as a NumPy .npz at exit
 for evaluation: time, joint positions, tool pose, true sensor ranges and tool stand-off, gear
@@ -81,7 +85,7 @@ class TruthLog:
 
 
 class SimNode:
-    def __init__(self, port: Any, log: Path | None = None) -> None:
+    def __init__(self, port: Any, log: Path | None = None, publish_clock: bool = False) -> None:
         self.port = port
         t = port.types
         declare = port.declare_parameter
@@ -113,6 +117,8 @@ class SimNode:
                            for name in RANGE_FRAMES]
         self.pub_wrench = port.create_publisher(t.WrenchStamped, '/tool/wrench', 'sensor')
         self.pub_person = port.create_publisher(t.PointStamped, '/cell/operator', 'sensor')
+        self.pub_clock = (port.create_publisher(t.Clock, '/clock', 'default') if publish_clock
+                          else None)
         port.create_subscription(t.Float64MultiArray, command_topic, self._on_command,
                                  'default')
         self.timer = port.create_timer(1.0 / self.scene.rate, self._on_step)
@@ -131,9 +137,12 @@ class SimNode:
         with self._lock:
             self._command = command
 
+    def _sim_ns(self) -> int:
+        return round(self.world.time * 1e9)
+
     def _header(self, frame: str) -> Any:
         t = self.port.types
-        ns = self.port.now_ns()
+        ns = self._sim_ns() if self.pub_clock is not None else self.port.now_ns()
         return t.Header(stamp=t.Time(sec=ns // 1_000_000_000, nanosec=ns % 1_000_000_000),
                         frame_id=frame)
 
@@ -148,6 +157,10 @@ class SimNode:
             self.log.sample(command)
         self._steps += 1
         t = self.port.types
+        if self.pub_clock is not None:
+            ns = self._sim_ns()
+            self.pub_clock.publish(t.Clock(clock=t.Time(sec=ns // 1_000_000_000,
+                                                        nanosec=ns % 1_000_000_000)))
         q = self.world.joint_positions
         self.pub_joints.publish(t.JointState(
             header=self._header('base_link'), name=self.joint_names,
@@ -186,10 +199,12 @@ def run(argv: list[str]) -> int:
                                      description='Start the simulated work cell node.')
     transport_options(parser)
     parser.add_argument('--log', type=Path, help='save the true state to this .npz at exit')
+    parser.add_argument('--publish-clock', action='store_true',
+                        help='publish the simulated time on /clock and stamp messages with it')
     args = parser.parse_args(ours)
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)
-    serve(port, lambda: SimNode(port, log=args.log))
+    serve(port, lambda: SimNode(port, log=args.log, publish_clock=args.publish_clock))
     return 0
 
 

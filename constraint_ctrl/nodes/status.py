@@ -1,7 +1,9 @@
 """The controller's ~/status message (diagnostic_msgs/DiagnosticArray).
 
 Three statuses, so standard diagnostics tools can show them side by side:
-- '<node>: controller': active skill, solve status and time, missed ticks, bag drops;
+- '<node>: controller': active skill, solve status and time, missed ticks, the recorder
+  (`recorder`: off, recording, failed or closed; `recorder_written`, `recorder_dropped`,
+  `recorder_error`);
 - '<node>: watchdog': state, reason, speed scale, min separation, protective distance;
 - '<node>: rows': per row of the active skill '<row>.value', '.error', '.slack', '.active',
   '.solved' (false when the row's priority level could not be solved this tick).

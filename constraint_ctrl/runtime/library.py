@@ -16,6 +16,7 @@ from ..errors import ConstraintCtrlError
 from ..model.kinematics import RobotModel
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
+from ..skill.robot import robot_model
 from .runner import SkillRunner
 
 
@@ -43,15 +44,30 @@ class ReloadReport:
     def ok(self) -> bool:
         return not self.failed
 
+    def _loaded_parts(self) -> list[str]:
+        return [f'{label}: {", ".join(sorted(names))}' for label, names in
+                (('added', self.added), ('changed', self.changed), ('removed', self.removed),
+                 ('unchanged', self.unchanged)) if names]
+
     def summary(self) -> str:
-        parts = []
-        for label, names in (('added', self.added), ('changed', self.changed),
-                             ('removed', self.removed), ('unchanged', self.unchanged)):
-            if names:
-                parts.append(f'{label}: {", ".join(sorted(names))}')
+        """One line (the ~/reload_skills reply): loaded names, then each failed file."""
+        parts = self._loaded_parts()
         for path, message in sorted(self.failed.items()):
             parts.append(f'FAILED {path}: {message}')
         return '; '.join(parts) if parts else 'no skill files found'
+
+    def log_lines(self) -> list[str]:
+        """The same for a log: loaded names first, then one line per failed file (its error).
+
+        One line per file, so a reader (or grep) sees every failure on its own.
+        """
+        head = '; '.join(self._loaded_parts())
+        if self.failed:
+            head = (head + '; ' if head else '') + f'{len(self.failed)} file(s) failed to load:'
+        lines = [head or 'no skill files found']
+        lines += [f'FAILED {path}: {" ".join(message.split())}'
+                  for path, message in sorted(self.failed.items())]
+        return lines
 
 
 class SkillLibrary:
@@ -83,7 +99,7 @@ class SkillLibrary:
         key = (spec.robot.resolve(), spec.base_link)
         model = self._models.get(key)
         if model is None:
-            model = RobotModel.from_urdf(spec.robot, base_link=spec.base_link)
+            model = robot_model(spec)   # URDF and base_link errors located in the file
             self._models[key] = model
         if set(model.joint_names) != set(self.joint_names):
             msg = (f'{path}: robot {spec.robot.name} has joints {list(model.joint_names)}, '

@@ -50,14 +50,33 @@ def monitored_points(model: RobotModel, tool_link: str, link_radius: float,
     return points
 
 
-def build_watchdog(model: RobotModel, dt: float, settings: Mapping[str, Any] | None = None,
-                   person_timeouts: Mapping[str, float] | None = None) -> Watchdog:
-    values = dict(DEFAULTS)
+def watchdog_settings(settings: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """DEFAULTS updated with ``settings``; unknown keys are refused (a typo is not a default)."""
     unknown = sorted(set(settings or {}) - set(DEFAULTS))
     if unknown:
         msg = f'unknown watchdog settings {unknown}; known: {sorted(DEFAULTS)}'
         raise ConstraintCtrlError(msg)
+    values = dict(DEFAULTS)
     values.update(settings or {})
+    return values
+
+
+def points_function(model: RobotModel, settings: Mapping[str, Any] | None = None
+                    ) -> tuple[list[MonitoredPoint], Any]:
+    """The monitored points and their casadi function q -> (P (3, k), J (3k, n)).
+
+    The same function the watchdog of ``build_watchdog`` evaluates, so a tool that explains
+    the watchdog's output (simulate's report) sees the very same point velocities.
+    """
+    values = watchdog_settings(settings)
+    points = monitored_points(model, str(values['tool_link']), float(values['link_radius']),
+                              float(values['tool_radius']))
+    return points, model.points_function([(p.link, p.offset) for p in points])
+
+
+def build_watchdog(model: RobotModel, dt: float, settings: Mapping[str, Any] | None = None,
+                   person_timeouts: Mapping[str, float] | None = None) -> Watchdog:
+    values = watchdog_settings(settings)
     separation = replace(SeparationParams(),
                          human_speed=float(values['human_speed']),
                          reaction_time=float(values['reaction_time']),
@@ -77,10 +96,9 @@ def build_watchdog(model: RobotModel, dt: float, settings: Mapping[str, Any] | N
         velocity_limits=velocity,
         acceleration_limits=np.full(n, float(values['joint_acceleration'])),
         lower=model.lower, upper=model.upper, joint_names=tuple(model.joint_names))
-    points = monitored_points(model, str(values['tool_link']), float(values['link_radius']),
-                              float(values['tool_radius']))
-    fn = model.points_function([(p.link, p.offset) for p in points])
+    points, fn = points_function(model, values)
     return Watchdog(config, fn, points, dt)
 
 
-__all__ = ['DEFAULTS', 'build_watchdog', 'monitored_points']
+__all__ = ['DEFAULTS', 'build_watchdog', 'monitored_points', 'points_function',
+           'watchdog_settings']

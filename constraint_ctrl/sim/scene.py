@@ -17,6 +17,8 @@ from typing import Any, TypeVar
 import yaml
 
 from ..errors import LocatedError
+from ..located_yaml import (MAX_FILE_BYTES, TOO_DEEP, CountingLoader, TooManyNodes,
+                            check_expansion)
 
 T = TypeVar('T')
 
@@ -277,23 +279,39 @@ def load_scene(path: str | Path) -> Scene:
     path = Path(path)
     name = str(path)
     try:
-        text = path.read_text(encoding='utf-8')
+        with open(path, 'rb') as handle:
+            data = handle.read(MAX_FILE_BYTES + 1)   # never more than the limit
     except OSError as exc:
         msg = f'cannot read scene file: {exc.strerror or exc}'
         raise SceneError(msg, file=name) from None
-    loader = yaml.SafeLoader(text)
+    if len(data) > MAX_FILE_BYTES:
+        msg = (f'the file is larger than the limit of {MAX_FILE_BYTES:,} bytes for our YAML '
+               'formats')
+        raise SceneError(msg, file=name, line=1)
     try:
+        text = data.decode('utf-8')
+    except UnicodeDecodeError as exc:
+        raise SceneError(f'cannot read scene file: {exc}', file=name) from None
+    loader: CountingLoader | None = None
+    try:
+        loader = CountingLoader(text)   # checks the characters already
         root = loader.get_single_node()
         if root is None:
             raise SceneError('the scene file is empty', file=name)
+        check_expansion(root, SceneError, name)
         return _read_scene(_Reader(name, loader), root, path.parent)
+    except TooManyNodes as exc:
+        raise SceneError(exc.problem, file=name, line=exc.problem_mark.line + 1) from None
+    except RecursionError:
+        raise SceneError(TOO_DEEP, file=name, line=1) from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, 'problem_mark', None)
         line = mark.line + 1 if mark is not None else None
         problem = getattr(exc, 'problem', None) or str(exc)
         raise SceneError(f'not valid YAML: {problem}', file=name, line=line) from None
     finally:
-        loader.dispose()
+        if loader is not None:
+            loader.dispose()
 
 
 def _read_scene(r: _Reader, root: yaml.Node, folder: Path) -> Scene:

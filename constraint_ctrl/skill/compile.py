@@ -40,6 +40,7 @@ import numpy as np
 from ..errors import FormulaError, SkillError
 from ..model.kinematics import RobotModel
 from .formula import FormulaScope, Quantity, compile_formula
+from .robot import robot_model
 from .schema import ConstraintSpec, SkillSpec
 
 #: Stand-in for an infinite speed limit, so the QP never sees inf (rad/s or m/s).
@@ -69,6 +70,9 @@ HOLD_BAND = 1e-12
 #: Below this many Jacobian entries the whole tick function is flattened into one SX graph
 #: (fastest to evaluate); above it, G = H^T H stays a dense matrix product (fastest to build).
 EXPAND_LIMIT = 4000
+#: Most QP rows one skill may have (a vector function counts its components): about 10 s of
+#: compile time on a busy 2-core machine (measured: 2000 rows of position(tool_tip), 9 s).
+MAX_ROWS = 2000
 
 
 @dataclass(frozen=True, slots=True)
@@ -227,7 +231,7 @@ def compile_skill(spec: SkillSpec, model: RobotModel | None = None) -> CompiledS
 
     started = _time.perf_counter()
     if model is None:
-        model = RobotModel.from_urdf(spec.robot, base_link=spec.base_link)
+        model = robot_model(spec)   # URDF and base_link problems located in the skill file
     builder = _Builder(spec, model)
     compiled = builder.build()
     compiled.compile_seconds = _time.perf_counter() - started
@@ -300,6 +304,10 @@ class _Builder:
         for index, con in enumerate(spec.constraints):
             path = f'constraints[{index}]'
             made = self._constraint_rows(con, scope, path)
+            if len(rows) + len(made) > MAX_ROWS:
+                raise spec.error(f'more than {MAX_ROWS} rows: a skill is limited to {MAX_ROWS} '
+                                 'rows (a vector function counts its components)',
+                                 f'{path}.function')
             gains = self._behaviour_params(con, path)
             weight = self._number_or_tunable(con.weight, f'{con.name}.weight', f'{path}.weight',
                                              description=f'weight of {con.name}')
@@ -390,6 +398,12 @@ class _Builder:
                                       f'{quantity.kind}', f'{path}.{key}')
             sx = quantity.sx
             if sx.numel() == 1 and size > 1:
+                # A number bound of an inequality bounds every component (a box), and the
+                # number 0 is the zero vector; any other single target is ambiguous.
+                if key == 'target' and not (isinstance(value, (int, float)) and value == 0):
+                    raise self.spec.error(f'the target is 1 value but the function has {size} '
+                                          f'components; give a vector of {size} (vector(x, y, '
+                                          'z)), or 0 for the zero vector', f'{path}.{key}')
                 sx = ca.repmat(sx, size, 1)
             if sx.numel() != size:
                 raise self.spec.error(f'bound has {sx.numel()} components but the function has '
@@ -723,6 +737,6 @@ def _level_one_blocks(layout: QpLayout, J: ca.SX, lo: ca.SX, hi: ca.SX, w: ca.SX
     return hj, hv, C, b
 
 
-__all__ = ['CompiledSkill', 'LowerLevel', 'ParamInfo', 'QpLayout', 'RowInfo', 'compile_skill',
-           'FUNCTION_INPUTS', 'FUNCTION_OUTPUTS', 'HOLD_BAND', 'HOLD_MARGIN', 'LOWER_LEVEL_INPUTS',
-           'LOWER_LEVEL_OUTPUTS', 'FormulaError']
+__all__ = ['MAX_ROWS', 'CompiledSkill', 'LowerLevel', 'ParamInfo', 'QpLayout', 'RowInfo',
+           'compile_skill', 'FUNCTION_INPUTS', 'FUNCTION_OUTPUTS', 'HOLD_BAND', 'HOLD_MARGIN',
+           'LOWER_LEVEL_INPUTS', 'LOWER_LEVEL_OUTPUTS', 'FormulaError']

@@ -80,6 +80,7 @@ from yaml.constructor import SafeConstructor
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
 from ..errors import FormulaError, SkillError
+from ..located_yaml import MAX_FILE_BYTES, check_expansion
 from .schema import (
     CONSTRAINT_KINDS,
     BehaviourSpec,
@@ -97,7 +98,7 @@ from .schema import (
 if TYPE_CHECKING:
     from collections.abc import Callable, Iterable, Mapping, Sequence
 
-__all__ = ['DOCUMENT', 'RESERVED_NAMES', 'load_skill', 'load_skill_text']
+__all__ = ['DOCUMENT', 'MAX_CONSTRAINTS', 'RESERVED_NAMES', 'load_skill', 'load_skill_text']
 
 #: Field path used for problems that belong to the file as a whole (syntax, top level, I/O).
 DOCUMENT = '<document>'
@@ -148,6 +149,8 @@ _EVENT_KEYS = ('name', 'condition', 'hold_for')
 _LIMITS_KEYS = ('joint_speed', 'joint_speeds', 'joint_acceleration', 'position_gain')
 _REGULARISATION_KEYS = ('damping', 'joint_weights', 'unknown_weight')
 _OFFLINE_KEYS = ('start', 'inputs', 'scene')
+#: Most constraints one skill may have (each costs compile time; see compile.MAX_ROWS).
+MAX_CONSTRAINTS = 2000
 
 
 def load_skill(path: str | os.PathLike[str]) -> SkillSpec:
@@ -158,11 +161,13 @@ def load_skill(path: str | os.PathLike[str]) -> SkillSpec:
     """
     source = os.fspath(path)
     try:
-        data = Path(source).read_bytes()
+        with open(source, 'rb') as handle:
+            data = handle.read(MAX_FILE_BYTES + 1)   # never more than the limit, whatever it is
     except (OSError, ValueError) as exc:
         reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
         msg = f'cannot read skill file {source!r}: {reason}'
         raise SkillError(msg, file=source, field=DOCUMENT) from None
+    _check_size(len(data), source)
     try:
         text = data.decode('utf-8')
     except UnicodeDecodeError as exc:
@@ -181,14 +186,24 @@ def load_skill_text(text: str, *, source: str = '<string>',
     Raises:
         SkillError: the text is not a valid skill (file, line and field set).
     """
+    if len(text) > MAX_FILE_BYTES // 4:   # four bytes per character at most in UTF-8
+        _check_size(len(text.encode('utf-8', 'surrogatepass')), source)
     try:
         root = _compose(text, source)
+        check_expansion(root, SkillError, source, field=DOCUMENT)
         reader = _Reader(text, source, Path.cwd() if base_dir is None else Path(base_dir),
                          frozenset(RESERVED_NAMES) | _formula_functions())
         return reader.skill(root)
     except RecursionError:
         msg = 'the YAML is nested too deeply to be a skill file'
         raise SkillError(msg, file=source, line=1, field=DOCUMENT) from None
+
+
+def _check_size(size: int, source: str) -> None:
+    if size > MAX_FILE_BYTES:
+        msg = (f'the file is larger than the limit of {MAX_FILE_BYTES:,} bytes for skill files; '
+               'split the skill or remove what it does not need')
+        raise SkillError(msg, file=source, line=1, field=DOCUMENT)
 
 
 def _line_at(text: str, index: int) -> int:
@@ -294,6 +309,7 @@ class _Reader:
         self.reserved = reserved
         self.locations: dict[str, int] = {}
         self.check_formula = _formula_checker()
+        self._merged: dict[int, list[tuple[Node, Node]]] = {}
 
     # -- errors -------------------------------------------------------------------------------
 
@@ -340,9 +356,25 @@ class _Reader:
 
     def merged(self, at: _Field, node: MappingNode,
                visiting: set[int]) -> list[tuple[Node, Node]]:
-        """Key/value pairs a mapping takes in through ``<<`` merge keys (earlier ones win)."""
+        """Key/value pairs a mapping takes in through ``<<`` merge keys (earlier ones win).
+
+        Each mapping's merged pairs are worked out once and reused (an anchored mapping merged
+        in many places, or merged twice at every level of a chain, costs one expansion), and a
+        key already taken in is not taken again: linear in the size of the text.
+        """
+        known = self._merged.get(id(node))
+        if known is not None:
+            return known
         visiting.add(id(node))
         pairs: list[tuple[Node, Node]] = []
+        taken: set[object] = set()
+
+        def take(key_node: Node, value_node: Node) -> None:
+            ident = key_node.value if isinstance(key_node, ScalarNode) else id(key_node)
+            if ident not in taken:
+                taken.add(ident)
+                pairs.append((key_node, value_node))
+
         for key_node, value_node in node.value:
             if key_node.tag != _MERGE:
                 continue
@@ -356,9 +388,13 @@ class _Reader:
                     self.unsupported_tag(_Field(at.path, _line(key_node), source))
                 if id(source) in visiting:
                     self.fail(here, 'a merge key << refers to the mapping it is part of')
-                pairs.extend((k, v) for k, v in source.value if k.tag != _MERGE)
-                pairs.extend(self.merged(at, source, visiting))
+                for key, value in source.value:
+                    if key.tag != _MERGE:
+                        take(key, value)
+                for key, value in self.merged(at, source, visiting):
+                    take(key, value)
         visiting.discard(id(node))
+        self._merged[id(node)] = pairs
         return pairs
 
     def key(self, at: _Field, key_node: Node) -> str:
@@ -399,6 +435,13 @@ class _Reader:
         for item in result:
             self.locations[item.path] = item.line
         return result
+
+    def not_too_many(self, at: _Field, limit: int, what: str) -> None:
+        """Refuse a list longer than ``limit`` at its first item too many (before building any)."""
+        if isinstance(at.node, SequenceNode) and len(at.node.value) > limit:
+            extra = self.items(at)[limit]
+            self.fail(extra, f'more than {limit} {what}: a skill file is limited to {limit} '
+                             f'{what} (see the README, "File limits")')
 
     # -- scalars ------------------------------------------------------------------------------
 
@@ -538,6 +581,8 @@ class _Reader:
         self.unique_names([top[key] for key in ('inputs', 'unknowns', 'tunables', 'formulas')
                            if key in top])
         by_name = {tunable.name: tunable for tunable in tunables}
+        if 'constraints' in top:
+            self.not_too_many(top['constraints'], MAX_CONSTRAINTS, 'constraints')
         spec['constraints'] = self.each_item(top.get('constraints'),
                                              lambda item: self.constraint(item, by_name))
         spec['events'] = self.each_item(top.get('events'), self.event)

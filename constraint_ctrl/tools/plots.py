@@ -185,14 +185,15 @@ def simulation_figures(skill: CompiledSkill, trace: Trace) -> dict[str, Figure]:
     legend_outside(ax)
     figures['slacks.png'] = fig
 
-    rows = 2 if skill.n_s else 1
-    fig, axes = figure(rows)
+    states = list(getattr(trace, 'state', []) or [])   # the watchdog's, when simulate ran it
+    heights = [3.0] + ([3.0] if skill.n_s else []) + ([1.3] if states else [])
+    fig, axes = figure(len(heights), height=sum(heights), ratios=heights)
     prismatic = skill.model.is_prismatic
     unit = 'rad/s' if not prismatic.any() else ('m/s' if prismatic.all() else 'rad/s or m/s')
     for (j, joint), style in zip(enumerate(skill.joint_names), styles(skill.n_q)):
         axes[0].plot(t, trace.joint_velocity[:, j], label=joint, **style)
     axes[0].set_ylabel(f'joint velocity ({unit})')
-    axes[0].set_title(f'{name}: commanded velocities')
+    axes[0].set_title(f'{name}: published velocities (after the watchdog)')
     axes[0].grid(True, alpha=0.3)
     legend_outside(axes[0])
     if skill.n_s:
@@ -202,6 +203,8 @@ def simulation_figures(skill: CompiledSkill, trace: Trace) -> dict[str, Figure]:
         axes[1].set_ylabel('unknown velocity (' + ' or '.join(f'{u}/s' for u in units) + ')')
         axes[1].grid(True, alpha=0.3)
         legend_outside(axes[1])
+    if states:
+        state_panel(axes[-1], t[:len(states)], states)
     axes[-1].set_xlabel(xlabel)
     figures['joint_velocities.png'] = fig
     return figures

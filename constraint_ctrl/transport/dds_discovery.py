@@ -5,8 +5,23 @@ first participant is created. If the user has not set it, the port sets LOOPBACK
 loopback only (127.0.0.1), no multicast (Linux `lo` has no MULTICAST flag), unicast discovery
 to participant-index ports on localhost — the same shape rmw_cyclonedds generates for
 ROS_AUTOMATIC_DISCOVERY_RANGE=LOCALHOST, so ROS nodes started with that setting (or, on
-Humble, ROS_LOCALHOST_ONLY=1) see the port. To reach other hosts, or ROS nodes using the
-default subnet discovery, set CYCLONEDDS_URI yourself, e.g.
+Humble, ROS_LOCALHOST_ONLY=1) see the port.
+
+That configuration selects the interface Cyclone sends on, but Cyclone 0.10 and 11 bind their
+unicast receive sockets (discovery and data) to the any-address whatever the configuration
+(cyclonedds src/core/ddsi/src/ddsi_udp.c, `ddsi_udp_create_conn`: `bind_to_any = true` for
+DDSI_TRAN_QOS_RECV_UC, tags 0.10.5 and 11.0.1; only its unreleased main branch binds per
+interface, and only with more than one interface). No setting of General (Interfaces,
+DontRoute, AllowMulticast, ExternalNetworkAddress, MulticastRecvNetworkInterfaceAddresses)
+changes that. So, with our configuration, `confine_to_loopback` binds the sockets Cyclone
+opened on the any-address to the loopback device right after the participant is created
+(SO_BINDTODEVICE "lo", socket(7); allowed without privileges on a socket not yet bound to a
+device since Linux 5.7 (from memory), and as root before; where it is refused the port logs
+a warning and goes on): the sockets then receive only what arrives over `lo`, i.e. from
+this machine. `ss -uanp` shows them as `0.0.0.0%lo:<port>`.
+
+To reach other hosts, or ROS nodes using the default subnet discovery, set CYCLONEDDS_URI
+yourself (the port then leaves Cyclone's sockets as Cyclone makes them), e.g.
 `export CYCLONEDDS_URI='<CycloneDDS><Domain Id="any"><General><Interfaces><NetworkInterface
 name="eth0"/></Interfaces></General></Domain></CycloneDDS>'`. The domain is ROS_DOMAIN_ID
 (default 0), as in ROS.
@@ -21,15 +36,19 @@ DDS GUID (zero-padded to 24 bytes on Humble).
 from __future__ import annotations
 
 import os
+import socket
 import threading
 import weakref
+from pathlib import Path
 from typing import Any
 
 from cyclonedds.pub import DataWriter
 from cyclonedds.topic import Topic
 
 from constraint_ctrl.errors import TransportError
+from constraint_ctrl.transport import dds_raw
 from constraint_ctrl.transport.dds_qos import type_hash_tag, writer_qos
+from constraint_ctrl.transport.dds_types import codec_of
 from constraint_ctrl.transport.qos import DISCOVERY_INFO
 
 LOOPBACK_CONFIG = (
@@ -44,11 +63,68 @@ DISCOVERY_TOPIC = 'ros_discovery_info'
 
 
 def ensure_cyclone_config() -> bool:
-    """Set CYCLONEDDS_URI to LOOPBACK_CONFIG unless the user set it; True if we set it."""
-    if os.environ.get('CYCLONEDDS_URI'):
-        return False
-    os.environ['CYCLONEDDS_URI'] = LOOPBACK_CONFIG
-    return True
+    """Set CYCLONEDDS_URI to LOOPBACK_CONFIG unless the user set it; True if our loopback
+    configuration is the one in force (set now or by an earlier port of this process)."""
+    if not os.environ.get('CYCLONEDDS_URI'):
+        os.environ['CYCLONEDDS_URI'] = LOOPBACK_CONFIG
+    return os.environ['CYCLONEDDS_URI'] == LOOPBACK_CONFIG
+
+
+def socket_inodes() -> dict[int, int]:
+    """{socket inode: fd} of this process (Linux /proc; empty elsewhere)."""
+    found: dict[int, int] = {}
+    fd_dir = Path('/proc/self/fd')
+    if not fd_dir.is_dir():
+        return found
+    for entry in fd_dir.iterdir():
+        try:
+            target = os.readlink(entry)
+        except OSError:
+            continue
+        if target.startswith('socket:['):
+            found[int(target[8:-1])] = int(entry.name)
+    return found
+
+
+def _any_address_udp_inodes() -> set[int]:
+    """Inodes of the machine's UDP sockets bound to 0.0.0.0 or :: (/proc/net/udp, udp6)."""
+    found: set[int] = set()
+    for table in ('/proc/net/udp', '/proc/net/udp6'):
+        try:
+            lines = Path(table).read_text().splitlines()[1:]
+        except OSError:
+            continue
+        for line in lines:
+            fields = line.split()
+            if len(fields) > 9 and set(fields[1].split(':')[0]) == {'0'}:
+                found.add(int(fields[9]))
+    return found
+
+
+def confine_to_loopback(before: dict[int, int]) -> tuple[int, str]:
+    """Bind the UDP sockets opened since `before` (socket_inodes() taken just before the
+    participant was created) that listen on the any-address to the loopback device.
+
+    Returns (number of sockets confined, problem or ''); see the module docstring for why."""
+    option = getattr(socket, 'SO_BINDTODEVICE', None)
+    if option is None:
+        return 0, 'this system has no SO_BINDTODEVICE'
+    new = {inode: fd for inode, fd in socket_inodes().items() if inode not in before}
+    targets = [fd for inode, fd in new.items() if inode in _any_address_udp_inodes()]
+    done = 0
+    for fd in targets:
+        try:
+            sock = socket.socket(fileno=os.dup(fd))
+        except OSError:
+            continue
+        try:
+            sock.setsockopt(socket.SOL_SOCKET, option, b'lo\0')
+            done += 1
+        except OSError as exc:
+            return done, f'SO_BINDTODEVICE refused: {exc}'
+        finally:
+            sock.close()
+    return done, ''
 
 
 def domain_id() -> int:
@@ -76,7 +152,8 @@ class NodeAnnouncer:
     node dropped) leaves the record with the next update.
     """
 
-    def __init__(self, participant: Any, types: Any, namespace: str, node_name: str) -> None:
+    def __init__(self, participant: Any, types: Any, namespace: str, node_name: str,
+                 distro: str) -> None:
         self._participant = participant
         self._types = types
         self._namespace = namespace
@@ -86,8 +163,6 @@ class NodeAnnouncer:
         self._writers: dict[bytes, Any] = {}
         self._dead: list[bytes] = []
         topic = Topic(participant, DISCOVERY_TOPIC, types.ParticipantEntitiesInfo)
-        distro = 'humble' if types.ParticipantEntitiesInfo.__name__.endswith('Humble') \
-            else 'jazzy'
         self.writer = DataWriter(participant, topic, writer_qos(
             DISCOVERY_INFO, type_hash_tag('rmw_dds_common/msg/ParticipantEntitiesInfo', distro)))
 
@@ -105,7 +180,8 @@ class NodeAnnouncer:
             for key in gone:
                 self._readers.pop(key, None)
                 self._writers.pop(key, None)
-            self.writer.write(self.sample())
+            sample = self.sample()
+            dds_raw.write(self.writer, codec_of(type(sample)).encode(sample))
 
     def sample(self, *, with_node: bool = True) -> Any:
         t = self._types
@@ -118,4 +194,5 @@ class NodeAnnouncer:
     def withdraw(self) -> None:
         """Announce that the participant has no nodes any more."""
         with self._lock:
-            self.writer.write(self.sample(with_node=False))
+            sample = self.sample(with_node=False)
+            dds_raw.write(self.writer, codec_of(type(sample)).encode(sample))

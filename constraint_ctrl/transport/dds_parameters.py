@@ -23,9 +23,10 @@ from types import SimpleNamespace
 from typing import Any
 
 from constraint_ctrl.errors import TransportError
-from constraint_ctrl.transport.dds_types import ParameterType as PT
+from constraint_ctrl.transport.dds_types import types_for
 from constraint_ctrl.transport.port import ParameterValue, ParameterView
 
+PT = types_for('jazzy').ParameterType   # its constants are the same on every distro
 Validator = Callable[[dict[str, ParameterValue]], tuple[bool, str]]
 Listener = Callable[[dict[str, ParameterValue]], None]
 

@@ -2,8 +2,10 @@
 
 Speaks rmw_cyclonedds_cpp's wire protocol: `rt/` topics with `pkg::msg::dds_::Name_` types
 in XCDR1, services on `rq/...Request` / `rr/...Reply` with its 16-byte request header, the
-standard parameter services under `~/`, ParameterEvent on /parameter_events, and node
-visibility through `ros_discovery_info`.
+standard parameter services under `~/`, ParameterEvent on /parameter_events, log lines on
+/rosout, node visibility through `ros_discovery_info`, and simulated time from /clock when
+use_sim_time is true. Samples are encoded and decoded by cdr.py (a few microseconds for the
+control loop's messages) and written/taken as bytes (dds_raw.py).
 
 Limits to know:
 * Topics interoperate with any ROS 2 RMW. Services (ours and the parameter services) can only
@@ -11,26 +13,37 @@ Limits to know:
   frame requests differently.
 * Networking: loopback only unless CYCLONEDDS_URI is set (see dds_discovery.py for the default
   and how to override it); domain from ROS_DOMAIN_ID.
-* Not provided: /rosout (logs go to stderr in ROS's console format), type hashes in USER_DATA,
-  simulated time (use_sim_time exists, as on every rclpy node, but only False is honoured),
-  parameter ranges.
+* Not provided: parameter ranges in descriptors, the logger-level services.
+
+Time: `now_ns()` is ROS time (dds_time.py): the system clock, or with use_sim_time true the
+latest /clock time (0 before the first). A timer created while use_sim_time is true runs on
+ROS time and does not fire while /clock stands still; one created while it is false runs on
+the monotonic clock.
+
+Logs go to stderr in ROS's console format and, as rcl_interfaces/Log, to /rosout (reliable,
+transient local, depth 1000, lifespan 10 s, as rcl's rosout publisher), with the rcl logger
+name of the node (namespace and name joined by dots) and the caller's file, function, line.
 
 Threads: subscriptions are dispatched on one thread, services (including parameter services)
 on another, and each timer has its own, so a timer tick can run at the same time as a
 subscription or service callback (guard shared state with a lock). Callbacks only run while
-spin() runs. An exception escaping a callback ends spin() and is re-raised from it, as an
-exception in an rclpy callback ends executor.spin().
+spin() runs. A sample that cannot be decoded is dropped; an exception raised by a callback is
+caught; both are counted per source (`faults()`) and logged at most once a minute per source,
+and spin() goes on (receive_faults.py). This differs from rclpy, where an exception in a
+callback ends executor.spin(): the nodes already turn their own failures into safe outputs,
+and one bad sample from a peer must not end the node. SIGINT and SIGTERM end spin(); from
+then until shutdown() has finished they are only counted (transport/signals.py).
 """
 from __future__ import annotations
 
-import signal
+import os
 import sys
 import threading
 import time
-import traceback
 from collections.abc import Callable
 from typing import Any
 
+from cyclonedds.core import DDSException
 from cyclonedds.domain import DomainParticipant
 from cyclonedds.pub import DataWriter
 from cyclonedds.qos import Policy, Qos
@@ -39,17 +52,22 @@ from cyclonedds.topic import Topic
 from cyclonedds.util import duration
 
 from constraint_ctrl.errors import TransportError
-from constraint_ctrl.transport.dds_discovery import NodeAnnouncer, domain_id, ensure_cyclone_config
+from constraint_ctrl.transport import dds_raw
+from constraint_ctrl.transport.dds_discovery import (NodeAnnouncer, confine_to_loopback, domain_id,
+                                                     ensure_cyclone_config, socket_inodes)
 from constraint_ctrl.transport.dds_dispatch import Dispatcher, FixedRateTimer
 from constraint_ctrl.transport.dds_parameters import ParameterStore
 from constraint_ctrl.transport.dds_qos import reader_qos, type_hash_tag, writer_qos
 from constraint_ctrl.transport.dds_services import ServiceClient, ServiceServer
-from constraint_ctrl.transport.dds_types import ros_type_of, types_for
+from constraint_ctrl.transport.dds_time import RosClock
+from constraint_ctrl.transport.dds_types import codec_of, ros_type_of, types_for
 from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS, ParameterView
-from constraint_ctrl.transport.qos import PROFILES, profile
+from constraint_ctrl.transport.qos import CLOCK, PROFILES, ROSOUT, QosProfile, profile
+from constraint_ctrl.transport.receive_faults import FaultLog, SourceFaults
 from constraint_ctrl.transport.ros_args import (node_fqn, node_identity, overrides_for,
                                                 parse_ros_args, resolve_name, topic_dds_name,
                                                 validate_node_name)
+from constraint_ctrl.transport.signals import StopSignals
 
 _PARAMETER_SERVICES = (
     ('describe_parameters', 'DescribeParameters', 'on_describe_parameters'),
@@ -68,24 +86,39 @@ def delete_entity(entity: Any) -> None:
     entity.__del__()
 
 
+#: rcl_interfaces/Log severities (rcl_interfaces/msg/Log.msg constants) of our log levels.
+_ROSOUT_LEVELS = {'debug': 10, 'info': 20, 'warn': 30, 'error': 40}
+
+
 class DdsPublisher:
     def __init__(self, writer: DataWriter, msg_type: type, name: str) -> None:
         self.writer = writer
         self.name = name
         self._type = msg_type
+        self._encode = codec_of(msg_type).encode
+
+    @property
+    def topic_name(self) -> str:
+        """The fully qualified topic name after remapping, as rclpy's Publisher.topic_name."""
+        return self.name
 
     def publish(self, msg: Any) -> None:
         if not isinstance(msg, self._type):
             text = (f'publisher {self.name}: message is {type(msg).__name__}, expected '
                     f'{ros_type_of(self._type)}')
             raise TransportError(text)
-        self.writer.write(msg)
+        dds_raw.write(self.writer, self._encode(msg))
 
 
 class DdsSubscription:
     def __init__(self, reader: DataReader, name: str) -> None:
         self.reader = reader
         self.name = name
+
+    @property
+    def topic_name(self) -> str:
+        """The fully qualified topic name after remapping, as rclpy's Subscription.topic_name."""
+        return self.name
 
 
 class DdsPort:
@@ -104,30 +137,42 @@ class DdsPort:
         level = args.log_level or 'info'  # 'fatal' silences all our levels
         self._log_threshold = LOG_LEVELS.index(level) if level in LOG_LEVELS else len(LOG_LEVELS)
         self._log_lock = threading.Lock()
-        ensure_cyclone_config()
+        self._logger_name = '.'.join([*self.namespace.strip('/').split('/'), self.node_name]
+                                     ).lstrip('.')
+        self._rosout: DdsPublisher | None = None
+        self._clock = RosClock()
+        self._clock_subscription: DdsSubscription | None = None
+        self._faults = FaultLog(self.log)
+        ours = ensure_cyclone_config()
+        sockets_before = socket_inodes()
         self._participant = DomainParticipant(domain_id(),
                                               qos=Qos(Policy.Userdata(data=b'enclave=/;')))
+        if ours:
+            _, problem = confine_to_loopback(sockets_before)
+            if problem:
+                self.log('warn', f'DDS receive sockets stay on the any-address ({problem}); '
+                                 'the node may receive from other hosts')
         self._topics: dict[str, Topic] = {}
         self._writers: list[DataWriter] = []
         self._timers: list[FixedRateTimer] = []
         self._stop = threading.Event()
-        self._failure: tuple[str, BaseException] | None = None
+        self._signals = StopSignals(self._stop.set)
         self._spinning = False
         self._closed = False
         self._topic_dispatch = Dispatcher(self._participant, f'{self.node_name}-topics',
-                                          self._callback_failed)
+                                          self._faults)
         self._service_dispatch = Dispatcher(self._participant, f'{self.node_name}-services',
-                                            self._callback_failed)
+                                            self._faults)
         self._announcer = NodeAnnouncer(self._participant, self.types, self.namespace,
-                                         self.node_name)
+                                         self.node_name, distro)
+        self._rosout = self._publisher(self.types.Log, '/rosout', ROSOUT)
         events = self.create_publisher(self.types.ParameterEvent, '/parameter_events',
                                        'parameters')
         self._params = ParameterStore(self.fqn, overrides_for(args, self.fqn), self.types,
                                       self.now_ns, events.publish)
-        # rclpy's TimeSource declares use_sim_time on every node; keep the same parameter set
-        if self._params.declare('use_sim_time', False).value is not False:
-            self.log('warn', 'use_sim_time is not supported by the DDS port; stamps and timers '
-                             'use the system and monotonic clocks')
+        # rclpy's TimeSource declares use_sim_time on every node and follows its changes
+        self._set_sim_time(self._params.declare('use_sim_time', False).value)
+        self._params.add_listener(self._on_parameters)
         for suffix, type_name, handler in _PARAMETER_SERVICES:
             self._add_service(getattr(self.types, type_name), f'~/{suffix}',
                               getattr(self._params, handler), 'parameters')
@@ -138,13 +183,16 @@ class DdsPort:
         return level[0] if isinstance(level, (bytes, bytearray)) else int(level)
 
     def now_ns(self) -> int:
-        return time.time_ns()
+        return self._clock.now_ns()
 
     def type_name(self, msg_type: Any) -> str:
         return ros_type_of(msg_type)
 
     def serialize(self, msg: Any) -> bytes:
-        return bytes(msg.serialize())
+        return codec_of(type(msg)).encode(msg)
+
+    def faults(self) -> dict[str, SourceFaults]:
+        return self._faults.snapshot()
 
     def log(self, level: str, text: str) -> None:
         if level not in LOG_LEVELS:
@@ -158,6 +206,19 @@ class DdsPort:
         with self._log_lock:
             sys.stderr.write(line)
             sys.stderr.flush()
+        rosout = self._rosout
+        if rosout is None or self._closed:
+            return
+        caller = sys._getframe(1)
+        t = self.types
+        try:   # stamp: the wall clock, as rcutils stamps log records
+            rosout.publish(t.Log(
+                stamp=t.Time(sec=now // 1_000_000_000, nanosec=now % 1_000_000_000),
+                level=_ROSOUT_LEVELS[level], name=self._logger_name, msg=text,
+                file=os.path.basename(caller.f_code.co_filename),
+                function=caller.f_code.co_name, line=caller.f_lineno))
+        except (DDSException, TransportError):
+            pass   # participant going away, or text that is not valid Unicode: stderr has it
 
     # --- topics ----------------------------------------------------------------------------
 
@@ -175,19 +236,27 @@ class DdsPort:
         return fqn, topic
 
     def create_publisher(self, msg_type: Any, topic: str, qos: str) -> DdsPublisher:
+        return self._publisher(msg_type, topic, profile(qos))
+
+    def _publisher(self, msg_type: Any, topic: str, qos: QosProfile) -> DdsPublisher:
         fqn, dds_topic = self._topic(msg_type, topic)
         tag = type_hash_tag(ros_type_of(msg_type), self.distro)
-        writer = DataWriter(self._participant, dds_topic, writer_qos(profile(qos), tag))
+        writer = DataWriter(self._participant, dds_topic, writer_qos(qos, tag))
         self._writers.append(writer)
         self._announcer.update(writers=(writer,))
         return DdsPublisher(writer, msg_type, fqn)
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
                             qos: str) -> DdsSubscription:
+        return self._subscription(msg_type, topic, callback, profile(qos))
+
+    def _subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
+                      qos: QosProfile) -> DdsSubscription:
         fqn, dds_topic = self._topic(msg_type, topic)
         tag = type_hash_tag(ros_type_of(msg_type), self.distro)
-        reader = DataReader(self._participant, dds_topic, reader_qos(profile(qos), tag))
-        self._topic_dispatch.add(reader, callback, f'subscription {fqn}')
+        reader = DataReader(self._participant, dds_topic, reader_qos(qos, tag))
+        self._topic_dispatch.add(reader, codec_of(msg_type).decode,
+                                 lambda msg, _info: callback(msg), f'subscription {fqn}')
         self._announcer.update(readers=(reader,))
         return DdsSubscription(reader, fqn)
 
@@ -196,8 +265,11 @@ class DdsPort:
     def _add_service(self, srv_type: Any, name: str, callback: Callable[[Any, Any], Any],
                      qos: str) -> ServiceServer:
         fqn = resolve_name(name, self.node_name, self.namespace, self._remaps)
-        server = ServiceServer(self._participant, srv_type, fqn, callback, profile(qos))
-        self._service_dispatch.add(server.reader, server.handle, f'service {fqn}')
+        server = ServiceServer(self._participant, srv_type, fqn,
+                               self._faults.guard_service(f'service {fqn}', callback),
+                               profile(qos))
+        self._service_dispatch.add(server.reader, server.decode, server.handle,
+                                   f'service {fqn}')
         self._announcer.update(readers=(server.reader,), writers=(server.writer,))
         return server
 
@@ -224,8 +296,9 @@ class DdsPort:
     # --- timers ----------------------------------------------------------------------------
 
     def create_timer(self, period_s: float, callback: Callable[[], None]) -> FixedRateTimer:
-        timer = FixedRateTimer(period_s, callback, self._callback_failed,
-                               name=f'{self.node_name}-timer{len(self._timers)}')
+        timer = FixedRateTimer(period_s, callback, self._faults,
+                               name=f'timer {len(self._timers)}',
+                               clock=self._clock if self._clock.sim_time else None)
         self._timers.append(timer)
         if self._spinning:
             timer.start()
@@ -249,20 +322,31 @@ class DdsPort:
     def add_parameter_listener(self, callback: Any) -> None:
         self._params.add_listener(callback)
 
-    # --- running ---------------------------------------------------------------------------
+    # --- simulated time ---------------------------------------------------------------------
 
-    def _callback_failed(self, label: str, exc: BaseException) -> None:
-        if self._failure is None:
-            self._failure = (label, exc)
-        detail = ''.join(traceback.format_exception(exc)).rstrip()
-        self.log('error', f'{label} raised; stopping spin():\n{detail}')
-        self._stop.set()
+    def _on_parameters(self, values: dict[str, Any]) -> None:
+        if 'use_sim_time' in values:
+            self._set_sim_time(values['use_sim_time'])
+
+    def _set_sim_time(self, active: Any) -> None:
+        """Follow use_sim_time: subscribe to /clock (best effort, depth 1, as rclpy's
+        TimeSource) the first time it is true; ROS time is /clock's while it stays true."""
+        active = bool(active)
+        if active and self._clock_subscription is None:
+            self._clock_subscription = self._subscription(
+                self.types.Clock, '/clock', self._on_clock, CLOCK)
+        self._clock.use_sim_time(active)
+
+    def _on_clock(self, msg: Any) -> None:
+        self._clock.on_clock(msg.clock.sec * 1_000_000_000 + msg.clock.nanosec)
+
+    # --- running ---------------------------------------------------------------------------
 
     def spin(self) -> None:
         if self._closed:
             msg = f'node {self.fqn}: spin() after shutdown()'
             raise TransportError(msg)
-        previous = self._install_signal_handlers()
+        self._signals.catch()
         self._spinning = True
         self._topic_dispatch.start()
         self._service_dispatch.start()
@@ -277,20 +361,7 @@ class DdsPort:
                 timer.stop()
             self._topic_dispatch.stop()
             self._service_dispatch.stop()
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
-        if self._failure is not None:
-            label, exc = self._failure
-            msg = f'node {self.fqn}: {label} raised {exc!r}'
-            raise TransportError(msg) from exc
-
-    def _install_signal_handlers(self) -> dict[int, Any]:
-        if threading.current_thread() is not threading.main_thread():
-            return {}
-        previous = {}
-        for sig in (signal.SIGINT, signal.SIGTERM):
-            previous[sig] = signal.signal(sig, lambda *_: self._stop.set())
-        return previous
+            self._signals.hold()     # a second signal must not cut the shutdown short
 
     def shutdown(self) -> None:
         """From a callback: end spin(). Otherwise: also withdraw the node and close DDS."""
@@ -300,6 +371,7 @@ class DdsPort:
         self._closed = True
         for timer in self._timers:
             timer.cancel()
+        self._clock.wake()
         self._topic_dispatch.stop()
         self._service_dispatch.stop()
         self._announcer.withdraw()
@@ -309,3 +381,4 @@ class DdsPort:
             if left > 0:
                 writer.wait_for_acks(duration(seconds=left))
         delete_entity(self._participant)   # and with it every entity of the node
+        self._signals.release()

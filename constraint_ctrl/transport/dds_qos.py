@@ -25,6 +25,8 @@ def _common(p: QosProfile, user_data: bytes) -> list[object]:
     ]
     if user_data:
         policies.append(Policy.Userdata(data=user_data))
+    if p.lifespan_s > 0:
+        policies.append(Policy.Lifespan(duration(seconds=p.lifespan_s)))
     return policies
 
 

@@ -24,15 +24,14 @@ import time
 from collections.abc import Callable
 from typing import Any
 
-from cyclonedds.core import (DDSException, InstanceState, ReadCondition, SampleState, ViewState,
-                             WaitSet)
-from cyclonedds.internal import InvalidSample
+from cyclonedds.core import DDSException, ReadCondition, WaitSet
 from cyclonedds.pub import DataWriter
 from cyclonedds.sub import DataReader
 from cyclonedds.topic import Topic
 from cyclonedds.util import duration
 
 from constraint_ctrl.errors import TransportError
+from constraint_ctrl.transport import dds_raw
 from constraint_ctrl.transport.dds_qos import reader_qos, tag_value, user_data_of, writer_qos
 from constraint_ctrl.transport.dds_types import ServiceType
 from constraint_ctrl.transport.qos import QosProfile
@@ -68,7 +67,8 @@ def _check_srv_type(srv_type: Any) -> ServiceType:
 
 
 class ServiceServer:
-    """Request reader + reply writer; `handle` runs on the port's service dispatcher."""
+    """Request reader + reply writer; the port's service dispatcher decodes each request with
+    `decode` and runs `handle` (an exception there is counted by the dispatcher: no reply)."""
 
     def __init__(self, participant: Any, srv_type: Any, fqn: str,
                  callback: Callable[[Any, Any], Any], qos: QosProfile) -> None:
@@ -82,10 +82,14 @@ class ServiceServer:
         self.reader = DataReader(participant, req_topic, reader_qos(qos, tag))
         self.writer = DataWriter(participant, rep_topic, writer_qos(qos, tag))
 
-    def handle(self, sample: Any) -> None:
+    def decode(self, data: bytes) -> tuple[int, int, Any]:
+        return self.srv_type.request_codec.decode(data)
+
+    def handle(self, request: tuple[int, int, Any], info: Any) -> None:
         if self.closed:
             return
-        response = self._callback(sample.body, self.srv_type.Response())
+        guid, seq, body = request
+        response = self._callback(body, self.srv_type.Response())
         if not isinstance(response, self.srv_type.Response):
             msg = (f'service {self.name}: callback returned {type(response).__name__}, '
                    f'expected the {self.srv_type.ros_type} response it was given')
@@ -93,9 +97,8 @@ class ServiceServer:
         if self.closed:  # destroyed by its own callback (or meanwhile): no reply
             return
         try:
-            self._wait_for_reply_reader(sample.sample_info.publication_handle)
-            self.writer.write(self.srv_type.ResponseWire(guid=sample.guid, seq=sample.seq,
-                                                         body=response))
+            self._wait_for_reply_reader(info.publication_handle)
+            dds_raw.write(self.writer, self.srv_type.response_codec.encode(guid, seq, response))
         except DDSException:
             if not self.closed:
                 raise
@@ -133,8 +136,7 @@ class ServiceClient:
         self.writer = DataWriter(participant, req_topic, writer_qos(qos, tag))
         self.reader = DataReader(participant, rep_topic, reader_qos(qos, tag))
         self._waitset = WaitSet(participant)
-        self._waitset.attach(ReadCondition(
-            self.reader, SampleState.NotRead | ViewState.Any | InstanceState.Any))
+        self._waitset.attach(ReadCondition(self.reader, dds_raw.NOT_READ))
 
     def service_is_ready(self) -> bool:
         readers = [self.writer.get_matched_subscription_data(h)
@@ -165,16 +167,20 @@ class ServiceClient:
                 return None
             self._seq += 1
             seq = self._seq
-            self.reader.take(N=1000)  # drop stale replies of calls that timed out
-            self.writer.write(self.srv_type.RequestWire(guid=self.guid & _U64, seq=seq,
-                                                        body=request))
+            dds_raw.take(self.reader, 1000)  # drop stale replies of calls that timed out
+            dds_raw.write(self.writer, self.srv_type.request_codec.encode(self.guid & _U64, seq,
+                                                                          request))
             while True:
                 left = deadline - time.monotonic()
                 if left <= 0:
                     return None
                 self._waitset.wait(duration(seconds=left))
-                for reply in self.reader.take(N=64):
-                    if isinstance(reply, InvalidSample):
+                for data, info in dds_raw.take(self.reader, 64):
+                    if not info.valid_data:
                         continue
-                    if reply.guid == self.guid and reply.seq == seq:
-                        return reply.body
+                    try:
+                        guid, reply_seq, body = self.srv_type.response_codec.decode(data)
+                    except TransportError:
+                        continue      # an unreadable reply (of this call or another): skip
+                    if guid == self.guid & _U64 and reply_seq == seq:
+                        return body

@@ -12,19 +12,32 @@ rclpy offers and names things as rclpy does:
 * callbacks (subscriptions, services, parameter changes, timers) run only while `spin()` runs,
   on threads of the port: the timer has its own thread, so a timer tick may run at the same time
   as a subscription or service callback. Guard shared state with a lock.
-* QoS is chosen by profile name (see qos.py).
+* a sample that cannot be decoded is dropped, and an exception raised by a subscription,
+  service or timer callback is caught; both are counted per source (`faults()`), logged at
+  most once a minute per source, and spin() goes on (receive_faults.py). One bad sample from a
+  peer, or one failing callback, never ends the node;
+* time is ROS time: `now_ns()` follows the node's clock (the system clock, or /clock while the
+  parameter use_sim_time is true), and a timer created while use_sim_time is true runs on it;
+* QoS is chosen by profile name (see qos.py);
+* `port.distro` ('jazzy' or 'humble') names the message layouts and the bag format. On rclpy
+  it is the installed ROS 2's (detect_distro), and a `--distro` that contradicts it is refused:
+  rclpy's messages are the installed ones whatever a flag says. The DDS port has no installed
+  ROS to follow: jazzy unless told otherwise.
 """
 from __future__ import annotations
 
 import importlib.util
+import os
 from collections.abc import Callable
 from dataclasses import dataclass
 from types import SimpleNamespace
 from typing import Any, Protocol
 
 from constraint_ctrl.errors import TransportError
+from constraint_ctrl.transport.receive_faults import SourceFaults
 
 DISTROS = ('jazzy', 'humble')
+DISTRO_CHOICES = ('auto', *DISTROS)
 TRANSPORTS = ('auto', 'rclpy', 'dds')
 LOG_LEVELS = ('debug', 'info', 'warn', 'error')
 
@@ -40,7 +53,13 @@ class ParameterView:
 
 
 class Publisher(Protocol):
+    topic_name: str   # fully qualified, after remapping (rclpy: Publisher.topic_name)
+
     def publish(self, msg: Any) -> None: ...
+
+
+class Subscription(Protocol):
+    topic_name: str   # fully qualified, after remapping (rclpy: Subscription.topic_name)
 
 
 class Client(Protocol):
@@ -66,7 +85,9 @@ class Port(Protocol):
         """DiagnosticStatus.level in the port's representation (rclpy wants bytes)."""
 
     def now_ns(self) -> int:
-        """ROS time (system clock) in ns, for header stamps."""
+        """ROS time in ns, for header stamps: the node clock. That is the system clock, or,
+        while the parameter use_sim_time is true, the latest rosgraph_msgs/Clock received on
+        /clock (0 before the first one), as rclpy's node clock and TimeSource define it."""
 
     def type_name(self, msg_type: Any) -> str:
         """'sensor_msgs/msg/JointState' for a message class (for bags and messages)."""
@@ -74,7 +95,7 @@ class Port(Protocol):
     def create_publisher(self, msg_type: Any, topic: str, qos: str) -> Publisher: ...
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
-                            qos: str) -> object: ...
+                            qos: str) -> Subscription: ...
 
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> object:
@@ -85,7 +106,9 @@ class Port(Protocol):
     def create_client(self, srv_type: Any, name: str) -> Client: ...
 
     def create_timer(self, period_s: float, callback: Callable[[], None]) -> Timer:
-        """Fixed rate on the monotonic clock; late ticks are skipped, not bunched."""
+        """Fixed rate; late ticks are skipped, not bunched. Created while use_sim_time is
+        false: on the monotonic clock. Created while it is true: on ROS time, so the timer
+        does not fire while /clock stands still, as rclpy's ROS-time timers do."""
 
     def declare_parameter(self, name: str, value: ParameterValue, description: str = '',
                           read_only: bool = False) -> Any:
@@ -107,7 +130,12 @@ class Port(Protocol):
     def serialize(self, msg: Any) -> bytes:
         """CDR with the 4-byte encapsulation header, as stored in rosbag2."""
 
-    def log(self, level: str, text: str) -> None: ...
+    def log(self, level: str, text: str) -> None:
+        """To stderr and to /rosout (rcl_interfaces/Log), as an rclpy node's logger does."""
+
+    def faults(self) -> dict[str, SourceFaults]:
+        """Dropped samples and callback exceptions per source ('subscription /joint_states',
+        'service /ctrl/get_parameters', 'timer 0', ...) since the node started."""
 
     def spin(self) -> None:
         """Run callbacks until shutdown() or SIGINT/SIGTERM; publishing still works after."""
@@ -122,11 +150,64 @@ def _available(module: str) -> bool:
         return False
 
 
+def detect_distro() -> tuple[str, str]:
+    """(distro, how it was found) for the ROS 2 install rclpy loads its messages from.
+
+    sensor_msgs/Range is the one message the nodes use whose layout differs: it has
+    `variance` from Iron on and not in Humble (rosbags' ROS2_HUMBLE and ROS2_JAZZY type
+    stores). ROS_DISTRO (set by the install's setup.bash) must agree with it; a distro other
+    than humble or jazzy runs with the layout family its Range shows.
+    """
+    try:
+        from sensor_msgs.msg import Range
+        fields = set(Range.get_fields_and_field_types())
+    except (ImportError, AttributeError) as exc:
+        msg = (f'cannot tell which ROS 2 is installed: sensor_msgs/Range is not usable ({exc}); '
+               'source /opt/ros/<distro>/setup.bash first')
+        raise TransportError(msg) from None
+    layout = 'jazzy' if 'variance' in fields else 'humble'
+    seen = f"the installed sensor_msgs/Range has {'a' if layout == 'jazzy' else 'no'} `variance`"
+    name = os.environ.get('ROS_DISTRO', '').strip()
+    if not name:
+        return layout, f'ROS_DISTRO is not set; {seen}'
+    if name in DISTROS and name != layout:
+        msg = (f'ROS_DISTRO={name} but {seen} field (the {layout} layout): the sourced '
+               'setup.bash and the Python path belong to different ROS 2 installs; source '
+               'only one of them')
+        raise TransportError(msg)
+    if name in DISTROS:
+        return name, f'ROS_DISTRO={name}; {seen}'
+    return layout, (f'ROS_DISTRO={name} is neither {" nor ".join(DISTROS)}; {seen}, so the '
+                    f'{layout} message layouts and bag format are used')
+
+
+def _choose(transport: str, requested: str) -> tuple[str, str]:
+    if requested not in DISTRO_CHOICES:
+        msg = f'distro {requested!r} is not supported; use one of {", ".join(DISTRO_CHOICES)}'
+        raise TransportError(msg)
+    if transport != 'rclpy':
+        return ('jazzy', 'the default') if requested == 'auto' else (requested, 'as asked')
+    detected, evidence = detect_distro()
+    if requested not in ('auto', detected):
+        msg = (f'--distro {requested} contradicts the installed ROS 2 ({detected}: {evidence}); '
+               'on rclpy the message layouts are those of the installed ROS, so leave '
+               f'--distro out or give --distro {detected}')
+        raise TransportError(msg)
+    return detected, evidence
+
+
+def choose_distro(transport: str, requested: str = 'auto') -> str:
+    """The distro a port on ``transport`` ('rclpy' or 'dds') uses when asked for
+    ``requested`` ('auto', 'jazzy', 'humble'); raises when rclpy's install contradicts it."""
+    return _choose(transport, requested)[0]
+
+
 def open_port(transport: str, node_name: str, argv: list[str], *,
-              distro: str = 'jazzy') -> Port:
-    """Create the node's port. 'auto' picks rclpy when it can be imported, else DDS."""
-    if distro not in DISTROS:
-        msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTROS)}'
+              distro: str = 'auto') -> Port:
+    """Create the node's port. 'auto' picks rclpy when it can be imported, else DDS; the
+    distro follows choose_distro."""
+    if distro not in DISTRO_CHOICES:
+        msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTRO_CHOICES)}'
         raise TransportError(msg)
     if transport not in TRANSPORTS:
         msg = f'transport {transport!r} is unknown; use one of {", ".join(TRANSPORTS)}'
@@ -145,10 +226,13 @@ def open_port(transport: str, node_name: str, argv: list[str], *,
             msg = ("transport 'rclpy' needs a ROS 2 install: source /opt/ros/<distro>/setup.bash "
                    "first, or use transport 'dds'")
             raise TransportError(msg)
+        chosen, evidence = _choose('rclpy', distro)
         from constraint_ctrl.transport.rclpy_port import RclpyPort
-        return RclpyPort(node_name, argv, distro=distro)
+        port = RclpyPort(node_name, argv, distro=chosen)
+        port.log('info', f'ROS 2 message layouts and bag format: {chosen} ({evidence})')
+        return port
     if not _available('cyclonedds'):
         msg = "transport 'dds' needs the Python package 'cyclonedds' (pip install cyclonedds)"
         raise TransportError(msg)
     from constraint_ctrl.transport.dds_port import DdsPort
-    return DdsPort(node_name, argv, distro=distro)
+    return DdsPort(node_name, argv, distro=choose_distro('dds', distro))

@@ -19,11 +19,13 @@ from constraint_ctrl.errors import TransportError
 
 @dataclass(frozen=True)
 class QosProfile:
-    """History is always KEEP_LAST; deadline, lifespan and liveliness stay at ROS defaults."""
+    """History is always KEEP_LAST; deadline and liveliness stay at ROS defaults; lifespan is
+    infinite unless given (in seconds)."""
 
     depth: int
     reliable: bool
     transient_local: bool
+    lifespan_s: float = 0.0
 
 
 PROFILES: dict[str, QosProfile] = {
@@ -37,8 +39,13 @@ PROFILES: dict[str, QosProfile] = {
     'robot_description': QosProfile(depth=1, reliable=True, transient_local=True),
 }
 
-# Not selectable by nodes: the writer side of rmw_cyclonedds' node-discovery topic.
+# Not selectable by nodes: the writer side of rmw_cyclonedds' node-discovery topic,
 DISCOVERY_INFO = QosProfile(depth=1, reliable=True, transient_local=True)
+# the /rosout publisher of rcl (rcl/logging_rosout.h: keep last 1000, reliable, transient
+# local, lifespan 10 s; ros2-interop.md section 3.1),
+ROSOUT = QosProfile(depth=1000, reliable=True, transient_local=True, lifespan_s=10.0)
+# and the /clock subscription of rclpy's TimeSource (keep last 1, best effort, volatile).
+CLOCK = QosProfile(depth=1, reliable=False, transient_local=False)
 
 
 def profile(name: str) -> QosProfile:

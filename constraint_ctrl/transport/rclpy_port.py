@@ -15,17 +15,29 @@ project's CI (no ROS install); every call below is one rclpy documents:
 * validator -> add_on_set_parameters_callback returning SetParametersResult; listeners ->
   add_post_set_parameters_callback (Jazzy), or called from the on-set callback after the
   validator accepted (Humble has no post-set callbacks);
-* timers use a steady clock (Clock(clock_type=ClockType.STEADY_TIME)), as the DDS port's do.
+* timers use a steady clock (Clock(clock_type=ClockType.STEADY_TIME)), as the DDS port's do,
+  unless use_sim_time is true when the timer is created: then the node clock
+  (node.get_clock(), ROS time, driven by /clock through rclpy's TimeSource), so the timer
+  does not fire while /clock stands still; now_ns() is always the node clock;
+* /rosout and use_sim_time are rclpy's own (its logger and TimeSource);
+* publishers and subscriptions are rclpy's own: their topic_name property (Humble and Jazzy)
+  is the fully qualified name after remapping;
+* the distro is the installed ROS 2's (port.detect_distro: ROS_DISTRO and the installed
+  sensor_msgs/Range fields), never a flag's.
 
 Additions over plain rclpy, kept identical to the DDS port: declare_parameter adopts a value
 that a launch override already declared (rclpy would raise ParameterAlreadyDeclaredException),
-timers count `missed` periods, and client.call takes a timeout and works before spin().
+timers count `missed` periods, client.call takes a timeout and works before spin(), and
+callbacks are wrapped by receive_faults.FaultLog: an exception raised by a subscription or
+timer callback is counted and logged at most once a minute (rclpy would end spin()), one
+raised by a service callback also gives the caller an error reply, and an exception that
+rclpy's executor raises while taking a sample (a sample rclpy cannot convert, such as a string
+that is not UTF-8) is counted as a dropped sample of 'rclpy executor' and spinning goes on.
+Sources are named by the names given to the port (before remapping).
 """
 from __future__ import annotations
 
-import signal
 import threading
-import time
 from collections.abc import Callable
 from types import SimpleNamespace
 from typing import Any
@@ -33,29 +45,44 @@ from typing import Any
 from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS
 from constraint_ctrl.transport.qos import profile
+from constraint_ctrl.transport.receive_faults import FaultLog, SourceFaults
+from constraint_ctrl.transport.signals import StopSignals
 
 
 def _types() -> SimpleNamespace:
-    from builtin_interfaces.msg import Time
+    """The same names as the DDS port's types (dds_types.MESSAGES and SERVICES and the types
+    they contain), from the installed ROS packages."""
+    from builtin_interfaces.msg import Duration, Time
     from diagnostic_msgs.msg import DiagnosticArray, DiagnosticStatus, KeyValue
-    from geometry_msgs.msg import Point, PointStamped, Vector3, Wrench, WrenchStamped
+    from geometry_msgs.msg import (Point, PointStamped, Pose, Quaternion, Transform,
+                                   TransformStamped, Vector3, Wrench, WrenchStamped)
+    from lifecycle_msgs.msg import State, Transition, TransitionDescription, TransitionEvent
+    from lifecycle_msgs.srv import (ChangeState, GetAvailableStates, GetAvailableTransitions,
+                                    GetState)
     from rcl_interfaces.msg import (FloatingPointRange, IntegerRange, ListParametersResult,
-                                    Parameter, ParameterDescriptor, ParameterEvent,
+                                    Log, Parameter, ParameterDescriptor, ParameterEvent,
                                     ParameterType, ParameterValue, SetParametersResult)
     from rcl_interfaces.srv import (DescribeParameters, GetParameters, GetParameterTypes,
                                     ListParameters, SetParameters, SetParametersAtomically)
-    from sensor_msgs.msg import JointState, Range
-    from std_msgs.msg import (Bool, Float64, Float64MultiArray, Header, MultiArrayDimension,
-                              MultiArrayLayout, String)
+    from rosgraph_msgs.msg import Clock
+    from sensor_msgs.msg import CompressedImage, JointState, Range
+    from std_msgs.msg import (Bool, ColorRGBA, Float64, Float64MultiArray, Header,
+                              MultiArrayDimension, MultiArrayLayout, String)
     from std_srvs.srv import SetBool, Trigger
+    from tf2_msgs.msg import TFMessage
+    from visualization_msgs.msg import Marker, MarkerArray, MeshFile, UVCoordinate
     return SimpleNamespace(**{cls.__name__: cls for cls in (
-        Time, Header, Float64, String, Bool, MultiArrayDimension, MultiArrayLayout,
+        Time, Duration, Header, Float64, String, Bool, MultiArrayDimension, MultiArrayLayout,
         Float64MultiArray, JointState, Range, Vector3, Point, PointStamped, Wrench,
-        WrenchStamped, KeyValue, DiagnosticStatus, DiagnosticArray, ParameterType,
-        ParameterValue, Parameter, FloatingPointRange, IntegerRange, ParameterDescriptor,
-        SetParametersResult, ListParametersResult, ParameterEvent, Trigger, SetBool,
-        SetParameters, SetParametersAtomically, GetParameters, GetParameterTypes,
-        ListParameters, DescribeParameters)})
+        WrenchStamped, Quaternion, Pose, Transform, TransformStamped, TFMessage, ColorRGBA,
+        CompressedImage, UVCoordinate, MeshFile, Marker, MarkerArray, KeyValue,
+        DiagnosticStatus, DiagnosticArray, State, Transition, TransitionDescription,
+        TransitionEvent, Clock, Log, ParameterType, ParameterValue, Parameter,
+        FloatingPointRange, IntegerRange, ParameterDescriptor, SetParametersResult,
+        ListParametersResult, ParameterEvent, Trigger, SetBool, SetParameters,
+        SetParametersAtomically, GetParameters, GetParameterTypes, ListParameters,
+        DescribeParameters, ChangeState, GetState, GetAvailableStates,
+        GetAvailableTransitions)})
 
 
 def _qos(name: str) -> Any:
@@ -75,20 +102,26 @@ def _qos(name: str) -> Any:
 
 
 class RclpyTimer:
-    """rclpy Timer plus the DDS port's `missed` count (periods that passed unserved)."""
+    """rclpy Timer plus the DDS port's `missed` count (periods that passed unserved), counted
+    on the timer's own clock (`now` gives its time in ns)."""
 
-    def __init__(self, period_s: float, callback: Callable[[], None]) -> None:
+    def __init__(self, period_s: float, callback: Callable[[], None],
+                 now: Callable[[], int]) -> None:
         if not period_s > 0.0:
             msg = f'timer period must be > 0 s, got {period_s!r}'
             raise TransportError(msg)
         self.missed = 0
         self.timer: Any = None
         self._callback = callback
+        self._now = now
         self._period = round(period_s * 1e9)
-        self._due = time.monotonic_ns() + self._period
+        self._due = now() + self._period
 
     def tick(self) -> None:
-        behind = max(0, (time.monotonic_ns() - self._due) // self._period)
+        now = self._now()
+        if now < self._due - self._period:       # ROS time went back: a new schedule
+            self._due = now
+        behind = max(0, (now - self._due) // self._period)
         self.missed += behind
         self._due += (behind + 1) * self._period
         self._callback()
@@ -149,8 +182,11 @@ class RclpyPort:
         self._on_set_added = False
         self._post_set = hasattr(self.node, 'add_post_set_parameters_callback')  # Jazzy
         self._stop = threading.Event()
+        self._signals = StopSignals(self._stop.set)
         self.spinning = False
         self._closed = False
+        self._faults = FaultLog(self.log)
+        self._timer_count = 0
 
     # --- plain helpers ---------------------------------------------------------------------
 
@@ -167,6 +203,9 @@ class RclpyPort:
     def serialize(self, msg: Any) -> bytes:
         from rclpy.serialization import serialize_message
         return bytes(serialize_message(msg))
+
+    def faults(self) -> dict[str, SourceFaults]:
+        return self._faults.snapshot()
 
     def log(self, level: str, text: str) -> None:
         if level not in LOG_LEVELS:
@@ -191,13 +230,15 @@ class RclpyPort:
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
                             qos: str) -> Any:
-        return self.node.create_subscription(msg_type, topic, callback, _qos(qos),
-                                             callback_group=self._topic_group)
+        return self.node.create_subscription(
+            msg_type, topic, self._faults.guard(f'subscription {topic}', callback), _qos(qos),
+            callback_group=self._topic_group)
 
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> Any:
-        return self.node.create_service(srv_type, name, callback, qos_profile=_qos('services'),
-                                        callback_group=self.node.default_callback_group)
+        return self.node.create_service(
+            srv_type, name, self._faults.guard_service(f'service {name}', callback),
+            qos_profile=_qos('services'), callback_group=self.node.default_callback_group)
 
     def destroy_service(self, handle: object) -> None:
         self.node.destroy_service(handle)
@@ -209,10 +250,13 @@ class RclpyPort:
 
     def create_timer(self, period_s: float, callback: Callable[[], None]) -> RclpyTimer:
         from rclpy.clock import Clock, ClockType
-        timer = RclpyTimer(period_s, callback)
+        clock = (self.node.get_clock() if self.node.get_parameter('use_sim_time').value
+                 else Clock(clock_type=ClockType.STEADY_TIME))
+        timer = RclpyTimer(period_s, self._faults.guard(f'timer {self._timer_count}', callback),
+                           lambda: int(clock.now().nanoseconds))
+        self._timer_count += 1
         timer.timer = self.node.create_timer(period_s, timer.tick,
-                                             callback_group=self._timer_group,
-                                             clock=Clock(clock_type=ClockType.STEADY_TIME))
+                                             callback_group=self._timer_group, clock=clock)
         return timer
 
     # --- parameters ------------------------------------------------------------------------
@@ -282,20 +326,21 @@ class RclpyPort:
 
     def spin(self) -> None:
         from rclpy.executors import ExternalShutdownException
-        previous = {}
-        if threading.current_thread() is threading.main_thread():
-            for sig in (signal.SIGINT, signal.SIGTERM):
-                previous[sig] = signal.signal(sig, lambda *_: self._stop.set())
+        self._signals.catch()
         self.spinning = True
         try:
             while not self._stop.is_set() and self._rclpy.ok():
-                self.executor.spin_once(timeout_sec=0.1)
+                try:
+                    self.executor.spin_once(timeout_sec=0.1)
+                except ExternalShutdownException:
+                    raise
+                except Exception as exc:  # noqa: BLE001 - a sample rclpy could not take
+                    self._faults.dropped('rclpy executor', exc)
         except ExternalShutdownException:
             pass
         finally:
             self.spinning = False
-            for sig, handler in previous.items():
-                signal.signal(sig, handler)
+            self._signals.hold()     # a second signal must not cut the shutdown short
 
     def shutdown(self) -> None:
         """From a callback: end spin(). Otherwise: also destroy the node and rclpy's context."""
@@ -303,6 +348,9 @@ class RclpyPort:
         if self.spinning or self._closed:
             return
         self._closed = True
-        self.executor.shutdown()
-        self.node.destroy_node()
-        self._rclpy.try_shutdown()
+        try:
+            self.executor.shutdown()
+            self.node.destroy_node()
+            self._rclpy.try_shutdown()
+        finally:
+            self._signals.release()

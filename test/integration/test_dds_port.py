@@ -227,8 +227,9 @@ def test_peer_is_announced_in_ros_discovery_info(node: Node) -> None:
     sample, info = seen[f'{NS}:peer']
     assert bytes(sample.gid.data)[12:] == bytes.fromhex('000001c1')
     # readers: 6 parameter-service requests + ping request; writers: their 7 replies,
-    # joint_states, cmd and /parameter_events (the discovery writer belongs to no node)
-    assert (len(info.reader_gid_seq), len(info.writer_gid_seq)) == (7, 10)
+    # joint_states, cmd, /rosout and /parameter_events (the discovery writer belongs to no
+    # node)
+    assert (len(info.reader_gid_seq), len(info.writer_gid_seq)) == (7, 11)
     assert all(len(bytes(g.data)) == 16 for g in info.writer_gid_seq)
 
 
@@ -277,18 +278,20 @@ def test_destroying_a_service_updates_the_discovery_record(node: Node) -> None:
 def test_timer_counts_missed_periods() -> None:
     """A tick that sleeps 2.5 periods must leave at least one whole slot unserved."""
     from constraint_ctrl.transport.dds_dispatch import FixedRateTimer
-    errors: list[BaseException] = []
+    from constraint_ctrl.transport.receive_faults import FaultLog
+    lines: list[str] = []
+    faults = FaultLog(lambda level, text: lines.append(text))
     calls: list[int] = []
 
     def slow_first() -> None:
         calls.append(1)
         if len(calls) == 1:
             time.sleep(0.025)
-    timer = FixedRateTimer(0.01, slow_first, lambda _, exc: errors.append(exc))
+    timer = FixedRateTimer(0.01, slow_first, faults)
     timer.start()
     assert wait_until(lambda: len(calls) >= 3, 3.0)
     timer.cancel()
-    assert timer.missed >= 1 and not errors
+    assert timer.missed >= 1 and not faults.snapshot() and not lines
     timer.start()                                  # cancelled timers stay stopped
     assert timer._thread is None
 

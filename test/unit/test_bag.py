@@ -8,6 +8,12 @@ TRANSIENT_LOCAL=1, VOLATILE=2).
 """
 from __future__ import annotations
 
+import json
+import os
+import shutil
+import subprocess
+import sys
+import time
 from pathlib import Path
 
 import pytest
@@ -18,6 +24,8 @@ from rosbags.typesys import Stores, get_typestore
 from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport.bag import BagRecorder
 from constraint_ctrl.transport.dds_types import types_for
+
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def _metadata(path: Path) -> dict:
@@ -108,6 +116,9 @@ def test_recorder_errors_are_actionable(tmp_path: Path) -> None:
     (tmp_path / 'exists').mkdir()
     with pytest.raises(TransportError, match='must not exist'):
         BagRecorder(tmp_path / 'exists')
+    (tmp_path / 'plain_file').write_text('not a folder')
+    with pytest.raises(TransportError, match='cannot create the bag folder'):
+        BagRecorder(tmp_path / 'plain_file' / 'bag')
     with BagRecorder(tmp_path / 'b') as bag:
         with pytest.raises(TransportError, match='call add_topic first'):
             bag.write('/nope', 0, b'')
@@ -116,3 +127,111 @@ def test_recorder_errors_are_actionable(tmp_path: Path) -> None:
         bag.add_topic('/t', 'std_msgs/msg/String', 'default')
         with pytest.raises(TransportError, match='added twice'):
             bag.add_topic('/t', 'std_msgs/msg/String', 'default')
+
+
+@pytest.mark.skipif(os.geteuid() == 0, reason='root may write into any folder')
+def test_unwritable_parent_is_a_start_error(tmp_path: Path) -> None:
+    locked = tmp_path / 'locked'
+    locked.mkdir(mode=0o500)
+    try:
+        with pytest.raises(TransportError, match='cannot create the bag folder'):
+            BagRecorder(locked / 'bag')
+    finally:
+        locked.chmod(0o700)
+
+
+@pytest.mark.parametrize(('distro', 'version'), [('jazzy', 9), ('humble', 8)])
+def test_metadata_names_the_ros_distro(tmp_path: Path, distro: str, version: int) -> None:
+    """rosbag2 records the ROS distro in `ros_distro` (metadata version 8 and later; rosbag2
+    rosbag2_storage yaml.hpp); rosbags writes its own name there, we name the distro."""
+    path = tmp_path / distro
+    with BagRecorder(path, distro=distro) as bag:
+        bag.add_topic('/x', 'std_msgs/msg/String', 'default')
+        bag.write('/x', 5, bytes(types_for(distro).String(data='a').serialize()))
+    meta = _metadata(path)
+    assert (meta['version'], meta['ros_distro']) == (version, distro)
+    # the copy rosbag2's MCAP plugin reads when metadata.yaml is missing (rosbag2
+    # mcap_storage.cpp: metadata record 'rosbag2', key 'serialized_metadata')
+    data = (path / f'{distro}.mcap').read_bytes()
+    assert f'ros_distro: {distro}'.encode() in data and b'ros_distro: rosbags' not in data
+    with Reader(path) as reader:                 # still a bag rosbags reads
+        assert reader.message_count == 1
+
+
+# A child process writes through BagRecorder under a file size limit (RLIMIT_FSIZE): past the
+# limit the kernel cuts the write short and then refuses it with EFBIG, as a full disk does
+# with ENOSPC. Python ignores SIGXFSZ, so the error arrives as an OSError.
+_LIMITED_WRITER = """
+import json, resource, sys
+from pathlib import Path
+from constraint_ctrl.transport.bag import BagRecorder
+from constraint_ctrl.transport.dds_types import types_for
+path, limit, count = Path(sys.argv[1]), int(sys.argv[2]), int(sys.argv[3])
+resource.setrlimit(resource.RLIMIT_FSIZE, (limit, limit))
+t = types_for('jazzy')
+failures = []
+bag = BagRecorder(path, on_failure=failures.append, queue_size=count)
+bag.add_topic('/cmd', 'std_msgs/msg/Float64MultiArray', 'default')
+for i in range(count):
+    msg = t.Float64MultiArray(data=[float(i)] * 40)
+    bag.write('/cmd', 1_000_000_000 + 1000 * i, bytes(msg.serialize()))
+bag.close()
+print(json.dumps({'written': bag.written, 'dropped': bag.dropped, 'state': bag.state,
+                  'error': bag.error, 'failures': failures}))
+"""
+
+
+@pytest.mark.parametrize(('limit', 'count'), [
+    (1_500_000, 12_000),     # ~4.2 MB of messages: the second chunk fails while recording
+    (300_000, 2_000),        # ~0.7 MB, less than a chunk: the only chunk fails at close()
+], ids=['while-recording', 'at-close'])
+def test_write_failure_keeps_the_messages_already_on_disk(tmp_path: Path, limit: int,
+                                                          count: int) -> None:
+    """A write that fails (file size limit, like a full disk): the recorder stops with one
+    reported reason, and the bag holds exactly the first messages, complete, with a
+    metadata.yaml that rosbags reads; every message is either in it or dropped."""
+    path = tmp_path / 'limited'
+    out = subprocess.run([sys.executable, '-c', _LIMITED_WRITER, str(path), str(limit),
+                          str(count)], capture_output=True, text=True, timeout=120,
+                         env={**os.environ, 'PYTHONPATH': str(ROOT)})
+    assert out.returncode == 0, out.stderr
+    report = json.loads(out.stdout.strip().splitlines()[-1])
+    assert report['state'] == 'failed'
+    assert len(report['failures']) == 1 and 'File too large' in report['failures'][0]
+    assert report['error'] == report['failures'][0]
+    assert report['dropped'] > 0
+    assert report['written'] > 0 if count > 10_000 else report['written'] == 0
+    assert report['written'] + report['dropped'] == count
+    assert (path / 'limited.mcap').stat().st_size <= limit
+    meta = _metadata(path)
+    assert meta['message_count'] == report['written']
+    store = get_typestore(Stores.ROS2_JAZZY)
+    with Reader(path) as reader:
+        values = [(stamp, store.deserialize_cdr(raw, conn.msgtype).data[0])
+                  for conn, stamp, raw in reader.messages()]
+    # the first `written` messages, in order, none missing and none damaged
+    assert values == [(1_000_000_000 + 1000 * i, float(i)) for i in range(report['written'])]
+
+
+def test_bag_folder_removed_while_recording(tmp_path: Path) -> None:
+    """Removing the folder while recording stops the recorder with that reason; close() does
+    not raise and does not recreate the folder."""
+    t = types_for('jazzy')
+    failures: list[str] = []
+    path = tmp_path / 'gone'
+    bag = BagRecorder(path, on_failure=failures.append)
+    bag.add_topic('/cmd', 'std_msgs/msg/Float64MultiArray', 'default')
+    data = bytes(t.Float64MultiArray(data=[0.5] * 40).serialize())
+    shutil.rmtree(path)
+    deadline = time.monotonic() + 60
+    i = 0
+    while bag.state == 'recording' and time.monotonic() < deadline:
+        bag.write('/cmd', i, data)           # about 3 MB until the recorder notices
+        i += 1
+        if i % 1000 == 0:
+            time.sleep(0.01)
+    assert bag.state == 'failed', 'the removed folder was never noticed'
+    bag.close()
+    assert len(failures) == 1 and 'removed' in failures[0], failures
+    assert not path.exists()
+    assert bag.written == 0 and bag.dropped == i

@@ -242,7 +242,9 @@ def test_alias_bomb_is_not_expanded(folder: Path) -> None:
     levels += [f'&a{i} [' + ', '.join([f'*a{i - 1}'] * 9) + ']' for i in range(1, 10)]
     text = f'skill: s\nrobot: arm.urdf\ndescription: [{", ".join(levels)}]\n'
     error = load_or_error(text, folder)
-    assert isinstance(error, SkillError) and error.field == 'description'
+    # a5 (597,871 values) is the first item over the 100,000-value budget (README, File limits)
+    assert isinstance(error, SkillError) and error.field == 'description[5]'
+    assert 'holds more than 100,000 values' in error.message
 
 
 # -- (b) structure-aware mutations --------------------------------------------------------------
