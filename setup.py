@@ -20,6 +20,9 @@ setup(
         (os.path.join('share', PACKAGE, 'config', 'skills'), glob('config/skills/*.yaml')),
         (os.path.join('share', PACKAGE, 'config', 'scenes'), glob('config/scenes/*.yaml')),
         (os.path.join('share', PACKAGE, 'config', 'plans'), glob('config/plans/*.yaml')),
+        (os.path.join('share', PACKAGE, 'config', 'cookbook'), glob('config/cookbook/*.yaml')),
+        (os.path.join('share', PACKAGE, 'config', 'cookbook', 'scenes'),
+         glob('config/cookbook/scenes/*.yaml')),
     ],
     python_requires='>=3.10',
     install_requires=[

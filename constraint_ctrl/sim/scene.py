@@ -1,5 +1,10 @@
 """Work-cell scene file: what the simulator builds around the robot.
 
+A scene has a robot and the simulation settings, and any of these fixtures: distance sensors on
+the tool with the housing flange they look at (``range_sensors`` + ``flange``), the splined
+shaft of the gearbox cell (``shaft``), a screw standing in a threaded hole (``screw``), a curved
+panel the tool presses on (``panel``), and an operator.
+
 The YAML is read once, validated completely, and turned into frozen dataclasses so that the
 simulation loop never re-checks anything. Every error names the file, the 1-based line and the
 dotted field (``shaft.drop``) together with the bad value. Lengths are metres, times seconds,
@@ -111,6 +116,50 @@ class ShaftSpec:
 
 
 @dataclass(frozen=True, slots=True)
+class ScrewSpec:
+    """A countersunk screw standing in a threaded hole of a horizontal plate (sim/screw_joint.py).
+
+    The hole axis is vertical; the screw advances downwards (into the plate) when turned
+    positively about the downward axis (right-hand thread). The tool frame origin is the tip of
+    the driver bit.
+    """
+
+    hole: tuple[float, float]  # m, xy of the hole axis, base frame
+    plate_top: float  # m, z of the plate surface
+    standout: float  # m, head top above the plate at the start: the thread still to run
+    pitch: float  # m, advance per turn (single-start thread: the lead)
+    head_radius: float  # m, the bit lands on the head within this distance of the axis
+    capture_radius: float  # m, the bit engages the head's recess within this offset
+    tilt_tolerance: float  # rad, and within this tilt of the tool axis from the hole axis
+    engage_force: float  # N, and pressed at least this hard
+    running_torque: float  # N m, thread-forming and friction torque while running down
+    seated_torque_rate: float  # N m/rad, torque rise per radian turned after the head seats
+    stiffness: float  # N/m, bit on head and tool on plate, axial contact spring
+    damping: float  # N s/m
+
+
+@dataclass(frozen=True, slots=True)
+class PanelSpec:
+    """A curved panel: a segment of a cylinder whose axis runs along base y, convex side up.
+
+    The tool frame origin is the centre of the polishing pad; pad and panel together act as one
+    spring-damper along the surface normal (sim/panel_contact.py).
+    """
+
+    crown: tuple[float, float]  # m, x and z of the panel's highest line
+    radius: float  # m, radius of curvature
+    y_range: tuple[float, float]  # m, extent along the axis
+    half_angle: float  # rad, extent around the axis on either side of the crown
+    stiffness: float  # N/m
+    damping: float  # N s/m
+
+    @property
+    def axis(self) -> tuple[float, float]:
+        """x and z of the cylinder axis (below the crown by the radius)."""
+        return (self.crown[0], self.crown[1] - self.radius)
+
+
+@dataclass(frozen=True, slots=True)
 class Waypoint:
     """A floor point of the operator path, reached at ``speed`` from the previous waypoint."""
 
@@ -159,10 +208,12 @@ class Scene:
     command_latency: float  # s
     seed: int
     noise: NoiseSpec
-    range_sensors: RangeSensorSpec
-    flange: FlangeSpec
-    shaft: ShaftSpec
+    range_sensors: RangeSensorSpec | None
+    flange: FlangeSpec | None
+    shaft: ShaftSpec | None
     operator: OperatorSpec | None
+    screw: ScrewSpec | None = None
+    panel: PanelSpec | None = None
     locations: Mapping[str, int] = field(default_factory=dict)
 
     def error(self, message: str, field_path: str) -> SceneError:
@@ -275,7 +326,8 @@ def _optional(fields: dict[str, yaml.Node], key: str, read: Callable[[yaml.Node]
 
 
 def load_scene(path: str | Path) -> Scene:
-    """Read and validate a scene file (see config/scenes/gearbox_cell.yaml for every key)."""
+    """Read and validate a scene file (config/scenes/gearbox_cell.yaml shows every key of the
+    sensors, flange, shaft and operator; config/cookbook/scenes/ the screw and the panel)."""
     path = Path(path)
     name = str(path)
     try:
@@ -316,9 +368,14 @@ def load_scene(path: str | Path) -> Scene:
 
 def _read_scene(r: _Reader, root: yaml.Node, folder: Path) -> Scene:
     top = r.mapping(root, '', ('robot', 'simulation', 'noise', 'range_sensors', 'flange',
-                               'shaft', 'operator'))
-    for key in ('robot', 'simulation', 'range_sensors', 'flange', 'shaft'):
+                               'shaft', 'screw', 'panel', 'operator'))
+    for key in ('robot', 'simulation'):
         _require(r, top, key, root, key)
+    # the distance sensors see only the flange: one without the other has nothing to do
+    for key, other in (('range_sensors', 'flange'), ('flange', 'range_sensors')):
+        if key in top and other not in top:
+            raise r.fail(f'{key!r} needs {other!r} too (the sensors see only the flange)',
+                         None, key)   # the line of the key
 
     robot = r.mapping(top['robot'], 'robot', ('urdf', 'tool_frame', 'initial_positions'))
     urdf_node = _require(r, robot, 'urdf', top['robot'], 'robot.urdf')
@@ -350,10 +407,13 @@ def _read_scene(r: _Reader, root: yaml.Node, folder: Path) -> Scene:
     return Scene(
         file=r.file, urdf=urdf, tool_frame=tool_frame, initial_positions=initial, rate=rate,
         command_latency=latency, seed=seed, noise=noise,
-        range_sensors=_read_range_sensors(r, top['range_sensors']),
-        flange=_read_flange(r, top['flange']),
-        shaft=_read_shaft(r, top['shaft']),
+        range_sensors=(_read_range_sensors(r, top['range_sensors'])
+                       if 'range_sensors' in top else None),
+        flange=_read_flange(r, top['flange']) if 'flange' in top else None,
+        shaft=_read_shaft(r, top['shaft']) if 'shaft' in top else None,
         operator=_read_operator(r, top['operator']) if 'operator' in top else None,
+        screw=_read_screw(r, top['screw']) if 'screw' in top else None,
+        panel=_read_panel(r, top['panel']) if 'panel' in top else None,
         locations=dict(r.locations))
 
 
@@ -448,6 +508,63 @@ def _read_shaft(r: _Reader, node: yaml.Node) -> ShaftSpec:
         torsional_stiffness=r.number(need('torsional_stiffness'), f'{p}.torsional_stiffness',
                                      low=0.0),
         gear_outer_radius=outer)
+
+
+def _read_screw(r: _Reader, node: yaml.Node) -> ScrewSpec:
+    p = 'screw'
+    keys = ('hole', 'plate_top', 'standout', 'pitch', 'head_radius', 'capture_radius',
+            'tilt_tolerance_deg', 'engage_force', 'running_torque', 'seated_torque_rate',
+            'stiffness', 'damping')
+    m = r.mapping(node, p, keys)
+
+    def need(key: str) -> yaml.Node:
+        return _require(r, m, key, node, f'{p}.{key}')
+
+    def positive(key: str) -> float:
+        return r.number(need(key), f'{p}.{key}', low=0.0, low_open=True)
+
+    x, y = r.vector(need('hole'), f'{p}.hole', 2)
+    head = positive('head_radius')
+    capture_node = need('capture_radius')
+    capture = r.number(capture_node, f'{p}.capture_radius', low=0.0, low_open=True)
+    if capture > head:
+        raise r.fail(f'capture_radius {capture:g} must not exceed head_radius {head:g}',
+                     capture_node, f'{p}.capture_radius')
+    return ScrewSpec(
+        hole=(x, y), plate_top=r.number(need('plate_top'), f'{p}.plate_top'),
+        standout=positive('standout'), pitch=positive('pitch'), head_radius=head,
+        capture_radius=capture,
+        tilt_tolerance=math.radians(r.number(need('tilt_tolerance_deg'),
+                                             f'{p}.tilt_tolerance_deg', low=0.0,
+                                             low_open=True, high=90.0)),
+        engage_force=positive('engage_force'),
+        running_torque=r.number(need('running_torque'), f'{p}.running_torque', low=0.0),
+        seated_torque_rate=positive('seated_torque_rate'),
+        stiffness=positive('stiffness'),
+        damping=r.number(need('damping'), f'{p}.damping', low=0.0))
+
+
+def _read_panel(r: _Reader, node: yaml.Node) -> PanelSpec:
+    p = 'panel'
+    keys = ('crown', 'radius', 'y_range', 'half_angle_deg', 'stiffness', 'damping')
+    m = r.mapping(node, p, keys)
+
+    def need(key: str) -> yaml.Node:
+        return _require(r, m, key, node, f'{p}.{key}')
+
+    cx, cz = r.vector(need('crown'), f'{p}.crown', 2)
+    y_node = need('y_range')
+    y0, y1 = r.vector(y_node, f'{p}.y_range', 2)
+    if y1 <= y0:
+        raise r.fail(f'y_range {[y0, y1]} must run from low to high', y_node, f'{p}.y_range')
+    return PanelSpec(
+        crown=(cx, cz),
+        radius=r.number(need('radius'), f'{p}.radius', low=0.0, low_open=True),
+        y_range=(y0, y1),
+        half_angle=math.radians(r.number(need('half_angle_deg'), f'{p}.half_angle_deg',
+                                         low=0.0, low_open=True, high=90.0)),
+        stiffness=r.number(need('stiffness'), f'{p}.stiffness', low=0.0, low_open=True),
+        damping=r.number(need('damping'), f'{p}.damping', low=0.0))
 
 
 def _read_operator(r: _Reader, node: yaml.Node) -> OperatorSpec:

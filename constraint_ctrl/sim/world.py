@@ -1,5 +1,9 @@
 """The simulated cell: a kinematic robot driven by joint velocity commands, plus its sensors.
 
+The fixtures are those the scene names (each optional): the flange with the distance sensors,
+the splined shaft (gear contact), a screw in a threaded hole, a curved panel. The wrist
+force-torque reading is the sum of what each fixture exerts on the tool.
+
 The robot follows the commanded velocities exactly (no dynamics) after a fixed transport
 latency, clipped to the joint velocity limits and stopped at the position limits. Time advances
 in fixed steps of 1/rate; ``step(dt, ...)`` runs as many whole steps as ``dt`` covers and carries
@@ -20,7 +24,9 @@ from ..errors import ConstraintCtrlError
 from .flange import FlangeSurface
 from .gear_contact import GearContact, GearContactResult, GearPhase
 from .operator import Operator
+from .panel_contact import PanelContact, PanelResult
 from .scene import Scene
+from .screw_joint import ScrewJoint, ScrewResult
 
 if TYPE_CHECKING:
     from ..model.kinematics import RobotModel
@@ -84,20 +90,25 @@ class _Kinematics:
 
 
 class World:
-    """Robot, flange, shaft and operator of one scene; advanced by ``step``."""
+    """Robot, fixtures (flange, shaft, screw, panel) and operator of one scene; advanced by
+    ``step``. A fixture the scene does not name is None."""
 
     def __init__(self, scene: Scene, model: RobotModel) -> None:
         self.scene = scene
         self.model = model
         self.joint_names: tuple[str, ...] = tuple(model.joint_names)
         self.step_size = 1.0 / scene.rate
-        self.flange = FlangeSurface(scene.flange)
-        self.contact = GearContact(scene.shaft)
+        self.flange = FlangeSurface(scene.flange) if scene.flange is not None else None
+        self.contact = GearContact(scene.shaft) if scene.shaft is not None else None
+        self.screw = ScrewJoint(scene.screw) if scene.screw is not None else None
+        self.panel = PanelContact(scene.panel) if scene.panel is not None else None
         self.operator = Operator(scene.operator) if scene.operator is not None else None
         self._rng = np.random.default_rng(scene.seed)
+        self._range_frames: tuple[str, ...] = (
+            scene.range_sensors.frames if scene.range_sensors is not None else ())
         frames = {'robot.tool_frame': scene.tool_frame}
         frames.update({f'range_sensors.frames[{i}]': name
-                       for i, name in enumerate(scene.range_sensors.frames)})
+                       for i, name in enumerate(self._range_frames)})
         for field_path, name in frames.items():
             if name not in model.link_names:
                 msg = f'the robot has no link {name!r} (URDF {str(scene.urdf)!r})'
@@ -123,11 +134,16 @@ class World:
         # (time the command takes effect, command); the last applied command stays in force
         self._pending: deque[tuple[float, np.ndarray]] = deque()
         self._applied = np.zeros(model.n_joints)
-        self._contact: GearContactResult = self._evaluate_contact()
+        self._contact: GearContactResult | None = None
+        self._screw: ScrewResult | None = None
+        self._panel: PanelResult | None = None
+        self._evaluate_contact()
         self._sample_noise()
 
     def reset_joint_positions(self, q: Sequence[float] | np.ndarray) -> None:
-        """Place the robot at rest at ``q`` (model joint order) before a run; drops pending commands."""
+        """Place the robot at rest at ``q`` (model joint order) before a run; drops pending
+        commands. The screw and the panel start afresh (the screw standing out, its bit angle
+        tracked from ``q``, so the jump to ``q`` does not count as turning)."""
         q = np.asarray(q, dtype=float)
         if q.shape != (self.model.n_joints,) or not np.isfinite(q).all():
             msg = f'expected {self.model.n_joints} finite joint positions, got {q!r}'
@@ -136,7 +152,10 @@ class World:
         self._qdot = np.zeros(self.model.n_joints)
         self._pending.clear()
         self._applied = np.zeros(self.model.n_joints)
-        self._contact = self._evaluate_contact()
+        for fixture in (self.screw, self.panel):
+            if fixture is not None:
+                fixture.reset()
+        self._evaluate_contact()
 
     # -- time ---------------------------------------------------------------------------------
 
@@ -193,20 +212,26 @@ class World:
         self._q = q_held
         self._qdot = qdot
         self._steps += 1
-        self._contact = self._evaluate_contact()
+        self._evaluate_contact()
 
-    def _evaluate_contact(self) -> GearContactResult:
+    def _evaluate_contact(self) -> None:
+        """Update every fixture (and the operator's start trigger) for the current pose."""
         poses = self._kin.evaluate(self._q)
         tool = poses[0]
-        result = self.contact.update(self.time, tool[:3, 3], tool[:3, :3])
+        position, rotation = tool[:3, 3], tool[:3, :3]
+        if self.contact is not None:
+            self._contact = self.contact.update(self.time, position, rotation)
+        if self.screw is not None:
+            self._screw = self.screw.update(self.time, position, rotation)
+        if self.panel is not None:
+            self._panel = self.panel.update(self.time, position, rotation)
         if self.operator is not None:
-            self.operator.update(self.time, tool[:3, 3])
-        return result
+            self.operator.update(self.time, position)
 
     def _sample_noise(self) -> None:
         """Fixed draw order: joints, ranges, force, torque (zero sigma still draws)."""
         noise = self.scene.noise
-        n_range = len(self.scene.range_sensors.frames)
+        n_range = len(self._range_frames)
         self._joint_noise = noise.joint_position * self._rng.standard_normal(self.model.n_joints)
         self._range_noise = noise.range * self._rng.standard_normal(n_range)
         self._force_noise = noise.force * self._rng.standard_normal(3)
@@ -231,16 +256,19 @@ class World:
 
     def frame_poses(self) -> dict[str, np.ndarray]:
         """Exact 4x4 poses (base frame) of the tool frame and each range sensor frame."""
-        frames = [self.scene.tool_frame, *self.scene.range_sensors.frames]
+        frames = [self.scene.tool_frame, *self._range_frames]
         return {name: pose.copy() for name, pose in zip(frames, self._kin.evaluate(self._q))}
 
     def range_readings(self) -> list[RangeReading]:
         """Each sensor's distance along its frame's +x axis to the flange (noisy).
 
         Following the sensor_msgs/Range convention, a value outside [min_range, max_range]
-        (nothing hit, or too close) is reported as +inf, meaning "no detection".
+        (nothing hit, or too close) is reported as +inf, meaning "no detection". A scene
+        without distance sensors has none.
         """
         spec = self.scene.range_sensors
+        if spec is None or self.flange is None:
+            return []
         poses = self._kin.evaluate(self._q)[1:]
         origins = np.array([pose[:3, 3] for pose in poses])
         beams = np.array([pose[:3, 0] for pose in poses])
@@ -254,9 +282,16 @@ class World:
         return readings
 
     def wrench(self) -> tuple[np.ndarray, np.ndarray]:
-        """(force N, torque N m) the environment exerts on the tool, tool frame, with noise."""
-        return (self._contact.force + self._force_noise,
-                self._contact.torque + self._torque_noise)
+        """(force N, torque N m) the environment exerts on the tool, tool frame, with noise:
+        the sum over the scene's fixtures (zero, plus noise, when it has none)."""
+        parts = [r for r in (self._contact, self._screw, self._panel) if r is not None]
+        if not parts:
+            return self._force_noise.copy(), self._torque_noise.copy()
+        force, torque = parts[0].force, parts[0].torque
+        for part in parts[1:]:
+            force = force + part.force
+            torque = torque + part.torque
+        return force + self._force_noise, torque + self._torque_noise
 
     def people(self) -> list[tuple[str, np.ndarray]]:
         """(name, torso point in the base frame) of each person in the scene."""
@@ -266,5 +301,18 @@ class World:
 
     @property
     def gear_state(self) -> GearState:
+        """Progress of the gear onto the shaft (a scene without a shaft has none: SimError)."""
         c = self._contact
+        if c is None or self.contact is None:
+            raise SimError('the scene has no shaft, so no gear state')
         return GearState(c.seated, c.depth, self.contact.time_seated, c.phase, c.mismatch)
+
+    @property
+    def screw_state(self) -> ScrewResult | None:
+        """The screw's last evaluation (exact, no noise); None without a screw."""
+        return self._screw
+
+    @property
+    def panel_state(self) -> PanelResult | None:
+        """The panel contact's last evaluation (exact, no noise); None without a panel."""
+        return self._panel
