@@ -295,5 +295,6 @@ def lines_of(ax: Axes) -> Iterable[Any]:
 
 
 __all__ = ['COLOURS', 'LOG_FLOOR', 'WATCHDOG_LEVELS', 'above_floor', 'figure', 'label_steps',
-           'legend_outside', 'marker_styles', 'plot_replay', 'plot_simulation', 'replay_figures', 'save',
+           'legend_outside', 'marker_styles', 'plot_replay', 'plot_simulation',
+           'replay_figures', 'save',
            'shade_steps', 'simulation_figures', 'state_panel', 'styles', 'title_above_steps']

@@ -61,7 +61,8 @@ class PoseError(ConstraintCtrlError):
 
 @dataclass(frozen=True, slots=True)
 class ToolPose:
-    """Pose of a link in the base frame: position (m), rotation matrix, URDF roll-pitch-yaw (rad)."""
+    """Pose of a link in the base frame: position (m), rotation matrix, URDF roll-pitch-yaw
+    (rad)."""
 
     position: np.ndarray
     rotation: np.ndarray

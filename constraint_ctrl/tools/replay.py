@@ -28,10 +28,10 @@ Open loop: the joints do not respond to the replayed commands, so a changed gain
 command it would have sent from the recorded states, not how the arm would then have moved. The
 replay's own previous command feeds its acceleration limits (skill and watchdog), as on the
 robot; it starts from a zero previous command, where the node continued from the previous
-skill's last command (``summary.json`` gives that command's size). Tunables changed at run time (a sequencer's parameter calls) are not in the bag: give
-them with ``--set``. Node parameters come from the same parameters file the node read
-(``--params``) with ``--param`` overrides, so inputs are mapped and the watchdog is built exactly
-as in the node.
+skill's last command (``summary.json`` gives that command's size). Tunables changed at run time
+(a sequencer's parameter calls) are not in the bag: give them with ``--set``. Node parameters
+come from the same parameters file the node read (``--params``) with ``--param`` overrides, so
+inputs are mapped and the watchdog is built exactly as in the node.
 
 Times on the command line and in the outputs are seconds since the bag's first message.
 """
@@ -64,7 +64,8 @@ class ReplayError(ConstraintCtrlError):
 # ------------------------------------------------------------------------------------- options
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument('bag', type=Path, help='rosbag2 folder written by `constraint-ctrl run --record`')
+    p.add_argument('bag', type=Path,
+                   help='rosbag2 folder written by `constraint-ctrl run --record`')
     p.add_argument('--skill', type=Path, required=True, help='skill file to replay')
     p.add_argument('--from', dest='start', type=float, metavar='T',
                    help='start at T s after the bag began (default: when the skill was activated)')
@@ -75,13 +76,15 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument('--set', dest='tunables', action='append', default=[], metavar='NAME=VALUE',
                    help="a tunable of the skill, e.g. --set tip_on_line.gain=8 (repeatable)")
     p.add_argument('--params', type=Path,
-                   help="the node's parameters file (default: the package's config/controller.yaml)")
+                   help="the node's parameters file (default: the package's "
+                   'config/controller.yaml)')
     p.add_argument('--param', dest='node_params', action='append', default=[],
                    metavar='NAME=VALUE',
                    help='a node parameter over the file, like -p on the node: '
                    'e.g. --param watchdog.reduced_speed=0.015 (repeatable)')
     p.add_argument('--node', default=None,
-                   help='recorded node name, e.g. /constraint_controller (default: found in the bag)')
+                   help='recorded node name, e.g. /constraint_controller (default: found in '
+                   'the bag)')
     p.add_argument('--out', type=Path, default=Path('out/replay'), help='output folder')
 
 
@@ -564,7 +567,8 @@ def summarise(index: BagIndex, window: Window, trace: ReplayTrace, skill: str,
     moving = np.abs(trace.recorded).max(axis=1) > 0.0
     return {
         'bag': str(index.path), 'node': index.node, 'skill': skill,
-        'window': {'from_s': round(float(trace.time[0]), 6), 'to_s': round(float(trace.time[-1]), 6),
+        'window': {'from_s': round(float(trace.time[0]), 6),
+                   'to_s': round(float(trace.time[-1]), 6),
                    'recorded_activation_s': window.activated_at_s, 'note': window.note},
         'clock': 'seconds since the bag began',
         'tunables_set': dict(tunables), 'node_parameters_set': dict(params),
