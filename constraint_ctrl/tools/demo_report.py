@@ -43,12 +43,14 @@ class Status:
     min_separation: np.ndarray
     protective_distance: np.ndarray
     rows: list[dict[str, str]]
+    reason: list[str]
 
 
 def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]]]:
     from rosbags.highlevel import AnyReader
     from rosbags.typesys import Stores, get_typestore
     times, skills, states, scale, sep, prot, rows = [], [], [], [], [], [], []
+    reasons: list[str] = []
     events: list[tuple[float, str]] = []
     with AnyReader([bag], default_typestore=get_typestore(Stores.ROS2_JAZZY)) as reader:
         wanted = [c for c in reader.connections
@@ -63,12 +65,13 @@ def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]]]:
             times.append(t)
             skills.append(ctrl.get('skill', ''))
             states.append(wd.get('state', ''))
+            reasons.append(wd.get('reason', ''))
             scale.append(float(wd.get('speed_scale', 'nan')))
             sep.append(float(wd.get('min_separation', 'nan')))
             prot.append(float(wd.get('protective_distance', 'nan')))
             rows.append(row)
     return Status(np.array(times), skills, states, np.array(scale), np.array(sep),
-                  np.array(prot), rows), events
+                  np.array(prot), rows, reasons), events
 
 
 def _true_separation(truth: Any, sim_time: np.ndarray) -> dict[str, np.ndarray]:
@@ -111,6 +114,11 @@ def evaluate(out: Path) -> dict[str, Any]:
     seat_at = float(t[seated[0]]) if seated.size else None
     seat_sim = (float(truth['time'][seated[0]]) - _sim_time_at(0.0, t, truth['time'])
                 if seated.size else None)
+    # simulated time the watchdog held the arm before it was seated (stale data on a busy
+    # machine, a person): the seating criterion judges the skill, so that time is not counted
+    seat_held = (held_time(0.0, seat_at, status, t, truth['time'])
+                 if seat_at is not None and status is not None else 0.0)
+    seat_moving = seat_sim - seat_held if seat_sim is not None else None
 
     # following: true stand-off of the tool tip and the sensors' true ranges
     follow = step_times.get('follow_flange')
@@ -143,10 +151,12 @@ def evaluate(out: Path) -> dict[str, Any]:
     # a transition before the plan started (start-up) is shown at 0, the plan's first instant
     transitions = [(round(max(tt, 0.0), 3), name) for tt, name in events
                    if name.startswith('watchdog_')]
-    stopped = [tt for tt, name in transitions if name == 'watchdog_stopped']
+    # a stop for the operator: the watchdog's reason names the person, not stale data
+    operator_stop = [tt for tt in person_stops(status)
+                     if follow and follow[0] <= tt <= (follow[1] or 1e9)]
     resumed = [tt for tt, name in transitions
-               if name in ('watchdog_normal', 'watchdog_reduced') and stopped and tt > stopped[0]]
-    operator_stop = [tt for tt in stopped if follow and follow[0] <= tt <= (follow[1] or 1e9)]
+               if name in ('watchdog_normal', 'watchdog_reduced') and operator_stop
+               and tt > operator_stop[0]]
     separation = {
         'min_separation_m': float(np.nanmin(sep['separation'])),
         'standstill_protective_distance_m': float(sep['standstill'][0]),
@@ -156,8 +166,8 @@ def evaluate(out: Path) -> dict[str, Any]:
         'watchdog_min_separation_m': float(np.nanmin(status.min_separation)) if status else None,
     }
     criteria = {
-        'seated_within_20_s': {'passed': seat_sim is not None and seat_sim <= SEAT_LIMIT,
-                               'value': seat_sim, 'limit': SEAT_LIMIT},
+        'seated_within_20_s': {'passed': seat_moving is not None and seat_moving <= SEAT_LIMIT,
+                               'value': seat_moving, 'limit': SEAT_LIMIT},
         'standoff_rms_at_most_0_5_mm': {
             'passed': standoff.get('rms_error_mm') is not None
             and standoff['rms_error_mm'] <= STANDOFF_RMS_LIMIT * 1000,
@@ -175,7 +185,7 @@ def evaluate(out: Path) -> dict[str, Any]:
     }
     labels = {
         'seated_within_20_s': 'gear seated within 20 s of simulated time after the plan '
-                              'started (s)',
+                              'started, time the watchdog held the arm not counted (s)',
         'standoff_rms_at_most_0_5_mm': 'stand-off error RMS <= 0.5 mm while following (mm)',
         'every_sensor_in_range_while_following': 'every sensor in its range while following '
                                                  '(minimum per sensor, mm)',
@@ -191,7 +201,8 @@ def evaluate(out: Path) -> dict[str, Any]:
         'steps': steps['steps'],
         'clock': 'seconds since the plan started',
         'seated': {'seated': seat_sim is not None, 'time_s': seat_at,
-                   'simulated_time_s': seat_sim,
+                   'simulated_time_s': seat_sim, 'held_s': seat_held,
+                   'simulated_moving_time_s': seat_moving,
                    'event_time_s': next((tt for tt, n in events if n == 'seated'), None)},
         'following': standoff,
         'separation': separation,
@@ -258,6 +269,35 @@ def settling_end(start: float, end: float, status_time: np.ndarray, states: list
             return float(a + (SETTLE - total))
         total += b - a
     return float(end)
+
+
+def held_time(start: float, end: float, status: Status, wall: np.ndarray,
+              sim: np.ndarray) -> float:
+    """Simulated time in [start, end] (plan clock) that the watchdog held the arm (state
+    stopped or stopping on ~/status; each status sample's state holds until the next one)."""
+    held = 0.0
+    for i, state in enumerate(status.state):
+        if state not in ('stopped', 'stopping'):
+            continue
+        a = max(start, float(status.time[i]))
+        b = min(end, float(status.time[i + 1]) if i + 1 < len(status.time) else end)
+        if b > a:
+            held += _sim_time_at(b, wall, sim) - _sim_time_at(a, wall, sim)
+    return held
+
+
+def person_stops(status: Status | None) -> list[float]:
+    """Plan-clock times at which the watchdog entered stopped because a person was too close
+    (its reason on ~/status names the person; stale data or a failed solve do not count)."""
+    if status is None:
+        return []
+    out = []
+    for i, state in enumerate(status.state):
+        entered = state == 'stopped' and (i == 0 or status.state[i - 1] != 'stopped'
+                                          or 'person too close' not in status.reason[i - 1])
+        if entered and 'person too close' in status.reason[i]:
+            out.append(round(float(status.time[i]), 3))
+    return out
 
 
 def _sim_time_at(wall_s: float, wall: np.ndarray, sim: np.ndarray) -> float:

@@ -143,7 +143,8 @@ def _demo_inputs():
         states.append('stopped' if 6.0 <= tt < 7.0 else 'reduced' if 5.0 <= tt < 6.0
                       else 'normal')
     status = Status(ts, skills, states, np.where(np.array(states) == 'normal', 1.0, 0.5),
-                    np.full(len(ts), 1.5), np.full(len(ts), 0.49), rows)
+                    np.full(len(ts), 1.5), np.full(len(ts), 0.49), rows,
+                    ['person too close' if s == 'stopped' else '' for s in states])
     sep = {'separation': 2.0 - 0.1 * t, 'margin': np.full(n, 1.0),
            'required': np.full(n, 0.5), 'speed': np.abs(np.sin(t)) * 0.2,
            'standstill': np.full(n, 0.488)}
