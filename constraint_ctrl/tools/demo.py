@@ -5,8 +5,11 @@ separate processes talking over ROS 2 topics and services (direct Cyclone DDS on
 default), shows the sequencer's progress, stops everything when the plan ends, then evaluates
 the run (tools/demo_report.py) into OUT: summary.json, summary.md and PNG plots.
 
-Every process runs on its own ROS_DOMAIN_ID chosen at random, so two demos (or a demo and a
-test) on one machine do not hear each other.
+All three processes run on one ROS_DOMAIN_ID chosen at random, so two demos (or a demo and a
+test) on one machine do not hear each other. From Python, `run_demo(..., placement=...)` can
+start each process under a command prefix with environment entries of its own (the
+three-namespace test runs them as three hosts with `ip netns exec NAME` and a CYCLONEDDS_URI
+each, see README "Running on more than one machine").
 """
 from __future__ import annotations
 
@@ -18,6 +21,8 @@ import signal
 import subprocess
 import sys
 import time
+from collections.abc import Mapping
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import ConstraintCtrlError
@@ -32,9 +37,27 @@ PLAN_BUDGET = 150.0
 DEMO_REDUCED_SPEED = 0.015
 
 
-def _spawn(args: list[str], log: Path, env: dict[str, str]) -> subprocess.Popen:
+#: The demo's processes, as keys of `run_demo`'s placement.
+PROCESSES = ('sim', 'controller', 'sequencer')
+
+
+@dataclass(frozen=True)
+class Placement:
+    """Where one demo process runs: a command prefix (e.g. ``('ip', 'netns', 'exec', 'cell_a')``)
+    and environment entries that override the demo's own (e.g. CYCLONEDDS_URI)."""
+
+    prefix: tuple[str, ...] = ()
+    env: Mapping[str, str] = field(default_factory=dict)
+
+
+def _command(args: list[str], placement: Placement) -> list[str]:
+    return [*placement.prefix, sys.executable, '-m', 'constraint_ctrl.cli', *args]
+
+
+def _spawn(args: list[str], log: Path, env: dict[str, str],
+           placement: Placement) -> subprocess.Popen:
     handle = log.open('w')
-    return subprocess.Popen([sys.executable, '-m', 'constraint_ctrl.cli', *args], env=env,
+    return subprocess.Popen(_command(args, placement), env={**env, **placement.env},
                             stdout=handle, stderr=subprocess.STDOUT, text=True)
 
 
@@ -51,7 +74,16 @@ def _stop(proc: subprocess.Popen, name: str) -> None:
 
 
 def run_demo(out: Path, transport: str = 'dds', plan: Path | None = None,
-             controller_params: Path | None = None) -> dict[str, object]:
+             controller_params: Path | None = None, *,
+             placement: Mapping[str, Placement] | None = None) -> dict[str, object]:
+    """Run the three processes, then evaluate; `placement` maps names in PROCESSES to where
+    each runs (default: here, with the demo's environment)."""
+    places = dict(placement or {})
+    unknown = sorted(set(places) - set(PROCESSES))
+    if unknown:
+        msg = f'placement for unknown demo processes {unknown}; known: {", ".join(PROCESSES)}'
+        raise ConstraintCtrlError(msg)
+    where = {name: places.get(name, Placement()) for name in PROCESSES}
     cfg = config_dir()
     plan = plan or cfg / 'plans' / 'gearbox_assembly.yaml'
     controller_params = controller_params or cfg / 'controller.yaml'
@@ -66,12 +98,12 @@ def run_demo(out: Path, transport: str = 'dds', plan: Path | None = None,
     print(f'demo: starting the simulated cell, the controller and the sequencer '
           f'(transport {transport}, ROS_DOMAIN_ID {env["ROS_DOMAIN_ID"]})', flush=True)
     sim = _spawn(['sim', '--transport', transport, '--log', str(out / 'sim_truth.npz')],
-                 logs / 'sim.log', env)
+                 logs / 'sim.log', env, where['sim'])
     ctrl = _spawn(['run', '--transport', transport, '--record', str(out / 'bag'),
                    '--ros-args', '--params-file', str(controller_params),
                    '-p', 'status_rate_hz:=50.0',
                    '-p', f'watchdog.reduced_speed:={DEMO_REDUCED_SPEED}'],
-                  logs / 'controller.log', env)
+                  logs / 'controller.log', env, where['controller'])
     started = time.monotonic()
     try:
         time.sleep(2.0)
@@ -80,8 +112,9 @@ def run_demo(out: Path, transport: str = 'dds', plan: Path | None = None,
                 msg = f'the {name} exited at start; see {logs}/'
                 raise ConstraintCtrlError(msg)
         seq = subprocess.Popen(
-            [sys.executable, '-m', 'constraint_ctrl.cli', 'sequence', str(plan), '--transport',
-             transport, '--report', str(out / 'steps.json')], env=env, stdout=subprocess.PIPE,
+            _command(['sequence', str(plan), '--transport', transport, '--report',
+                      str(out / 'steps.json')], where['sequencer']),
+            env={**env, **where['sequencer'].env}, stdout=subprocess.PIPE,
             stderr=subprocess.STDOUT, text=True)
         assert seq.stdout is not None
         with (logs / 'sequencer.log').open('w') as seq_log:
@@ -119,4 +152,4 @@ def run(argv: list[str]) -> int:
     return 0 if all(c['passed'] for c in checks.values()) else 1
 
 
-__all__ = ['run', 'run_demo']
+__all__ = ['PROCESSES', 'Placement', 'run', 'run_demo']
