@@ -38,6 +38,9 @@ PREFIX = 'ccmh'                       # our namespaces: ccmh<pid>x<tag>-<host>
 #: host name -> (demo process, address on the cell network)
 HOSTS = {'sim': ('sim', '198.18.0.1'), 'ctl': ('controller', '198.18.0.2'),
          'seq': ('sequencer', '198.18.0.3')}
+#: Wall-clock budget of the plan (s): the demo's 150 s was exceeded once on this 2-core machine
+#: under a load average of 10 (the plan itself took 45 to 95 s on lighter load).
+PLAN_BUDGET = 600.0
 CAP_NET_ADMIN, CAP_SYS_ADMIN = 12, 21  # capability bit numbers (linux/capability.h)
 
 
@@ -179,7 +182,7 @@ def test_demo_plan_completes_across_three_namespaces(cell: Cell, tmp_path: Path,
     out = tmp_path / 'demo'
     error = ''
     try:
-        run_demo(out, placement=placement)
+        run_demo(out, placement=placement, plan_budget=PLAN_BUDGET)
     except Exception as exc:        # the evaluation's problem; the plan outcome is checked below
         error = f'{type(exc).__name__}: {exc}'
     logs = '\n'.join(f'--- {p.name}\n{p.read_text()[-3000:]}'
