@@ -99,6 +99,29 @@ def _cell(text: str) -> tuple[int, int]:
     return joints, rows
 
 
+def _count(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        value = -1
+    if value < 0:
+        raise argparse.ArgumentTypeError(f'expected a whole number >= 0, got {text!r}')
+    return value
+
+
+def _priority(text: str) -> int:
+    from .runtime.realtime import check_priority
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f'expected an integer from 1 to 99, got {text!r}') \
+            from None
+    problem = check_priority(value)
+    if problem:
+        raise argparse.ArgumentTypeError(problem)
+    return value
+
+
 def _bench_sections(args: argparse.Namespace) -> dict:
     sections = {}
     try:
@@ -113,8 +136,12 @@ def _bench_sections(args: argparse.Namespace) -> dict:
         pass
     try:
         from .tools.bench_node import bench_end_to_end
+        seconds = args.e2e_seconds if args.e2e_seconds is not None else (4.0 if args.quick
+                                                                         else 30.0)
         sections['end_to_end'] = lambda: bench_end_to_end(
-            duration=args.e2e_seconds, rate_hz=args.e2e_rate)
+            duration=seconds, rate_hz=args.e2e_rate, load=args.load,
+            transport=args.transport, realtime_priority=args.realtime,
+            block_s=1.0 if args.quick else 2.0, activations=4 if args.quick else 20)
     except ImportError:  # pragma: no cover
         pass
     return sections
@@ -183,8 +210,21 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument('--quick', action='store_true', help='fewer samples (for a smoke run)')
     p.add_argument('--no-scaling', action='store_true', help='skip the scaling table')
     p.add_argument('--core-only', action='store_true', help='engine sections only')
-    p.add_argument('--e2e-seconds', type=float, default=60.0)
-    p.add_argument('--e2e-rate', type=float, default=1000.0)
+    p.add_argument('--e2e-seconds', type=float, default=None,
+                   help='end to end: recorded seconds per measured process and part '
+                        '(default 30, 4 with --quick)')
+    p.add_argument('--e2e-rate', type=float, default=1000.0, help='end to end: joint_states '
+                   'rate, Hz (default 1000)')
+    p.add_argument('--load', type=_count, default=2, metavar='N',
+                   help='end to end: after the quiet part, measure again with N busy-loop '
+                        'processes alongside, with and without --realtime (default 2; 0 skips)')
+    p.add_argument('--realtime', type=_priority, default=80, metavar='PRIORITY',
+                   help="end to end, loaded part: the node's --realtime priority (default 80)")
+    p.add_argument('--transport', choices=('dds', 'rclpy', 'both'), default='dds',
+                   help="end to end: the measured node's transport (the echo floor uses the "
+                        'same; the peer is always DDS); both: a controller and an echo on each, '
+                        'interleaved in one run (the loaded part on DDS). rclpy needs a '
+                        'sourced ROS 2 install')
     p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
                    help='QP solver of the example ticks (the scaling table runs both)')
     p.add_argument('--cells', nargs='+', metavar='JxR', type=_cell,

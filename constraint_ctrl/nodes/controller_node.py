@@ -34,6 +34,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import sys
 import threading
 import time
 import traceback
@@ -46,16 +47,19 @@ from ..errors import ConstraintCtrlError, TransportError
 from ..model.kinematics import RobotModel
 from ..runtime.library import SkillLibrary
 from ..runtime.loop import ControlLoop, InputSample, LoopOutput, Snapshot
+from ..runtime.realtime import RealtimeControl, check_priority, threads_named
 from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
 from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
+from ..transport.port import RECEIVE_THREADS
 from .common import config_dir, serve, split_ros_args, transport_options
 from ..problem_log import ProblemLog
 from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     joint_sample_problem, parse_input_mappings
-from .status import build_status
+from .status import StatusWorker, build_status
 
 NODE_NAME = 'constraint_controller'
+SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
 #: Parameters fixed at start-up (changing them needs a restart).
 STARTUP_PARAMETERS = ('robot_description_file', 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
@@ -69,8 +73,13 @@ NODE_PARAMETER_GROUPS = tuple(sorted(
 
 
 class ControllerNode:
-    def __init__(self, port: Any, record: Path | None = None) -> None:
+    def __init__(self, port: Any, record: Path | None = None,
+                 realtime: RealtimeControl | None = None) -> None:
         self.port = port
+        self.realtime = realtime
+        if realtime is not None:   # memory and the transport's receive threads now; the
+            # threads that tick switch themselves when they first run
+            port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
         self._lock = threading.Lock()
         self._tick_lock = threading.Lock()
         cfg = config_dir()
@@ -157,6 +166,8 @@ class ControllerNode:
         self._closing = False
         # arrival of a joint_states sample -> its command published (tick_on joint_states)
         self._arrived_ns = 0
+        self._answered_arrival = 0   # arrival of the sample the current tick answers
+        self._command_msgs: tuple[Any, Any] | None = None   # built on first use, then reused
         self._latency_ns = np.zeros(1 << 20, dtype=np.int64)
         self._latency_count = 0
         self._ticks = 0
@@ -186,7 +197,13 @@ class ControllerNode:
             self._add_skill(name)
         port.set_parameter_validator(self._validate_parameters)
         port.add_parameter_listener(self._apply_parameters)
-        self.timer = port.create_timer(self.dt, self._on_timer)
+        # with --realtime the status thread runs one step below the tick: a normal-priority
+        # thread that holds the interpreter lock when the machine preempts it would hold up
+        # the tick behind it
+        self._status = StatusWorker(
+            self._publish_status, port.log, name=f'{NODE_NAME}-status',
+            on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
+        self.timer = port.create_timer(self.dt, self._on_timer, control=True)
         self._open_recorder()
         port.log('info', f'{NODE_NAME} ready: {len(self.library.names())} skills, '
                  f'{self.rate:g} Hz, tick on {self.tick_on}, transport '
@@ -204,8 +221,8 @@ class ControllerNode:
         return pub
 
     def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
-        if self._record_to is None:
-            self.port.create_subscription(msg_type, topic, callback, 'sensor')
+        if self._record_to is None:   # everything the tick reads: the control path
+            self.port.create_subscription(msg_type, topic, callback, 'latest', control=True)
             return
         records_to: list[str] = []      # the bag topic, unless another subscription has it
 
@@ -213,7 +230,7 @@ class ControllerNode:
             if records_to:
                 self._record(records_to[0], msg)
             callback(msg)
-        sub = self.port.create_subscription(msg_type, topic, recorded, 'sensor')
+        sub = self.port.create_subscription(msg_type, topic, recorded, 'latest', control=True)
         name = str(sub.topic_name)
         if name not in self._bag_topics:
             self._bag_topics[name] = (self.port.type_name(msg_type), 'sensor')
@@ -265,6 +282,8 @@ class ControllerNode:
         carry none of the model's joints (a gripper's) refresh nothing.
         """
         arrived = time.perf_counter_ns()
+        if self.realtime is not None:
+            self._enter_realtime()
         names = msg.name
         positions = msg.position
         key = tuple(names) if len(names) <= MAX_JOINT_NAMES else None
@@ -291,10 +310,15 @@ class ControllerNode:
                     seen[i] = True
                 self._js_stamp = stamp
                 self._js_header = (msg.header.stamp.sec, msg.header.stamp.nanosec)
+                self._arrived_ns = arrived
         self._js_problems.ok('joint_states', 'valid samples again')
         if plan and self.tick_on == 'joint_states':
-            self._arrived_ns = arrived
-            self._tick()
+            # waits for a fallback tick that runs on the timer's thread (DDS port), so this
+            # sample is still answered, right after it
+            self._tick(wait=True)
+            # the fallback timer stands in only when samples stop: on rclpy each timer call
+            # costs an executor wake-up, so it restarts its period after every sample's tick
+            self.timer.reset()
 
     def _reject_joint_states(self, problem: tuple[str, str], names: Any) -> None:
         kind, detail = problem
@@ -320,8 +344,8 @@ class ControllerNode:
             except (TypeError, ValueError):
                 value = float('nan')
             stamp = self._stamp(msg.header) if mapping.has_header else time.monotonic()
-            with self._lock:
-                self._inputs[mapping.name] = InputSample(value, stamp)
+            with self._lock:   # a new dict: a tick's snapshot keeps the one it took
+                self._inputs = {**self._inputs, mapping.name: InputSample(value, stamp)}
         return callback
 
     def _person_callback(self, source: str) -> Any:
@@ -339,8 +363,9 @@ class ControllerNode:
                 return
             problems.ok(source, f'person positions in {self.base_frame!r} again')
             point = np.array([msg.point.x, msg.point.y, msg.point.z], dtype=float)
-            with self._lock:
-                self._people[source] = PersonSample(source, point, self._stamp(msg.header))
+            sample = PersonSample(source, point, self._stamp(msg.header))
+            with self._lock:   # a new dict: a tick's snapshot keeps the one it took
+                self._people = {**self._people, source: sample}
         return callback
 
     # ----------------------------------------------------------------- tick
@@ -353,21 +378,37 @@ class ControllerNode:
     def _snapshot(self) -> Snapshot:
         with self._lock:
             # the command of this tick answers the latest sample in this snapshot, not one that
-            # arrives while the tick runs
+            # arrives while the tick runs (its arrival: for the node's latency statistics)
             self._answered = self._js_header
+            self._answered_arrival, self._arrived_ns = self._arrived_ns, 0
             seen = all(self._seen)
             q = np.array(self._q) if seen else None
             missing = [] if seen else [j for j, s in zip(self.model.joint_names, self._seen)
                                        if not s]
+            # inputs and people: the callbacks replace these dicts, never change them in
+            # place, so the snapshot takes them as they are
             return Snapshot(now=time.monotonic(), q=q, joint_state_stamp=self._js_stamp,
-                            inputs=dict(self._inputs), people=dict(self._people),
+                            inputs=self._inputs, people=self._people,
                             missing_joints=missing if self._js_stamp is not None else [],
                             joint_stamps=np.array(self._joint_stamps))
 
-    def _tick(self) -> None:
-        if self._closing or not self._tick_lock.acquire(blocking=False):
+    def _enter_realtime(self, below: int = 0) -> None:
+        """SCHED_FIFO for the thread that calls (once per thread, then one set lookup)."""
+        line = self.realtime.enter(below)
+        if line:
+            self.port.log('warn' if self.realtime.refused and not self.realtime.granted
+                          else 'info', f'realtime: {line}')
+
+    def _tick(self, wait: bool = False) -> None:
+        """One tick. ``wait``: for the tick lock (a sample's tick); without, a tick already
+        running (the timer's fallback tick) makes this one unnecessary."""
+        if self.realtime is not None:
+            self._enter_realtime()
+        if self._closing or not self._tick_lock.acquire(blocking=wait):
             return
         try:
+            if self._closing:            # close() held the lock meanwhile
+                return
             snap = self._snapshot()
             self._last_tick = snap.now
             if self._initial and snap.q is not None:
@@ -375,11 +416,10 @@ class ControllerNode:
                 self._initial = ''
             out = self.loop.step(snap)
             self._send(out)
-            if self._arrived_ns:
+            if self._answered_arrival:
                 self._latency_ns[self._latency_count % self._latency_ns.size] = \
-                    time.perf_counter_ns() - self._arrived_ns
+                    time.perf_counter_ns() - self._answered_arrival
                 self._latency_count += 1
-                self._arrived_ns = 0
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
@@ -394,18 +434,27 @@ class ControllerNode:
             self._tick_lock.release()
 
     def _command_messages(self, command_model: np.ndarray) -> tuple[Any, Any]:
-        t = self.port.types
+        """The two command messages, built once and refilled: only the velocities and the
+        stamp change from tick to tick. Called with the tick lock held (ticks and close), and
+        both ports serialise a message inside publish(), so reuse is safe."""
+        msgs = self._command_msgs
+        if msgs is None:
+            t = self.port.types
+            n = len(self.joint_names)
+            msgs = self._command_msgs = (
+                t.Float64MultiArray(layout=t.MultiArrayLayout(
+                    dim=[t.MultiArrayDimension(label='joint_velocity', size=n, stride=n)],
+                    data_offset=0), data=[0.0] * n),
+                t.JointState(header=t.Header(stamp=t.Time(sec=0, nanosec=0), frame_id=''),
+                             name=list(self.joint_names), position=[], velocity=[0.0] * n,
+                             effort=[]))
+        array, joint = msgs
         data = command_model[self._to_command].tolist()
-        n = len(data)
-        array = t.Float64MultiArray(
-            layout=t.MultiArrayLayout(dim=[t.MultiArrayDimension(label='joint_velocity',
-                                                                 size=n, stride=n)],
-                                      data_offset=0),
-            data=data)
+        array.data = data
+        joint.velocity = data
+        stamp = joint.header.stamp
         sec, nanosec = self._answered
-        joint = t.JointState(header=t.Header(stamp=t.Time(sec=int(sec), nanosec=int(nanosec)),
-                                             frame_id=''),
-                             name=list(self.joint_names), position=[], velocity=data, effort=[])
+        stamp.sec, stamp.nanosec = int(sec), int(nanosec)
         return array, joint
 
     def _send(self, out: LoopOutput) -> None:
@@ -429,9 +478,18 @@ class ControllerNode:
         self._publish(self._pub_joint_command, '~/joint_command', joint)
 
     def _send_status(self, out: LoopOutput) -> None:
+        """On the tick: take the rows of this solve; the worker builds and publishes."""
+        self._status.post(*self._status_job(out))
+
+    def _status_job(self, out: LoopOutput) -> tuple[LoopOutput, Any, list[str]]:
+        """What only the tick can read consistently: its output and the rows of its solve."""
         runner = self.loop.active
         rows = runner.diagnostics() if runner is not None and out.tick is not None else None
         names = [r.name for r in runner.skill.rows] if runner is not None else []
+        return out, rows, names
+
+    def _publish_status(self, out: LoopOutput, rows: Any, names: list[str]) -> None:
+        """On the status thread (StatusWorker)."""
         recorder = self.recorder
         faults = self.port.faults().values()
         extra = {'missed_ticks': str(getattr(self.timer, 'missed', 0)),
@@ -730,6 +788,7 @@ class ControllerNode:
             'latency_us': None if not n else {
                 'samples': int(n), 'p50': pct(lat, 50), 'p90': pct(lat, 90),
                 'p99': pct(lat, 99), 'max': round(float(lat.max()), 2)},
+            'realtime': None if self.realtime is None else self.realtime.as_dict(),
             'switch_delay_ticks': None if not delays.size else {
                 'count': int(delays.size), 'p50': round(float(np.median(delays)), 3),
                 'max': round(float(delays.max()), 3)},
@@ -739,6 +798,7 @@ class ControllerNode:
     def close(self) -> None:
         """After spin() returned (callbacks no longer run on either transport): zero, close."""
         self._closing = True
+        self._status.close()
         with self._tick_lock:
             for _ in range(3):
                 self._send_zero()
@@ -758,15 +818,28 @@ def build_arg_parser() -> argparse.ArgumentParser:
     transport_options(parser)
     parser.add_argument('--record', type=Path, help='write a rosbag2 (MCAP) to this new folder')
     parser.add_argument('--stats', type=Path, help='write timing statistics (JSON) at exit')
+    parser.add_argument('--realtime', type=int, metavar='PRIORITY',
+                        help='run the control path (the threads that receive joint_states and '
+                             'tick, and the transport receive threads) SCHED_FIFO at this '
+                             'priority (1-99) and lock memory (mlockall), where permitted; '
+                             'otherwise normal scheduling, said in the log')
     return parser
 
 
 def run(argv: list[str]) -> int:
     ours, ros = split_ros_args(argv)
-    args = build_arg_parser().parse_args(ours)
+    parser = build_arg_parser()
+    args = parser.parse_args(ours)
+    # Threads of this process hand the interpreter lock over after at most 0.5 ms instead of
+    # Python's 5 ms, so a sample that arrives while another thread (status, services) runs
+    # Python code waits at most that long for its tick.
+    sys.setswitchinterval(SWITCH_INTERVAL_S)
+    if args.realtime is not None and check_priority(args.realtime):
+        parser.error(check_priority(args.realtime))
+    realtime = RealtimeControl(args.realtime) if args.realtime is not None else None
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)
-    node = serve(port, lambda: ControllerNode(port, record=args.record))
+    node = serve(port, lambda: ControllerNode(port, record=args.record, realtime=realtime))
     if node is not None and args.stats:
         args.stats.write_text(json.dumps(node.stats(), indent=2) + '\n')
     return 0

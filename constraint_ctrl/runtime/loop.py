@@ -28,6 +28,8 @@ from ..safety.watchdog import PersonSample, Watchdog, WatchdogInput, WatchdogOut
 from .library import SkillLibrary
 from .runner import SkillRunner, TickResult
 
+_NO_INPUTS = np.empty(0)   # the input vector of a skill without inputs (never written)
+
 
 @dataclass(frozen=True, slots=True)
 class InputSample:
@@ -197,23 +199,27 @@ class ControlLoop:
         events: list[str] = []
         tick: TickResult | None = None
         runner = self.active
-        command: np.ndarray | None = np.zeros_like(self._last_command)
+        command: np.ndarray | None = None
         solver_ok, status = True, 'idle'
         input_stamps: dict[str, float] = {}
         input_timeouts: dict[str, float] = {}
         finite = True
-        if runner is not None:
+        if runner is None:
+            command = np.zeros_like(self._last_command)
+        else:
             spec = runner.skill.spec
-            u = np.empty(len(spec.inputs))
-            for i, inp in enumerate(spec.inputs):
-                sample = snap.inputs.get(inp.name)
-                input_timeouts[inp.name] = inp.timeout
-                if sample is None:
-                    u[i] = np.nan
-                else:
-                    u[i] = sample.value
-                    input_stamps[inp.name] = sample.stamp
-            finite = bool(np.isfinite(u).all())
+            u = _NO_INPUTS                  # read only: the solver copies it into its buffer
+            if spec.inputs:
+                u = np.empty(len(spec.inputs))
+                for i, inp in enumerate(spec.inputs):
+                    sample = snap.inputs.get(inp.name)
+                    input_timeouts[inp.name] = inp.timeout
+                    if sample is None:
+                        u[i] = np.nan
+                    else:
+                        u[i] = sample.value
+                        input_stamps[inp.name] = sample.stamp
+                finite = bool(np.isfinite(u).all())
             if snap.q is not None and finite:
                 tick = runner.tick(snap.q, u, self.dt)
                 command = tick.joint_velocity if tick.ok else None

@@ -1,178 +1,284 @@
-"""End-to-end latency of the controller node over DDS on loopback (part of `constraint-ctrl bench`).
+"""End-to-end latency of the controller node on loopback (part of `constraint-ctrl bench`).
 
-The controller runs as its own process with tick_on = joint_states (one tick per sample, the
-timer as a fallback) and a peer in this process publishes joint_states at the given rate.
+Processes: the controller (`constraint-ctrl run`, tick_on = joint_states: one tick per sample,
+the timer as a fallback), the echo floor (tools/bench_echo.py: the same transport, QoS and
+messages, no control work) and an outside peer (tools/bench_peer.py, always DDS) that publishes
+joint_states at the rate and receives the answers. The peer feeds one process at a time in
+short alternating blocks and pauses the others (see bench_peer.py), so the node and its floor
+are measured under the same drifts of the machine's load.
 
-- latency_us: what the node measures on its monotonic clock from a joint_states sample arriving
-  (its subscription callback) to the matching command being published (both ~/command and
-  ~/joint_command written), written with `--stats` at exit;
-- round_trip_us: the same path seen from the peer: sample stamped at sending -> ~/joint_command
-  (which carries that stamp) received; adds two DDS hops and the peer's own Python threads;
-- missed_ticks: samples the peer sent that never got their command;
-- activation: Trigger request received by the node -> the tick that publishes the new skill's
-  first command, in ticks (node clock); and the Trigger round trip seen by the peer.
+Quiet part: controller and echo. Reported as before (`round_trip_us`, `missed_*`,
+`latency_us` from the node's own clock, `activation`) plus `echo_floor_us`, `ratio_p99` and
+`ratio_p50` (controller round trip / echo round trip) and `worst_gap_ms`.
+
+Loaded part (`load` > 0): `load` busy-loop processes run alongside while a controller with
+normal scheduling (`plain`), one started with `--realtime PRIORITY` (`realtime`) and the echo
+(`echo_floor`) are measured the same way.
+
+In both parts the peer runs SCHED_FIFO above the node's priority (where permitted, else normal
+and said in `peer.scheduling`): it stands for the robot's driver, which is the real-time side
+on a robot PC, so its own stalls do not count against the node or the floor.
+
+The nodes run with watchdog.joint_state_timeout = 30 s: a node paused between its blocks would
+otherwise stop on stale joint states at every resume and hold for `resume_after`; the check
+itself still runs on every tick.
 """
 from __future__ import annotations
 
+import json
 import os
 import random
+import shutil
 import signal
 import subprocess
 import sys
-import threading
+import tempfile
 import time
+from pathlib import Path
 from typing import Any
 
-import numpy as np
+import yaml
 
 from ..nodes.common import config_dir
 
-START = [0.0, 0.3156, 0.6775, 0.0, 0.5777, 0.0]
-JOINTS = [f'joint_{i}' for i in range(1, 7)]
+JOINT_STATE_TIMEOUT_S = 30.0
+PEER_PRIORITY_ABOVE_NODE = 10
 
 
-def bench_end_to_end(duration: float = 60.0, rate_hz: float = 1000.0,
-                     activations: int = 20) -> dict[str, Any]:
-    import json
-    import shutil
-    import tempfile
-    from pathlib import Path
+def _params_file(workdir: Path) -> Path:
+    """config/controller.yaml for any node name and namespace (key '/**'), so the node can run
+    in its own namespace."""
+    data = yaml.safe_load((config_dir() / 'controller.yaml').read_text())
+    params = next(iter(data.values()))['ros__parameters']
+    path = workdir / 'controller_bench.yaml'
+    path.write_text(yaml.safe_dump({'/**': {'ros__parameters': params}}))
+    return path
 
-    from ..transport.port import open_port
-    stats_file = Path(tempfile.mkdtemp(prefix='ctrl_stats_')) / 'stats.json'
+
+def _node_command(transport: str, namespace: str, rate_hz: float, params: Path,
+                  stats: Path, realtime: int | None) -> list[str]:
+    cmd = [sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport', transport,
+           '--stats', str(stats)]
+    if realtime is not None:
+        cmd += ['--realtime', str(realtime)]
+    return cmd + ['--ros-args', '--params-file', str(params), '-r', f'__ns:=/{namespace}',
+                  '-p', f'rate_hz:={float(rate_hz)}', '-p', 'tick_on:=joint_states',
+                  '-p', "people.sources:=['']", '-p', 'initial_skill:=keep_tool_vertical',
+                  '-p', 'status_rate_hz:=2.0',
+                  '-p', f'watchdog.joint_state_timeout:={JOINT_STATE_TIMEOUT_S}']
+
+
+def _echo_command(transport: str, namespace: str) -> list[str]:
+    return [sys.executable, '-m', 'constraint_ctrl.tools.bench_echo', '--transport', transport,
+            '--ros-args', '-r', f'__ns:=/{namespace}']
+
+
+def _stop(proc: subprocess.Popen) -> None:
+    if proc.poll() is not None:
+        return
+    os.kill(proc.pid, signal.SIGCONT)
+    proc.send_signal(signal.SIGINT)
+    try:
+        proc.wait(15)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait(5)
+
+
+def _busy_loops(count: int) -> list[subprocess.Popen]:
+    """`count` processes that each keep one CPU busy (normal priority)."""
+    return [subprocess.Popen([sys.executable, '-c', 'while True: pass'],
+                             stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            for _ in range(count)]
+
+
+#: A measured process: name, 'node' | 'echo', --realtime priority (None: normal), transport.
+Target = tuple[str, str, int | None, str]
+
+
+def _measure(workdir: Path, rate_hz: float, seconds: float, block_s: float,
+             targets: list[Target], peer_realtime: int | None,
+             activation: tuple[str, int] | None) -> dict[str, Any]:
+    """Start the targets, run the peer over them, stop them; the peer's results plus each
+    node's own statistics."""
     env = dict(os.environ, ROS_DOMAIN_ID=str(random.randint(101, 200)), PYTHONUNBUFFERED='1')
-    cfg = config_dir()
-    proc = subprocess.Popen(
-        [sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport', 'dds',
-         '--stats', str(stats_file), '--ros-args',
-         '--params-file', str(cfg / 'controller.yaml'), '-p', f'rate_hz:={float(rate_hz)}',
-         '-p', 'tick_on:=joint_states', '-p', "people.sources:=['']",
-         '-p', 'initial_skill:=keep_tool_vertical', '-p', 'status_rate_hz:=2.0'],
-        env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
-    saved = os.environ.get('ROS_DOMAIN_ID')
-    os.environ['ROS_DOMAIN_ID'] = env['ROS_DOMAIN_ID']
-    port = open_port('dds', 'latency_probe', ['--ros-args'])
-    if saved is None:
-        os.environ.pop('ROS_DOMAIN_ID', None)
-    else:
-        os.environ['ROS_DOMAIN_ID'] = saved
-    t = port.types
-    lock = threading.Lock()
-    sent: list[int] = []
-    latency: dict[int, int] = {}
-    events: list[tuple[int, str]] = []
-    recording = threading.Event()
-
-    def on_command(msg: Any) -> None:
-        now = port.now_ns()
-        stamp = msg.header.stamp.sec * 1_000_000_000 + msg.header.stamp.nanosec
-        if recording.is_set():
-            with lock:
-                latency.setdefault(stamp, now - stamp)
-
-    def on_event(msg: Any) -> None:
-        events.append((port.now_ns(), msg.data))
-
-    port.create_subscription(t.JointState, '/constraint_controller/joint_command', on_command,
-                             'default')
-    port.create_subscription(t.String, '/constraint_controller/events', on_event, 'default')
-    pub = port.create_publisher(t.JointState, '/joint_states', 'sensor')
-
-    def publish() -> None:
-        ns = port.now_ns()
-        pub.publish(t.JointState(header=t.Header(stamp=t.Time(sec=ns // 1_000_000_000,
-                                                               nanosec=ns % 1_000_000_000),
-                                                 frame_id=''),
-                                 name=JOINTS, position=START, velocity=[], effort=[]))
-        if recording.is_set():
-            with lock:
-                sent.append(ns)
-
-    timer = port.create_timer(1.0 / rate_hz, publish)
-    spinner = threading.Thread(target=port.spin, daemon=True)
-    spinner.start()
-    result: dict[str, Any] = {'rate_hz': rate_hz, 'duration_s': duration}
+    if any(target[3] == 'rclpy' for target in targets):
+        # the peer's DDS transport answers services of rmw_cyclonedds_cpp peers only, and its
+        # loopback-only discovery meets a ROS 2 node restricted to this host (README, Distro)
+        env.setdefault('RMW_IMPLEMENTATION', 'rmw_cyclonedds_cpp')
+        env.setdefault('ROS_AUTOMATIC_DISCOVERY_RANGE', 'LOCALHOST')
+    params = _params_file(workdir)
+    procs: dict[str, subprocess.Popen] = {}
+    logs: dict[str, Path] = {}
+    stats: dict[str, Path] = {}
+    peer_targets = []
     try:
-        deadline = time.monotonic() + 30.0
-        while not any(name == 'activated_keep_tool_vertical' for _, name in events):
-            if time.monotonic() > deadline or proc.poll() is not None:
-                msg = 'the controller did not start its initial skill within 30 s'
-                raise RuntimeError(msg)
-            time.sleep(0.05)
-        time.sleep(1.0)                      # warm-up
-        recording.set()
-        time.sleep(duration)
-        recording.clear()
-        time.sleep(0.2)
-        with lock:
-            stamps = list(sent)
-            lat = np.array([latency[s] for s in stamps if s in latency], dtype=float) / 1000.0
-        missed = len(stamps) - lat.size
-        result.update({
-            'samples_sent': len(stamps),
-            'commands_matched': int(lat.size),
-            'missed_ticks': missed,
-            'missed_percent': round(100.0 * missed / max(len(stamps), 1), 4),
-            'round_trip_us': {'p50': round(float(np.percentile(lat, 50)), 1),
-                           'p90': round(float(np.percentile(lat, 90)), 1),
-                           'p99': round(float(np.percentile(lat, 99)), 1),
-                           'max': round(float(lat.max()), 1)} if lat.size else None,
-            'publisher_timer_missed': timer.missed,
-        })
-        result['activation'] = _activation_latency(port, events, activations, rate_hz)
+        for name, kind, realtime, transport in targets:
+            logs[name] = workdir / f'{name}.log'
+            if kind == 'node':
+                stats[name] = workdir / f'{name}_stats.json'
+                cmd = _node_command(transport, name, rate_hz, params, stats[name], realtime)
+                base = f'/{name}/constraint_controller'
+                events: str | None = f'{base}/events'
+            else:
+                cmd = _echo_command(transport, name)
+                base = f'/{name}/echo_floor'
+                events = None
+            with logs[name].open('w') as log:
+                procs[name] = subprocess.Popen(cmd, env=env, stdout=log,
+                                               stderr=subprocess.STDOUT)
+            peer_targets.append({'name': name, 'pid': procs[name].pid,
+                                 'joint_states': f'/{name}/joint_states',
+                                 'answers': f'{base}/joint_command', 'events': events})
+        config = {'rate_hz': rate_hz, 'block_s': block_s, 'seconds_per_target': seconds,
+                  'targets': peer_targets, 'realtime': peer_realtime,
+                  'activation': ({'target': activation[0], 'count': activation[1]}
+                                 if activation else None)}
+        config_path = workdir / 'peer_config.json'
+        result_path = workdir / 'peer_result.json'
+        config_path.write_text(json.dumps(config))
+        peer = subprocess.run([sys.executable, '-m', 'constraint_ctrl.tools.bench_peer',
+                               str(config_path), str(result_path)], env=env,
+                              capture_output=True, text=True, check=False)
+        if peer.returncode != 0 or not result_path.exists():
+            tail = '\n'.join((peer.stderr or '').strip().splitlines()[-5:])
+            msg = f'the benchmark peer failed (exit {peer.returncode}): {tail}'
+            raise RuntimeError(msg)
+        result = json.loads(result_path.read_text())
     finally:
-        port.shutdown()
-        proc.send_signal(signal.SIGINT)
-        try:
-            proc.wait(10)
-        except subprocess.TimeoutExpired:
-            proc.kill()
-    try:
-        if stats_file.exists():
-            node = json.loads(stats_file.read_text())
-            result['latency_us'] = node['latency_us']
-            result['activation']['node_ticks'] = node['switch_delay_ticks']
-            result['node_ticks'] = node['ticks']
-            result['node_timer_missed'] = node['timer_missed']
-    finally:
-        shutil.rmtree(stats_file.parent, ignore_errors=True)   # our temporary folder
-    result['targets'] = {'latency_p99_us': 1000, 'missed_percent': 0.1, 'activation_ticks': 2}
+        for proc in procs.values():
+            _stop(proc)
+    for name, path in stats.items():
+        if path.exists():
+            result['targets'][name]['node'] = json.loads(path.read_text())
     return result
 
 
-def _activation_latency(port: Any, events: list[tuple[int, str]], count: int,
-                        rate_hz: float) -> dict[str, Any]:
-    t = port.types
-    skills = ['reach_ramped_pose', 'keep_tool_vertical']
-    clients = {s: port.create_client(t.Trigger, f'/constraint_controller/skills/{s}/activate')
-               for s in skills}
-    for client in clients.values():
-        client.wait_for_service(10.0)
-    ticks = []
-    for k in range(count):
-        skill = skills[k % 2]
-        before = len(events)
-        sent = port.now_ns()
-        reply = clients[skill].call(t.Trigger.Request(), 5.0)
-        if reply is None or not reply.success:
-            continue
-        deadline = time.monotonic() + 2.0
-        stamp = None
-        while stamp is None and time.monotonic() < deadline:
-            for when, name in events[before:]:
-                if name == f'activated_{skill}':
-                    stamp = when
-                    break
-            time.sleep(0.001)
-        if stamp is not None:
-            ticks.append((stamp - sent) * 1e-9 * rate_hz)
-        time.sleep(0.2)
-    arr = np.array(ticks)
-    return {'count': int(arr.size),
-            'round_trip_ticks_p50': round(float(np.median(arr)), 2) if arr.size else None,
-            'round_trip_ticks_max': round(float(arr.max()), 2) if arr.size else None,
-            'note': 'round trip: Trigger request sent by the peer -> activated_<skill> event '
-                    'received by it; node_ticks: request received -> new skill commanding'}
+def _ratio(a: dict[str, Any] | None, b: dict[str, Any] | None, key: str) -> float | None:
+    if not a or not b or not b.get(key):
+        return None
+    return round(a[key] / b[key], 3)
+
+
+def _summary(target: dict[str, Any]) -> dict[str, Any]:
+    """The figures of one target that the report shows side by side."""
+    node = target.get('node') or {}
+    out = {'round_trip_us': target['round_trip_us'], 'missed_percent': target['missed_percent'],
+           'missed_ticks': target['missed_ticks'], 'samples_sent': target['samples_sent'],
+           'worst_gap_ms': target['worst_gap_ms'],
+           'cpu_us_per_sample': target['cpu_us_per_sample'],
+           'cpu_percent': target['cpu_percent']}
+    if node:
+        out['latency_us'] = node.get('latency_us')
+        if node.get('realtime') is not None:
+            out['scheduling'] = node['realtime']
+    return out
+
+
+def _transport_figures(node: dict[str, Any], echo: dict[str, Any]) -> dict[str, Any]:
+    own = node.get('node') or {}
+    return {'round_trip_us': node['round_trip_us'], 'echo_floor_us': echo['round_trip_us'],
+            'ratio_p99': _ratio(node['round_trip_us'], echo['round_trip_us'], 'p99'),
+            'missed_percent': node['missed_percent'], 'worst_gap_ms': node['worst_gap_ms'],
+            'echo_missed_percent': echo['missed_percent'], 'latency_us': own.get('latency_us'),
+            'cpu_us_per_sample': node['cpu_us_per_sample'],
+            'echo_cpu_us_per_sample': echo['cpu_us_per_sample']}
+
+
+def bench_end_to_end(duration: float = 30.0, rate_hz: float = 1000.0, activations: int = 20,
+                     load: int = 2, transport: str = 'dds', realtime_priority: int = 80,
+                     block_s: float = 2.0) -> dict[str, Any]:
+    """The quiet part, then (load > 0) the loaded part; see the module docstring.
+
+    ``duration``: recorded seconds per measured process in each part. ``transport`` 'dds',
+    'rclpy', or 'both': then the quiet part interleaves a controller and an echo on each
+    transport (the main keys are the DDS ones; `transports` has both side by side) and the
+    loaded part runs on DDS.
+    """
+    workdir = Path(tempfile.mkdtemp(prefix='ctrl_e2e_'))
+    try:
+        return _bench_in(workdir, duration, rate_hz, activations, load, transport,
+                         realtime_priority, block_s)
+    except Exception as exc:
+        # the last lines of each process's log go into the error: the folder goes away
+        tails = [f'{log.relative_to(workdir)}: ' + ' | '.join(
+                     log.read_text(errors='replace').strip().splitlines()[-3:])
+                 for log in sorted(workdir.glob('*/*.log'))]
+        msg = '\n'.join([str(exc), *tails])
+        raise RuntimeError(msg) from exc
+    finally:
+        shutil.rmtree(workdir, ignore_errors=True)
+
+
+def _bench_in(workdir: Path, duration: float, rate_hz: float, activations: int, load: int,
+              transport: str, realtime_priority: int, block_s: float) -> dict[str, Any]:
+    block_s = min(block_s, duration)
+    (workdir / 'quiet').mkdir()
+    (workdir / 'loaded').mkdir()
+    peer_priority = min(99, realtime_priority + PEER_PRIORITY_ABOVE_NODE)
+    main_transport = 'dds' if transport == 'both' else transport
+    targets: list[Target] = [('controller', 'node', None, main_transport),
+                             ('echo', 'echo', None, main_transport)]
+    if transport == 'both':
+        targets += [('controller_rclpy', 'node', None, 'rclpy'),
+                    ('echo_rclpy', 'echo', None, 'rclpy')]
+    quiet = _measure(workdir / 'quiet', rate_hz, duration, block_s, targets, peer_priority,
+                     ('controller', activations) if activations else None)
+    node, echo = quiet['targets']['controller'], quiet['targets']['echo']
+    own = node.get('node') or {}
+    result: dict[str, Any] = {
+        'rate_hz': rate_hz, 'transport': main_transport, 'duration_s': duration,
+        'samples_sent': node['samples_sent'], 'commands_matched': node['commands_matched'],
+        'missed_ticks': node['missed_ticks'], 'missed_percent': node['missed_percent'],
+        'round_trip_us': node['round_trip_us'], 'worst_gap_ms': node['worst_gap_ms'],
+        'latency_us': own.get('latency_us'),
+        'echo_floor_us': echo['round_trip_us'],
+        'echo_missed_percent': echo['missed_percent'],
+        'cpu_us_per_sample': node['cpu_us_per_sample'],
+        'echo_cpu_us_per_sample': echo['cpu_us_per_sample'],
+        'cpu_percent': node['cpu_percent'], 'echo_cpu_percent': echo['cpu_percent'],
+        'ratio_p99': _ratio(node['round_trip_us'], echo['round_trip_us'], 'p99'),
+        'ratio_p50': _ratio(node['round_trip_us'], echo['round_trip_us'], 'p50'),
+        'activation': quiet.get('activation'),
+        'node_ticks': own.get('ticks'),
+        'interleaving': {'block_s': block_s, 'blocks_per_process': node['blocks'],
+                         'order': ', '.join(t[0] for t in targets) + ', then reversed each '
+                                  'round; a process not fed is paused (SIGSTOP)'},
+        'peer': quiet['peer'],
+    }
+    if result['activation'] is not None and own.get('switch_delay_ticks') is not None:
+        result['activation']['node_ticks'] = own['switch_delay_ticks']
+    if transport == 'both':
+        figures = {'dds': _transport_figures(node, echo),
+                   'rclpy': _transport_figures(quiet['targets']['controller_rclpy'],
+                                               quiet['targets']['echo_rclpy'])}
+        figures['rclpy_over_dds_p99'] = _ratio(figures['rclpy']['round_trip_us'],
+                                               figures['dds']['round_trip_us'], 'p99')
+        result['transports'] = figures
+    if load > 0:
+        busy = _busy_loops(load)
+        try:
+            time.sleep(1.0)
+            loaded = _measure(workdir / 'loaded', rate_hz, duration, block_s,
+                              [('plain', 'node', None, main_transport),
+                               ('realtime', 'node', realtime_priority, main_transport),
+                               ('echo', 'echo', None, main_transport)], peer_priority, None)
+        finally:
+            for proc in busy:
+                proc.kill()
+                proc.wait()
+        result['loaded'] = {
+            'busy_processes': load,
+            'plain': _summary(loaded['targets']['plain']),
+            'realtime': _summary(loaded['targets']['realtime']),
+            'echo_floor': _summary(loaded['targets']['echo']),
+            'peer': loaded['peer'],
+        }
+    result['targets'] = {'latency_p99_us': 250, 'ratio_p99': 2.0, 'missed_percent': 0.1,
+                         'activation_ticks': 2,
+                         'loaded_realtime': {'missed_percent': 0.5, 'worst_gap_ms': 5.0,
+                                             'round_trip_p99_us': 2000}}
+    return result
 
 
 __all__ = ['bench_end_to_end']

@@ -146,6 +146,7 @@ class FixedRateTimer:
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self._cancelled = False
+        self._due = 0                      # monotonic ns of the next call (monotonic timers)
 
     def start(self) -> None:
         if self._cancelled or self._thread is not None:
@@ -176,18 +177,27 @@ class FixedRateTimer:
             self._faults.callback_failed(self._name, exc)
         self.ticks += 1
 
+    def reset(self) -> None:
+        """Restart the period from now (as rcl_timer_reset): the next call is one period
+        later. On ROS time (use_sim_time) the schedule follows /clock and this does nothing."""
+        self._due = time.monotonic_ns() + self.period_ns
+
     def _run(self) -> None:
         period = self.period_ns
-        due = time.monotonic_ns() + period
+        self._due = time.monotonic_ns() + period
         while True:
-            delay = due - time.monotonic_ns()
+            delay = self._due - time.monotonic_ns()
             if delay > 0 and self._stop.wait(delay / 1e9):
                 return
             if self._stop.is_set():
                 return
-            behind = max(0, (time.monotonic_ns() - due) // period)
+            now = time.monotonic_ns()
+            due = self._due
+            if now < due:                  # reset() moved the next call while we waited
+                continue
+            behind = max(0, (now - due) // period)
             self._fire(behind)
-            due += (behind + 1) * period
+            self._due = due + (behind + 1) * period
 
     def _run_ros_time(self) -> None:
         clock = self.clock

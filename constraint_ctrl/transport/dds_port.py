@@ -91,6 +91,17 @@ def delete_entity(entity: Any) -> None:
 _ROSOUT_LEVELS = {'debug': 10, 'info': 20, 'warn': 30, 'error': 40}
 
 
+def _wait_for_acks(writer: DataWriter, seconds: float) -> None:
+    """Wait up to ``seconds`` for reliable readers to acknowledge; a reader that never does
+    (its process paused or gone without a goodbye) must not stop the shutdown.
+    cyclonedds-python 11.0.1's DataWriter.wait_for_acks raises AttributeError instead of
+    returning False on a timeout (it looks the code up on the builtin Exception)."""
+    try:
+        writer.wait_for_acks(duration(seconds=seconds))
+    except (AttributeError, DDSException):
+        pass
+
+
 class DdsPublisher:
     def __init__(self, writer: DataWriter, msg_type: type, name: str) -> None:
         self.writer = writer
@@ -248,7 +259,9 @@ class DdsPort:
         return DdsPublisher(writer, msg_type, fqn)
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
-                            qos: str) -> DdsSubscription:
+                            qos: str, *, control: bool = False) -> DdsSubscription:
+        # control: nothing to do here; every subscription is dispatched on the one topic
+        # thread, which nothing but subscriptions uses (services have their own)
         return self._subscription(msg_type, topic, callback, profile(qos))
 
     def _subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
@@ -296,7 +309,9 @@ class DdsPort:
 
     # --- timers ----------------------------------------------------------------------------
 
-    def create_timer(self, period_s: float, callback: Callable[[], None]) -> FixedRateTimer:
+    def create_timer(self, period_s: float, callback: Callable[[], None], *,
+                     control: bool = False) -> FixedRateTimer:
+        # control: nothing to do here; every timer has its own thread
         timer = FixedRateTimer(period_s, callback, self._faults,
                                name=f'timer {len(self._timers)}',
                                clock=self._clock if self._clock.sim_time else None)
@@ -389,6 +404,6 @@ class DdsPort:
         for writer in [*self._writers, self._announcer.writer]:
             left = deadline - time.monotonic()
             if left > 0:
-                writer.wait_for_acks(duration(seconds=left))
+                _wait_for_acks(writer, left)
         delete_entity(self._participant)   # and with it every entity of the node
         self._signals.release()

@@ -40,6 +40,11 @@ DISTROS = ('jazzy', 'humble')
 DISTRO_CHOICES = ('auto', *DISTROS)
 TRANSPORTS = ('auto', 'rclpy', 'dds')
 LOG_LEVELS = ('debug', 'info', 'warn', 'error')
+#: Names of the transport's own threads that take samples off the wire and deliver them
+#: (Cyclone DDS's receive, delivery-queue and timed-event threads, as /proc shows them). Both
+#: ports run Cyclone in the process: the DDS port directly, rclpy through rmw_cyclonedds_cpp;
+#: another RMW's threads are named otherwise and are not found by these names.
+RECEIVE_THREADS = ('recv', 'dq.user', 'tev')
 
 ParameterValue = bool | int | float | str | bytes | list[bool] | list[int] | list[float] | list[str]
 
@@ -74,6 +79,9 @@ class Timer(Protocol):
 
     def cancel(self) -> None: ...
 
+    def reset(self) -> None:
+        """Restart the period from now (rclpy's Timer.reset): the next call comes one full
+        period later. For a timer that only stands in when something else did not happen."""
 
 class Port(Protocol):
     node_name: str    # after `-r __node:=...`
@@ -95,7 +103,10 @@ class Port(Protocol):
     def create_publisher(self, msg_type: Any, topic: str, qos: str) -> Publisher: ...
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
-                            qos: str) -> Subscription: ...
+                            qos: str, *, control: bool = False) -> Subscription:
+        """control=True: the callback belongs to the control path (what a tick reads), which
+        the port runs on one thread of its own that nothing else queues on (rclpy: a hidden
+        node with its own executor; DDS: the topic thread already is such a thread)."""
 
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> object:
@@ -105,8 +116,10 @@ class Port(Protocol):
 
     def create_client(self, srv_type: Any, name: str) -> Client: ...
 
-    def create_timer(self, period_s: float, callback: Callable[[], None]) -> Timer:
-        """Fixed rate; late ticks are skipped, not bunched. Created while use_sim_time is
+    def create_timer(self, period_s: float, callback: Callable[[], None], *,
+                     control: bool = False) -> Timer:
+        """Fixed rate; late ticks are skipped, not bunched. control=True: on the control
+        path's thread (see create_subscription). Created while use_sim_time is
         false: on the monotonic clock. Created while it is true: on ROS time, so the timer
         does not fire while /clock stands still, as rclpy's ROS-time timers do."""
 

@@ -5,6 +5,9 @@ port maps the neutral record below onto its own QoS objects. Values follow ROS 2
 (rmw/include/rmw/qos_profiles.h): 'sensor' = sensor_data, 'default' = the default profile,
 'services' = services_default, 'parameters' = parameters and parameter_events. 'status' is
 our own latched profile for late joiners (reliable, keep last 1, transient local).
+'latest' is sensor_data with keep last 1: for the control path, which only ever wants the
+newest sample; a sample still waiting when a newer one arrives is replaced in the reader, so a
+node that fell behind works on the newest sample instead of through a backlog.
 'tf' and 'tf_static' are tf2_ros's TransformListener subscriptions (tf2_ros_py
 transform_listener.py, Humble and Jazzy: QoSProfile(depth=100, VOLATILE / TRANSIENT_LOCAL,
 KEEP_LAST), reliable by QoSProfile's default); 'robot_description' is what
@@ -30,6 +33,7 @@ class QosProfile:
 
 PROFILES: dict[str, QosProfile] = {
     'sensor': QosProfile(depth=5, reliable=False, transient_local=False),
+    'latest': QosProfile(depth=1, reliable=False, transient_local=False),
     'default': QosProfile(depth=10, reliable=True, transient_local=False),
     'status': QosProfile(depth=1, reliable=True, transient_local=True),
     'services': QosProfile(depth=10, reliable=True, transient_local=False),

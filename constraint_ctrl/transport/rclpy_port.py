@@ -7,9 +7,22 @@ project's CI (no ROS install); every call below is one rclpy documents:
   --ros-args itself; its own SIGINT handler is off so that spin() can return while the context
   is still valid and the node can publish a final command;
 * Node(name, automatically_declare_parameters_from_overrides=True);
-* MultiThreadedExecutor: the timer runs in its own MutuallyExclusiveCallbackGroup, services
-  and the parameter services in the node's default group, subscriptions in a third group and
-  clients in a ReentrantCallbackGroup, so a slow service never delays a tick;
+* the control path (entities created with control=True: the controller's joint_states,
+  input and person subscriptions and its control timer) lives on a second, hidden node of the
+  same context, `_<name>_control` (a leading underscore hides a node from `ros2 node list`;
+  created with use_global_arguments=False, enable_rosout=False,
+  start_parameter_services=False, names resolved by the main node with
+  Node.resolve_topic_name, so remapping and namespace are the main node's), spun by its own
+  executor on its own thread: rclpy.experimental.EventsExecutor where rclpy has it (Jazzy from
+  rclpy 7.1.4; callbacks dispatched from C++, no wait set rebuilt per callback), else a
+  SingleThreadedExecutor. One thread, one callback group: a sample is taken and the tick runs
+  without a hand-over to a thread pool, and nothing else queues in front of it. An rclpy node
+  belongs to one executor, hence the second node;
+* everything else (services, the parameter services, clients, other subscriptions and
+  timers) stays on the main node with a MultiThreadedExecutor on the thread that calls
+  spin(): services and the parameter services in the node's default group, subscriptions in a
+  second group, timers in a third, clients in a ReentrantCallbackGroup, so a service that
+  waits for a tick (skill activation) never blocks one;
 * QoS: rclpy presets (qos_profile_sensor_data, qos_profile_services_default,
   qos_profile_parameters) or QoSProfile built from qos.PROFILES;
 * validator -> add_on_set_parameters_callback returning SetParametersResult; listeners ->
@@ -133,6 +146,20 @@ class RclpyTimer:
     def cancel(self) -> None:
         self.timer.cancel()
 
+    def reset(self) -> None:
+        self._due = self._now() + self._period
+        self.timer.reset()
+
+
+def _control_executor(context: Any) -> tuple[Any, str]:
+    """(executor, its class name) for the control path: EventsExecutor where rclpy has it."""
+    try:
+        from rclpy.experimental import EventsExecutor
+    except ImportError:
+        from rclpy.executors import SingleThreadedExecutor
+        return SingleThreadedExecutor(context=context), 'SingleThreadedExecutor'
+    return EventsExecutor(context=context), 'EventsExecutor'
+
 
 class RclpyClient:
     def __init__(self, port: RclpyPort, client: Any) -> None:
@@ -177,6 +204,9 @@ class RclpyPort:
         self.types = _types()
         self.executor = MultiThreadedExecutor(num_threads=4)
         self.executor.add_node(self.node)
+        self.control_executor, self.control_executor_name = _control_executor(
+            self.node.context)
+        self._control_node: Any = None      # made with the first control-path entity
         self._timer_group = MutuallyExclusiveCallbackGroup()
         self._topic_group = MutuallyExclusiveCallbackGroup()
         self._client_group = ReentrantCallbackGroup()
@@ -232,11 +262,31 @@ class RclpyPort:
     def create_publisher(self, msg_type: Any, topic: str, qos: str) -> Any:
         return self.node.create_publisher(msg_type, topic, _qos(qos))
 
+    def _control_path(self) -> Any:
+        """The hidden node of the control path (module docstring), made on first use."""
+        if self._control_node is None:
+            from rclpy.node import Node
+            from rclpy.parameter import Parameter
+            # no ~/get_type_description service either (Jazzy starts one on every node unless
+            # this parameter is false; Humble has none and ignores the override)
+            self._control_node = Node(
+                f'_{self.node_name}_control', namespace=self.namespace,
+                context=self.node.context, use_global_arguments=False, enable_rosout=False,
+                start_parameter_services=False, parameter_overrides=[
+                    Parameter('start_type_description_service', value=False)])
+            self.control_executor.add_node(self._control_node)
+            self.log('info', f'control path: node {self._control_node.get_name()}, '
+                     f'{self.control_executor_name}, its own thread')
+        return self._control_node
+
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
-                            qos: str) -> Any:
-        return self.node.create_subscription(
-            msg_type, topic, self._faults.guard(f'subscription {topic}', callback), _qos(qos),
-            callback_group=self._topic_group)
+                            qos: str, *, control: bool = False) -> Any:
+        guarded = self._faults.guard(f'subscription {topic}', callback)
+        if control:
+            return self._control_path().create_subscription(
+                msg_type, self.node.resolve_topic_name(topic), guarded, _qos(qos))
+        return self.node.create_subscription(msg_type, topic, guarded, _qos(qos),
+                                             callback_group=self._topic_group)
 
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> Any:
@@ -252,15 +302,19 @@ class RclpyPort:
                                          callback_group=self._client_group)
         return RclpyClient(self, client)
 
-    def create_timer(self, period_s: float, callback: Callable[[], None]) -> RclpyTimer:
+    def create_timer(self, period_s: float, callback: Callable[[], None], *,
+                     control: bool = False) -> RclpyTimer:
         from rclpy.clock import Clock, ClockType
         clock = (self.node.get_clock() if self.node.get_parameter('use_sim_time').value
                  else Clock(clock_type=ClockType.STEADY_TIME))
         timer = RclpyTimer(period_s, self._faults.guard(f'timer {self._timer_count}', callback),
                            lambda: int(clock.now().nanoseconds))
         self._timer_count += 1
-        timer.timer = self.node.create_timer(period_s, timer.tick,
-                                             callback_group=self._timer_group, clock=clock)
+        if control:
+            timer.timer = self._control_path().create_timer(period_s, timer.tick, clock=clock)
+        else:
+            timer.timer = self.node.create_timer(period_s, timer.tick,
+                                                 callback_group=self._timer_group, clock=clock)
         return timer
 
     # --- parameters ------------------------------------------------------------------------
@@ -375,21 +429,35 @@ class RclpyPort:
 
     # --- running ---------------------------------------------------------------------------
 
-    def spin(self) -> None:
+    def _spin_executor(self, executor: Any) -> None:
+        """spin_once until stopped; an exception rclpy raises while taking a sample is
+        counted and spinning goes on."""
         from rclpy.executors import ExternalShutdownException
-        self._signals.catch()
-        self.spinning = True
         try:
-            while not self._stop.is_set() and self._rclpy.ok():
+            while not self._stop.is_set() and self._rclpy.ok(context=self.node.context):
                 try:
-                    self.executor.spin_once(timeout_sec=0.1)
+                    executor.spin_once(timeout_sec=0.1)
                 except ExternalShutdownException:
                     raise
                 except Exception as exc:  # noqa: BLE001 - a sample rclpy could not take
                     self._faults.dropped('rclpy executor', exc)
         except ExternalShutdownException:
-            pass
+            self._stop.set()
+
+    def spin(self) -> None:
+        self._signals.catch()
+        self.spinning = True
+        control = None
+        if self._control_node is not None:
+            control = threading.Thread(target=self._spin_executor, args=(self.control_executor,),
+                                       name=f'{self.node_name}-control', daemon=True)
+            control.start()
+        try:
+            self._spin_executor(self.executor)
         finally:
+            self._stop.set()
+            if control is not None:
+                control.join()
             self.spinning = False
             self._signals.hold()     # a second signal must not cut the shutdown short
 
@@ -400,6 +468,9 @@ class RclpyPort:
             return
         self._closed = True
         try:
+            self.control_executor.shutdown()
+            if self._control_node is not None:
+                self._control_node.destroy_node()
             self.executor.shutdown()
             self.node.destroy_node()
             self._rclpy.try_shutdown()

@@ -316,3 +316,123 @@ def test_importing_transport_loads_no_middleware() -> None:
     out = subprocess.run([sys.executable, '-c', code], capture_output=True, text=True,
                          env={**os.environ, 'PYTHONPATH': str(ROOT)}, timeout=30, check=True)
     assert out.stdout.strip() == '[]'
+
+
+_PAUSED_READER = '''
+import sys, threading
+from constraint_ctrl.transport.dds_port import DdsPort
+port = DdsPort('paused_reader', ['test'])
+port.create_subscription(port.types.Float64, sys.argv[1], lambda msg: print('GOT', flush=True),
+                         'default')
+threading.Thread(target=port.spin, daemon=True).start()
+print('READY', flush=True)
+threading.Event().wait()
+'''
+
+
+def test_shutdown_survives_a_reader_that_never_acknowledges() -> None:
+    """A reliable reader whose process is paused never acknowledges; shutdown() waits for
+    acknowledgements at most 0.5 s and must then go on. (cyclonedds-python 11.0.1's
+    DataWriter.wait_for_acks raises AttributeError on its own timeout: it looks the code up
+    on the builtin Exception, cyclonedds/pub.py.) Seen when the benchmark paused a peer."""
+    import signal
+    topic = f'{NS}/paused_reader'
+    env = {**os.environ, 'ROS_DOMAIN_ID': DOMAIN, 'PYTHONPATH': str(ROOT)}
+    proc = subprocess.Popen([sys.executable, '-c', _PAUSED_READER, topic], env=env,
+                            stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+    port = DdsPort('paused_writer', ['test'])
+    try:
+        assert proc.stdout is not None and proc.stdout.readline().startswith('READY')
+        import select
+        pub = port.create_publisher(port.types.Float64, topic, 'default')
+        deadline = time.monotonic() + 30.0
+        got = False
+        while not got and time.monotonic() < deadline:   # until the reader has one sample
+            pub.publish(port.types.Float64(data=1.0))
+            if select.select([proc.stdout], [], [], 0.1)[0]:
+                got = proc.stdout.readline().startswith('GOT')
+        assert got, 'the reader never received a sample'
+        os.kill(proc.pid, signal.SIGSTOP)
+        for _ in range(5):
+            pub.publish(port.types.Float64(data=2.0))
+        started = time.monotonic()
+        port.shutdown()                            # must not raise
+        assert time.monotonic() - started < 10.0
+    finally:
+        port.shutdown()
+        os.kill(proc.pid, signal.SIGCONT)
+        proc.kill()
+        proc.wait(5)
+
+
+def test_latest_profile_keeps_only_the_newest_waiting_sample() -> None:
+    """QoS 'latest' (keep last 1, best effort): while a callback is busy, newer samples
+    replace each other in the reader, so the callback then sees one newer sample, not a
+    backlog (DDS KEEP_LAST history semantics; the controller's control-path subscriptions
+    use it so a node that fell behind ticks once, on the newest joint_states)."""
+    topic = f'{NS}/latest_only'
+    sub_port = DdsPort('latest_sub', ['test'])
+    pub_port = DdsPort('latest_pub', ['test'])
+    got: list[float] = []
+    first = threading.Event()
+    release = threading.Event()
+
+    def on_value(msg: Any) -> None:
+        got.append(msg.data)
+        if len(got) == 1:
+            first.set()
+            release.wait(30.0)
+
+    sub_port.create_subscription(sub_port.types.Float64, topic, on_value, 'latest')
+    spinner = threading.Thread(target=sub_port.spin, daemon=True)
+    spinner.start()
+    pub = pub_port.create_publisher(pub_port.types.Float64, topic, 'sensor')
+    try:
+        value = 0.0
+        while not first.is_set():                  # until the callback holds the first one
+            value += 1.0
+            pub.publish(pub_port.types.Float64(data=value))
+            first.wait(0.05)
+        start = value
+        for _ in range(10):
+            value += 1.0
+            pub.publish(pub_port.types.Float64(data=value))
+        time.sleep(2.0)                            # let them reach the reader (not timed)
+        release.set()
+        assert wait_until(lambda: len(got) >= 2, 10.0)
+        time.sleep(0.5)
+        assert len(got) == 2, got                  # one waiting sample, not ten
+        assert start < got[1] <= value
+    finally:
+        release.set()
+        sub_port.shutdown()
+        spinner.join(5.0)
+        sub_port.shutdown()
+        pub_port.shutdown()
+
+
+def test_timer_reset_restarts_the_period() -> None:
+    """reset() restarts the period from now (rclpy's Timer.reset, rcl_timer_reset): a timer
+    reset more often than its period does not fire, side by side with one that is not reset.
+    Judged by counts with a wide margin, never by time."""
+    from constraint_ctrl.transport.dds_dispatch import FixedRateTimer
+    from constraint_ctrl.transport.receive_faults import FaultLog
+    faults = FaultLog(lambda level, text: None)
+    fired = {'reset': 0, 'free': 0}
+
+    def count(name: str) -> Callable[[], None]:
+        def callback() -> None:
+            fired[name] += 1
+        return callback
+    reset_timer = FixedRateTimer(0.1, count('reset'), faults)
+    free_timer = FixedRateTimer(0.1, count('free'), faults)
+    reset_timer.start()
+    free_timer.start()
+    try:
+        while fired['free'] < 12:
+            reset_timer.reset()
+            time.sleep(0.005)
+    finally:
+        reset_timer.cancel()
+        free_timer.cancel()
+    assert fired['reset'] <= fired['free'] // 4

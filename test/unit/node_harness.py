@@ -126,7 +126,8 @@ class NodeHarness:
         original = pub.publish
         pub.publish = captured.append            # type: ignore[method-assign]
         try:
-            ControllerNode._send_status(self.node, self.outputs[-1])
+            # what the status thread publishes, built here and now (StatusWorker's job)
+            self.node._publish_status(*self.node._status_job(self.outputs[-1]))
         finally:
             pub.publish = original               # type: ignore[method-assign]
         return captured[-1]
