@@ -194,6 +194,10 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser('functions', help='list the functions of the formula language')
     p.set_defaults(func=_functions)
 
+    # driving a running node without ROS: call, param, echo (tools/remote.py)
+    from .tools.remote import add_commands as add_remote_commands
+    add_remote_commands(sub)
+
     for name, (_, text) in NODE_COMMANDS.items():
         p = sub.add_parser(name, help=text + ' (see: constraint-ctrl ' + name + ' --help)',
                            add_help=False)
