@@ -88,6 +88,19 @@ def delete_entity(entity: Any) -> None:
     entity.__del__()
 
 
+def wait_for_acks(writer: DataWriter, seconds: float) -> bool:
+    """True when every matched reliable reader acknowledged all the writer's data in time.
+
+    A reader that vanished without unmatching (its process killed) never acknowledges, so the
+    wait ends by its timeout; cyclonedds-python 11.0.1 then raises AttributeError instead of
+    returning False (cyclonedds/pub.py, DataWriter.wait_for_acks, compares the return code with
+    `Exception.DDS_RETCODE_TIMEOUT`). Other failures still raise DDSException."""
+    try:
+        return bool(writer.wait_for_acks(duration(seconds=seconds)))
+    except AttributeError:
+        return False
+
+
 #: rcl_interfaces/Log severities (rcl_interfaces/msg/Log.msg constants) of our log levels.
 _ROSOUT_LEVELS = {'debug': 10, 'info': 20, 'warn': 30, 'error': 40}
 
@@ -418,6 +431,6 @@ class DdsPort:
         for writer in [*self._writers, self._announcer.writer]:
             left = deadline - time.monotonic()
             if left > 0:
-                writer.wait_for_acks(duration(seconds=left))
+                wait_for_acks(writer, left)
         delete_entity(self._participant)   # and with it every entity of the node
         self._signals.release()
