@@ -35,13 +35,13 @@ setup(
         'pyyaml>=6',
         'cyclonedds>=0.10.5',
         'rosbags>=0.10',
+        'ruamel.yaml>=0.17',   # bag.py writes metadata.yaml as rosbags does
         'matplotlib>=3.7',
         'tqdm>=4.60',
     ],
     extras_require={
         'test': ['pytest>=7.3', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6', 'pytransform3d>=3'],
     },
-    tests_require=['pytest'],
     zip_safe=False,
     maintainer='constraint_ctrl developers',
     maintainer_email='dev@example.com',

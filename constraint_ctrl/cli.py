@@ -194,6 +194,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser('functions', help='list the functions of the formula language')
     p.set_defaults(func=_functions)
 
+    _add_bag_and_pose_commands(sub)
+
     # driving a running node without ROS: call, param, echo (tools/remote.py)
     from .tools.remote import add_commands as add_remote_commands
     add_remote_commands(sub)
@@ -203,6 +205,52 @@ def build_parser() -> argparse.ArgumentParser:
                            add_help=False)
         p.add_argument('rest', nargs=argparse.REMAINDER)
     return parser
+
+
+# --- pose and replay (issue 10 items 3 and 4): one block, registered by build_parser ---------
+
+def _pose(args: argparse.Namespace) -> int:
+    from .tools.pose import run_pose
+    code, lines, message = run_pose(Path(args.urdf), args.tool, args.at,
+                                    tool_down=args.tool_down, rpy=args.rpy, near=args.near,
+                                    base_link=args.base, tolerance=args.tolerance)
+    print('\n'.join(lines))
+    if message:
+        print(f'error: {message}', file=sys.stderr)
+    return code
+
+
+def _replay(args: argparse.Namespace) -> int:
+    from .tools.replay import run_replay
+    return run_replay(args)
+
+
+def _add_bag_and_pose_commands(sub) -> None:  # noqa: ANN001 - argparse's private type
+    p = sub.add_parser('pose', help='joint positions that put a tool at a pose, or the tool '
+                       'pose for given joints (output pastes into offline.start)')
+    p.add_argument('urdf', help='robot URDF file')
+    p.add_argument('--tool', required=True, help='link whose pose is asked for')
+    p.add_argument('--at', nargs=3, type=float, metavar=('X', 'Y', 'Z'),
+                   help='target position of the tool in the base frame (m); without it the '
+                   "tool's pose for --near (or the zero/mid pose) is printed")
+    way = p.add_mutually_exclusive_group()
+    way.add_argument('--tool-down', action='store_true',
+                     help='tool z axis along -z of the base (heading free)')
+    way.add_argument('--rpy', nargs=3, type=float, metavar=('R', 'P', 'Y'),
+                     help='target orientation, URDF roll-pitch-yaw about fixed base axes (rad)')
+    p.add_argument('--near', metavar='JOINTS',
+                   help="start guess (or the joints to evaluate without --at) as a YAML mapping, "
+                   "e.g. '{joint_2: 0.8, joint_3: 0.3}'; joints left out are 0 (or mid-range)")
+    p.add_argument('--base', help='base frame (default: the URDF root link)')
+    p.add_argument('--tolerance', type=float, default=1e-5,
+                   help='accepted position (m) and orientation (rad) error; default 1e-5')
+    p.set_defaults(func=_pose)
+
+    from .tools.replay import add_arguments
+    p = sub.add_parser('replay', help='re-run a skill open-loop over a recorded bag and '
+                       'compare its commands with the recorded ones')
+    add_arguments(p)
+    p.set_defaults(func=_replay)
 
 
 def report_errors(func, *args, debug: bool | None = None) -> int:  # noqa: ANN001 - any entry

@@ -1,80 +1,300 @@
-"""PNG plots of a simulation trace (matplotlib, no display needed)."""
+"""PNG plots of the offline tools and the demo (matplotlib, no display needed).
+
+Rules every plot here follows, so a person can read it without asking (checked mechanically in
+test/unit/test_plot_rules.py):
+- every axis has a label with its unit in parentheses (a categorical axis names its levels);
+- within one panel no two lines share colour and line style (``styles``: ten colours, then the
+  same colours dashed, dotted, ...);
+- on a log scale, values at or below the floor are not drawn (``above_floor``), never drawn as
+  if they were the floor; the panel says so;
+- a state (the watchdog's) gets its own small panel with named levels (``state_panel``);
+- step names are placed so that they never overlap (``label_steps``: staggered rows).
+
+Figures are built with matplotlib's object interface (no pyplot state), so they can be made in
+tests and inspected before they are written.
+"""
 from __future__ import annotations
 
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import numpy as np
 
 if TYPE_CHECKING:
+    from matplotlib.axes import Axes
+    from matplotlib.figure import Figure
+
     from ..skill.compile import CompiledSkill
+    from .replay import RecordedRows, ReplayTrace
     from .simulate import Trace
 
+#: Colours of matplotlib's default cycle ('tab10'), in order.
+COLOURS = ('tab:blue', 'tab:orange', 'tab:green', 'tab:red', 'tab:purple', 'tab:brown',
+           'tab:pink', 'tab:gray', 'tab:olive', 'tab:cyan')
+LINE_STYLES = ('-', '--', ':', '-.')
+#: Marker shapes for series drawn as dots, one per round of the ten colours.
+MARKERS = ('o', 's', '^', 'D')
+#: Smallest value drawn on a log axis of errors and slacks; smaller ones (0 included) are left out.
+LOG_FLOOR = 1e-9
+#: Watchdog states from least to most restrictive (safety/states.py), bottom to top of the panel.
+WATCHDOG_LEVELS = ('normal', 'reduced', 'stopping', 'stopped')
+DPI = 90
+#: Free space kept on each side of a step label (pixels at DPI), so neighbours never touch.
+LABEL_GAP = 8.0
 
-def _figure(rows: int = 1):
-    import matplotlib
-    matplotlib.use('Agg')
-    import matplotlib.pyplot as plt
-    fig, axes = plt.subplots(rows, 1, figsize=(10, 3.2 * rows), sharex=True, squeeze=False)
-    return plt, fig, axes[:, 0]
 
+def styles(n: int) -> list[dict[str, str]]:
+    """n distinct (colour, line style) pairs: all colours solid, then dashed, and so on."""
+    out = []
+    for i in range(n):
+        out.append({'color': COLOURS[i % len(COLOURS)],
+                    'linestyle': LINE_STYLES[(i // len(COLOURS)) % len(LINE_STYLES)]})
+    return out
+
+
+def marker_styles(n: int) -> list[dict[str, str]]:
+    """n distinct (colour, marker) pairs for series drawn as dots without lines."""
+    return [{'color': COLOURS[i % len(COLOURS)],
+             'marker': MARKERS[(i // len(COLOURS)) % len(MARKERS)]} for i in range(n)]
+
+
+def above_floor(values: np.ndarray, floor: float = LOG_FLOOR) -> np.ndarray:
+    """|values| with everything at or below ``floor`` (and non-finite values) as NaN: not drawn."""
+    out = np.abs(np.asarray(values, dtype=float))
+    out[~(out > floor)] = np.nan
+    return out
+
+
+def figure(rows: int = 1, *, height: float = 3.2, width: float = 11.0,
+           ratios: Sequence[float] | None = None, sharex: bool = True) -> tuple[Figure, list[Axes]]:
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    fig = Figure(figsize=(width, height * rows if ratios is None else height),
+                 layout='constrained')
+    FigureCanvasAgg(fig)      # a renderer for measuring text (label_steps) and for savefig
+    axes = fig.subplots(rows, 1, sharex=sharex, squeeze=False,
+                        gridspec_kw={'height_ratios': list(ratios)} if ratios else None)
+    return fig, list(axes[:, 0])
+
+
+def save(fig: Figure, path: Path) -> Path:
+    fig.savefig(path, dpi=DPI)
+    return path
+
+
+def legend_outside(ax: Axes, **kwargs: Any) -> None:
+    """Legend to the right of the panel, so it never hides data."""
+    ax.legend(loc='upper left', bbox_to_anchor=(1.005, 1.0), borderaxespad=0.0,
+              fontsize=kwargs.pop('fontsize', 8), **kwargs)
+
+
+def state_panel(ax: Axes, time: np.ndarray, states: Sequence[str], *,
+                levels: Sequence[str] = WATCHDOG_LEVELS, label: str = 'watchdog state',
+                **style: Any) -> None:
+    """A state over time as a step line on named levels (its own small panel)."""
+    code = {name: i for i, name in enumerate(levels)}
+    y = np.array([code.get(s, np.nan) for s in states], dtype=float)
+    style.setdefault('color', 'black')
+    ax.plot(time, y, drawstyle='steps-post', lw=1.4, label=label.replace('\n', ' '), **style)
+    ax.set_yticks(range(len(levels)), list(levels))
+    ax.set_ylim(-0.5, len(levels) - 0.5)
+    ax.set_ylabel(label)
+    ax.grid(alpha=0.3, axis='y')
+
+
+def shade_steps(ax: Axes, steps: Sequence[tuple[str, float, float]]) -> None:
+    """Alternate grey bands behind the data, one per step."""
+    for i, (_, a, b) in enumerate(steps):
+        ax.axvspan(a, b, color='0.90' if i % 2 else '0.96', zorder=0, lw=0)
+
+
+def label_steps(ax: Axes, steps: Sequence[tuple[str, float, float]], *,
+                fontsize: float = 7.5) -> int:
+    """Step names above the panel, each centred on its step, staggered into rows so that no
+    two overlap (measured with the renderer); returns the number of rows used.
+
+    Call after the x limits are final. Names of steps outside the x range are left out.
+    """
+    from matplotlib.transforms import Bbox
+    renderer = ax.figure.canvas.get_renderer()
+    lo, hi = ax.get_xlim()
+    rows: list[list[Any]] = []
+    for name, a, b in steps:
+        centre = 0.5 * (max(a, lo) + min(b, hi))
+        if b < lo or a > hi:
+            continue
+        level = 0
+        while True:
+            text = ax.annotate(name.replace('_', ' '), xy=(centre, 1.0),
+                               xycoords=('data', 'axes fraction'),
+                               xytext=(0, 3 + 11 * level), textcoords='offset points',
+                               ha='center', va='bottom', fontsize=fontsize, annotation_clip=False)
+            box = text.get_window_extent(renderer)
+            box = Bbox.from_extents(box.x0 - LABEL_GAP, box.y0, box.x1 + LABEL_GAP, box.y1)
+            if level == len(rows):
+                rows.append([])
+            if not any(box.overlaps(other) for other in rows[level]):
+                rows[level].append(box)
+                break
+            text.remove()
+            level += 1
+    return len(rows)
+
+
+def title_above_steps(ax: Axes, title: str, rows: int) -> None:
+    ax.set_title(title, pad=6 + 11 * rows)
+
+
+# ----------------------------------------------------------------------------- simulate
 
 def _per_constraint(skill: CompiledSkill, values: np.ndarray) -> dict[str, np.ndarray]:
     """Largest absolute value over each constraint's rows, per tick."""
     out = {}
     for con in skill.spec.constraints:
         idx = [i for i, r in enumerate(skill.rows) if r.constraint == con.name]
-        out[con.name] = np.abs(values[:, idx]).max(axis=1)
+        out[con.name] = np.abs(values[:, idx]).max(axis=1) if idx else np.zeros(len(values))
     return out
 
 
-def plot_simulation(skill: CompiledSkill, trace: Trace, out_dir: Path) -> list[Path]:
-    written = []
+def simulation_figures(skill: CompiledSkill, trace: Trace) -> dict[str, Figure]:
     t = trace.time
-    plt, fig, (ax,) = _figure()
-    for name, series in _per_constraint(skill, trace.error).items():
-        ax.semilogy(t, np.maximum(series, 1e-12), label=name)
-    ax.set_ylabel('|error| (units of the task)')
-    ax.set_xlabel('time (s)')
-    ax.set_title(f'{skill.spec.name}: constraint errors (largest row of each constraint)')
+    name = skill.spec.name
+    figures = {}
+    xlabel = 'time since the skill started (s)'
+
+    fig, (ax,) = figure()
+    per = _per_constraint(skill, trace.error)
+    for (con, series), style in zip(per.items(), styles(len(per))):
+        ax.semilogy(t, above_floor(series), label=con, **style)
+    ax.set_ylabel('|error| (unit of its function)')
+    ax.set_xlabel(xlabel)
+    ax.set_title(f'{name}: constraint errors, largest row of each constraint '
+                 f'(values <= {LOG_FLOOR:g} not drawn)')
     ax.grid(True, which='both', alpha=0.3)
-    ax.legend(fontsize=8, ncol=2)
-    written.append(_save(plt, fig, out_dir / 'errors.png'))
+    legend_outside(ax)
+    figures['errors.png'] = fig
 
-    plt, fig, (ax,) = _figure()
-    for name, series in _per_constraint(skill, trace.slack).items():
-        ax.plot(t, series, label=name)
-    ax.set_ylabel('|slack| (rate units of the task)')
-    ax.set_xlabel('time (s)')
-    ax.set_title(f'{skill.spec.name}: slacks (how far each row is from its asked rate)')
+    fig, (ax,) = figure()
+    per = _per_constraint(skill, trace.slack)
+    for (con, series), style in zip(per.items(), styles(len(per))):
+        ax.plot(t, series, label=con, **style)
+    ax.set_ylabel('|slack| (unit of its function / s)')
+    ax.set_xlabel(xlabel)
+    ax.set_title(f'{name}: slacks (how far each row is from the rate it asked for)')
     ax.grid(True, alpha=0.3)
-    ax.legend(fontsize=8, ncol=2)
-    written.append(_save(plt, fig, out_dir / 'slacks.png'))
+    legend_outside(ax)
+    figures['slacks.png'] = fig
 
-    rows = 2 if skill.n_s else 1
-    plt, fig, axes = _figure(rows)
-    for j, name in enumerate(skill.joint_names):
-        axes[0].plot(t, trace.joint_velocity[:, j], label=name)
-    axes[0].set_ylabel('joint velocity (rad/s)')
-    axes[0].set_title(f'{skill.spec.name}: published velocities (after the watchdog)')
+    states = list(getattr(trace, 'state', []) or [])   # the watchdog's, when simulate ran it
+    heights = [3.0] + ([3.0] if skill.n_s else []) + ([1.3] if states else [])
+    fig, axes = figure(len(heights), height=sum(heights), ratios=heights)
+    prismatic = skill.model.is_prismatic
+    unit = 'rad/s' if not prismatic.any() else ('m/s' if prismatic.all() else 'rad/s or m/s')
+    for (j, joint), style in zip(enumerate(skill.joint_names), styles(skill.n_q)):
+        axes[0].plot(t, trace.joint_velocity[:, j], label=joint, **style)
+    axes[0].set_ylabel(f'joint velocity ({unit})')
+    axes[0].set_title(f'{name}: published velocities (after the watchdog)')
     axes[0].grid(True, alpha=0.3)
-    axes[0].legend(fontsize=8, ncol=3)
+    legend_outside(axes[0])
     if skill.n_s:
-        for j, name in enumerate(skill.unknown_names):
-            axes[1].plot(t, trace.unknown_velocity[:, j], label=name)
-        axes[1].set_ylabel('unknown velocity')
+        units = sorted({f.unit or '1' for f in skill.spec.unknowns})
+        for (j, unknown), style in zip(enumerate(skill.unknown_names), styles(skill.n_s)):
+            axes[1].plot(t, trace.unknown_velocity[:, j], label=unknown, **style)
+        axes[1].set_ylabel('unknown velocity (' + ' or '.join(f'{u}/s' for u in units) + ')')
         axes[1].grid(True, alpha=0.3)
-        axes[1].legend(fontsize=8)
-    axes[-1].set_xlabel('time (s)')
-    written.append(_save(plt, fig, out_dir / 'joint_velocities.png'))
-    return written
+        legend_outside(axes[1])
+    if states:
+        state_panel(axes[-1], t[:len(states)], states)
+    axes[-1].set_xlabel(xlabel)
+    figures['joint_velocities.png'] = fig
+    return figures
 
 
-def _save(plt, fig, path: Path) -> Path:
-    fig.tight_layout()
-    fig.savefig(path, dpi=90)
-    plt.close(fig)
-    return path
+def plot_simulation(skill: CompiledSkill, trace: Trace, out_dir: Path) -> list[Path]:
+    return [save(fig, out_dir / name) for name, fig in simulation_figures(skill, trace).items()]
 
 
-__all__ = ['plot_simulation']
+# ------------------------------------------------------------------------------- replay
+
+def replay_figures(trace: ReplayTrace, rows: RecordedRows, joint_names: Sequence[str],
+                   skill: str) -> dict[str, Figure]:
+    t = trace.time
+    xlabel = 'time since the bag began (s)'
+    figures = {}
+
+    n = len(joint_names)
+    fig, axes = figure(n + 2, height=13.0, ratios=[2] * n + [2, 1])
+    for j, name in enumerate(joint_names):
+        ax = axes[j]
+        ax.plot(t, trace.recorded[:, j], color='tab:blue', lw=1.6, label='recorded')
+        ax.plot(t, trace.command[:, j], color='tab:orange', lw=1.0, linestyle='--',
+                label='replayed')
+        ax.set_ylabel(f'{name} (rad/s)', fontsize=8)
+        ax.grid(alpha=0.3)
+    legend_outside(axes[0])
+    diff = np.abs(trace.command - trace.recorded).max(axis=1)
+    axes[n].semilogy(t, above_floor(diff), color='tab:red', lw=1,
+                     label='largest over joints')
+    axes[n].set_ylabel('|replayed - recorded| (rad/s)', fontsize=8)
+    axes[n].set_title(f'difference (ticks that agree to {LOG_FLOOR:g} or better are not drawn)',
+                      fontsize=8)
+    axes[n].grid(alpha=0.3, which='both')
+    legend_outside(axes[n])
+    if len(rows.time) and any(rows.watchdog_state):
+        state_panel(axes[n + 1], rows.time, rows.watchdog_state, label='watchdog state',
+                    color='tab:blue', alpha=0.5)
+        axes[n + 1].lines[-1].set(linewidth=3.0, label='recorded (~/status)')
+    state_panel(axes[n + 1], t, trace.state, label='watchdog state', color='tab:orange',
+                linestyle='--')
+    axes[n + 1].lines[-1].set_label('replayed')
+    legend_outside(axes[n + 1])
+    axes[-1].set_xlabel(xlabel)
+    axes[0].set_title(f'{skill}: joint velocity commands, recorded and replayed')
+    figures['commands.png'] = fig
+
+    constraints = list(trace.constraints)
+    fig, axes = figure(2, height=3.6)
+    palette = styles(len(constraints))
+    dots = marker_styles(len(constraints))
+    for what, ax, values in (('error', axes[0], trace.error), ('slack', axes[1], trace.slack)):
+        for con, style, dot in zip(constraints, palette, dots):
+            idx = trace.constraints[con]
+            if not idx:
+                continue
+            ours = above_floor(np.nanmax(np.abs(values[:, idx]), axis=1))
+            note = '' if np.isfinite(ours).any() else f', always <= {LOG_FLOOR:g}'
+            ax.semilogy(t, ours, lw=1.0, label=f'{con} (replayed{note})', **style)
+            recorded = [rows.values.get(trace.row_names[i], {}).get(what) for i in idx]
+            recorded = [r for r in recorded if r is not None]
+            if recorded and len(rows.time):
+                theirs = above_floor(np.nanmax(np.abs(np.vstack(recorded)), axis=0))
+                note = '' if np.isfinite(theirs).any() else f', always <= {LOG_FLOOR:g}'
+                ax.semilogy(rows.time, theirs, linestyle='none', ms=3,
+                            label=f'{con} (recorded{note})', **dot)
+        ax.grid(alpha=0.3, which='both')
+        legend_outside(ax, fontsize=7)
+    axes[0].set_ylabel('|error| (unit of its function)')
+    axes[1].set_ylabel('|slack| (unit of its function / s)')
+    axes[1].set_xlabel(xlabel)
+    axes[0].set_title(f'{skill}: largest row of each constraint; lines: replayed, every tick; '
+                      'dots: recorded on ~/status\n'
+                      f'(values <= {LOG_FLOOR:g}, e.g. a bound not reached, are not drawn)')
+    figures['rows.png'] = fig
+    return figures
+
+
+def plot_replay(trace: ReplayTrace, rows: RecordedRows, joint_names: Sequence[str], skill: str,
+                out_dir: Path) -> list[Path]:
+    return [save(fig, out_dir / name)
+            for name, fig in replay_figures(trace, rows, joint_names, skill).items()]
+
+
+def lines_of(ax: Axes) -> Iterable[Any]:
+    """The data lines of a panel (for the rule checks)."""
+    return [line for line in ax.get_lines() if not line.get_label().startswith('_')]
+
+
+__all__ = ['COLOURS', 'LOG_FLOOR', 'WATCHDOG_LEVELS', 'above_floor', 'figure', 'label_steps',
+           'legend_outside', 'marker_styles', 'plot_replay', 'plot_simulation',
+           'replay_figures', 'save',
+           'shade_steps', 'simulation_figures', 'state_panel', 'styles', 'title_above_steps']

@@ -24,7 +24,9 @@ To reach other hosts, or ROS nodes using the default subnet discovery, set CYCLO
 yourself (the port then leaves Cyclone's sockets as Cyclone makes them), e.g.
 `export CYCLONEDDS_URI='<CycloneDDS><Domain Id="any"><General><Interfaces><NetworkInterface
 name="eth0"/></Interfaces></General></Domain></CycloneDDS>'`. The domain is ROS_DOMAIN_ID
-(default 0), as in ROS.
+(default 0), as in ROS. README "Running on more than one machine" gives the configuration we
+recommend for a cell (unicast peers, multicast off); test/integration/test_multihost.py runs the
+demo with it across three network namespaces.
 
 Nodes: `ros2 node list` is built only from rmw_dds_common/ParticipantEntitiesInfo samples on
 the DDS topic `ros_discovery_info` (reliable, transient local, keep last 1). Each sample holds

@@ -109,10 +109,13 @@ def running(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Driver, 
     (skills / 'keep_tool_vertical.yaml').write_text(
         text.replace('../robots/', str(ROOT / 'config' / 'robots') + '/'))
     env = dict(os.environ, PYTHONPATH=str(ROOT))
+    # No parameters file: the node's defaults (no person source, no mapped inputs) keep the
+    # watchdog out of the way. config/controller.yaml, keyed '/**', would reach this namespaced
+    # node and add the cell's person source, which nobody publishes here.
     proc = subprocess.Popen(
         [sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport', 'dds',
-         '--ros-args', '--params-file', str(ROOT / 'config' / 'controller.yaml'),
-         '-r', f'__ns:={NS}', '-p', f'skills_folder:={skills}', '-p', 'rate_hz:=250.0',
+         '--ros-args', '-r', f'__ns:={NS}', '-p', f'skills_folder:={skills}',
+         '-p', 'rate_hz:=250.0',
          '-p', 'status_rate_hz:=10.0', '-p', 'watchdog.joint_state_timeout:=0.5'],
         cwd=work, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     driver = Driver()
