@@ -351,7 +351,7 @@ def echo(args: argparse.Namespace) -> int:
             publishers = port.publisher_qos(topic)
         if not publishers:
             raise Unreachable(f'no publisher on {topic} within {client.timeout:g} s; '
-                              f'{client._where()}')
+                              f'{client._where()}{_tilde_hint(args.topic)}')
         found = sorted({ros_type for ros_type, _, _ in publishers})
         if wanted is None and len(found) > 1:
             raise ConstraintCtrlError(f'{topic} is published with several types '
@@ -369,6 +369,7 @@ def echo(args: argparse.Namespace) -> int:
               + ('Ctrl-C to stop' if args.count is None else f'{args.count} message(s)'),
               file=sys.stderr, flush=True)
         printed = 0
+        restore = _sigterm_ends_echo()
         try:
             while args.count is None or printed < args.count:
                 try:
@@ -379,11 +380,35 @@ def echo(args: argparse.Namespace) -> int:
                 sys.stdout.flush()
                 printed += 1
         except KeyboardInterrupt:
-            pass                      # Ctrl-C is how an endless echo ends
+            pass                      # Ctrl-C (or SIGTERM) is how an endless echo ends
         finally:
+            restore()
             port.shutdown()           # ends spin(); closing the port follows in close()
             spinner.join(5.0)
         return 0
+
+
+def _sigterm_ends_echo() -> Any:
+    """SIGTERM ends an echo like Ctrl-C, so the node is withdrawn and its reader unmatched
+    (a reader killed without that stays matched at the publisher until its lease ends).
+    Returns the function that puts the previous handler back."""
+    import signal
+    if threading.current_thread() is not threading.main_thread():
+        return lambda: None
+
+    def stop(signum: int, frame: object) -> None:
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, stop)
+    return lambda: signal.signal(signal.SIGTERM, previous)
+
+
+def _tilde_hint(text: str) -> str:
+    home = os.path.expanduser('~')
+    if home not in ('', '/', '~') and text.startswith(home + '/'):
+        return (f" (did the shell replace '~' with {home}? quote the name: "
+                f"'~/{text[len(home) + 1:]}')")
+    return ''
 
 
 # ------------------------------------------------------------------------------- command line
