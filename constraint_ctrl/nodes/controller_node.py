@@ -767,10 +767,10 @@ Parameters to start with (all of them: README, "The controller node"):
   inputs.*, people.sources skill inputs and person detectors -> topics; a complete example:
                            {cfg / 'controller.yaml'}
 
-Your own skills against the simulated cell (a skill names its robot relative to its own file,
-so the robots folder goes beside the skills):
-  mkdir my_cell && cp -r {cfg / 'skills'} {cfg / 'robots'} my_cell/
-  constraint-ctrl sim & constraint-ctrl run --ros-args --params-file {cfg / 'controller.yaml'} -p skills_folder:=my_cell/skills -p initial_skill:=move_to_point
+Your own skills against the simulated cell (a skill names its robot and offline scene relative
+to its own file, so copy the whole folder):
+  cp -r {cfg} my_cell
+  constraint-ctrl sim & constraint-ctrl run --ros-args --params-file my_cell/controller.yaml -p skills_folder:=my_cell/skills -p initial_skill:=move_to_point
 then drive it without ROS: constraint-ctrl call activate SKILL, constraint-ctrl param set
 NAME VALUE, constraint-ctrl echo '~/events' (each has its --help).""")
     return parser
