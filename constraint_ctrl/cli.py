@@ -236,6 +236,10 @@ def build_parser() -> argparse.ArgumentParser:
 
     _add_bag_and_pose_commands(sub)
 
+    # driving a running node without ROS: call, param, echo (tools/remote.py)
+    from .tools.remote import add_commands as add_remote_commands
+    add_remote_commands(sub)
+
     for name, (_, text) in NODE_COMMANDS.items():
         p = sub.add_parser(name, help=text + ' (see: constraint-ctrl ' + name + ' --help)',
                            add_help=False)

@@ -76,4 +76,24 @@ def transport_options(parser: argparse.ArgumentParser) -> None:
                              'on rclpy, jazzy on the DDS transport')
 
 
-__all__ = ['config_dir', 'serve', 'split_ros_args', 'transport_options']
+ROS_ARGUMENTS_HELP = """\
+ROS arguments (everything after --ros-args goes to the node, as with ros2 run; the same on
+the DDS transport and on rclpy):
+  -p NAME:=VALUE       set a parameter; VALUE is YAML: 250.0 is a double, 250 an integer
+  --params-file FILE   a ROS 2 parameters file; a -p after it overrides the file
+  -r FROM:=TO          remap a name (-r __node:=NAME and -r __ns:=/NS rename the node)
+  --log-level LEVEL    debug, info, warn or error"""
+
+
+def ros_arguments(parser: argparse.ArgumentParser, epilog: str) -> None:
+    """Show `--ros-args ...` in a node command's usage and help, with what may follow it and
+    ``epilog`` (the node's parameters, an example). The command splits the ROS arguments off
+    before parsing (split_ros_args), so this option only documents them."""
+    parser.add_argument('--ros-args', nargs=argparse.REMAINDER, metavar='ARG',
+                        help='ROS arguments for the node (see below)')
+    parser.formatter_class = argparse.RawDescriptionHelpFormatter
+    parser.epilog = ROS_ARGUMENTS_HELP + '\n\n' + epilog
+
+
+__all__ = ['ROS_ARGUMENTS_HELP', 'config_dir', 'ros_arguments', 'serve', 'split_ros_args',
+           'transport_options']

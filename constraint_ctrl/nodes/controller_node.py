@@ -52,7 +52,7 @@ from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
 from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
 from ..transport.port import RECEIVE_THREADS
-from .common import config_dir, serve, split_ros_args, transport_options
+from .common import config_dir, ros_arguments, serve, split_ros_args, transport_options
 from ..problem_log import ProblemLog
 from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     joint_sample_problem, parse_input_mappings
@@ -823,6 +823,21 @@ def build_arg_parser() -> argparse.ArgumentParser:
                              'tick, and the transport receive threads) SCHED_FIFO at this '
                              'priority (1-99) and lock memory (mlockall), where permitted; '
                              'otherwise normal scheduling, said in the log')
+    cfg = config_dir()
+    ros_arguments(parser, f"""\
+Parameters to start with (all of them: README, "The controller node"):
+  skills_folder            default: {cfg / 'skills'} (loads every *.yaml in it)
+  initial_skill            skill to activate once joint_states arrive (default: none)
+  robot_description_file   default: {cfg / 'robots' / 'six_axis_arm.urdf'}
+  inputs.*, people.sources skill inputs and person detectors -> topics; a complete example:
+                           {cfg / 'controller.yaml'}
+
+Your own skills against the simulated cell (a skill names its robot and offline scene relative
+to its own file, so copy the whole folder):
+  cp -r {cfg} my_cell
+  constraint-ctrl sim & constraint-ctrl run --ros-args --params-file my_cell/controller.yaml -p skills_folder:=my_cell/skills -p initial_skill:=move_to_point
+then drive it without ROS: constraint-ctrl call activate SKILL, constraint-ctrl param set
+NAME VALUE, constraint-ctrl echo '~/events' (each has its --help).""")
     return parser
 
 

@@ -18,7 +18,7 @@ from typing import Any
 
 from ..plan.machine import Activate, Finish, PlanRunner
 from ..plan.plan import Plan, load_plan
-from .common import split_ros_args, transport_options
+from .common import config_dir, ros_arguments, split_ros_args, transport_options
 
 NODE_NAME = 'task_sequencer'
 
@@ -123,6 +123,11 @@ def run(argv: list[str]) -> int:
     parser.add_argument('plan', type=Path, help='plan YAML file')
     transport_options(parser)
     parser.add_argument('--report', type=Path, help='write step durations and outcome (JSON)')
+    ros_arguments(parser, f"""\
+The plan names the controller node and, per step, the skill, the tunables to set and the event
+that ends it (README, "Sequencer and plans"). With the simulator and the controller running
+(see constraint-ctrl run --help):
+  constraint-ctrl sequence {config_dir() / 'plans' / 'gearbox_assembly.yaml'} --report out/steps.json""")
     args = parser.parse_args(ours)
     plan = load_plan(args.plan)
     from ..transport.port import open_port

@@ -32,7 +32,7 @@ from ..errors import ConstraintCtrlError
 from ..model.kinematics import RobotModel
 from ..sim.scene import load_scene
 from ..sim.world import World
-from .common import config_dir, serve, split_ros_args, transport_options
+from .common import config_dir, ros_arguments, serve, split_ros_args, transport_options
 
 NODE_NAME = 'cell_simulator'
 RANGE_FRAMES = ('range_left', 'range_right', 'range_front')
@@ -201,6 +201,18 @@ def run(argv: list[str]) -> int:
     parser.add_argument('--log', type=Path, help='save the true state to this .npz at exit')
     parser.add_argument('--publish-clock', action='store_true',
                         help='publish the simulated time on /clock and stamp messages with it')
+    cfg = config_dir()
+    ros_arguments(parser, f"""\
+Parameters:
+  scene_file       default: {cfg / 'scenes' / 'gearbox_cell.yaml'} (robot, parts, operator)
+  command_topic    velocity commands it integrates (default: /constraint_controller/command)
+  joint_names      order of the command (default: the robot's)
+  range_rate_hz, wrench_rate_hz, people_rate_hz   sensor rates (100.0, 500.0, 30.0)
+It publishes /joint_states, /tool/range_left, /tool/range_right, /tool/range_front,
+/tool/wrench and /cell/operator.
+
+With the controller (see constraint-ctrl run --help):
+  constraint-ctrl sim & constraint-ctrl run --ros-args --params-file {cfg / 'controller.yaml'}""")
     args = parser.parse_args(ours)
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)

@@ -57,6 +57,7 @@ from constraint_ctrl.transport import dds_raw
 from constraint_ctrl.transport.dds_discovery import (NodeAnnouncer, confine_to_loopback, domain_id,
                                                      ensure_cyclone_config, socket_inodes)
 from constraint_ctrl.transport.dds_dispatch import Dispatcher, FixedRateTimer
+from constraint_ctrl.transport.dds_graph import Graph
 from constraint_ctrl.transport.dds_parameters import ParameterStore
 from constraint_ctrl.transport.dds_qos import reader_qos, type_hash_tag, writer_qos
 from constraint_ctrl.transport.dds_services import ServiceClient, ServiceServer
@@ -65,9 +66,9 @@ from constraint_ctrl.transport.dds_types import codec_of, ros_type_of, types_for
 from constraint_ctrl.transport.port import DISTROS, LOG_LEVELS, ParameterView
 from constraint_ctrl.transport.qos import CLOCK, PROFILES, ROSOUT, QosProfile, profile
 from constraint_ctrl.transport.receive_faults import FaultLog, SourceFaults
-from constraint_ctrl.transport.ros_args import (node_fqn, node_identity, overrides_for,
-                                                parse_ros_args, resolve_name, topic_dds_name,
-                                                validate_node_name)
+from constraint_ctrl.transport.ros_args import (expand_name, node_fqn, node_identity,
+                                                overrides_for, parse_ros_args, resolve_name,
+                                                topic_dds_name, validate_node_name)
 from constraint_ctrl.transport.signals import StopSignals
 
 _PARAMETER_SERVICES = (
@@ -87,19 +88,21 @@ def delete_entity(entity: Any) -> None:
     entity.__del__()
 
 
+def wait_for_acks(writer: DataWriter, seconds: float) -> bool:
+    """True when every matched reliable reader acknowledged all the writer's data in time.
+
+    A reader that vanished without unmatching (its process killed) never acknowledges, so the
+    wait ends by its timeout; cyclonedds-python 11.0.1 then raises AttributeError instead of
+    returning False (cyclonedds/pub.py, DataWriter.wait_for_acks, compares the return code with
+    `Exception.DDS_RETCODE_TIMEOUT`). Other failures still raise DDSException."""
+    try:
+        return bool(writer.wait_for_acks(duration(seconds=seconds)))
+    except AttributeError:
+        return False
+
+
 #: rcl_interfaces/Log severities (rcl_interfaces/msg/Log.msg constants) of our log levels.
 _ROSOUT_LEVELS = {'debug': 10, 'info': 20, 'warn': 30, 'error': 40}
-
-
-def _wait_for_acks(writer: DataWriter, seconds: float) -> None:
-    """Wait up to ``seconds`` for reliable readers to acknowledge; a reader that never does
-    (its process paused or gone without a goodbye) must not stop the shutdown.
-    cyclonedds-python 11.0.1's DataWriter.wait_for_acks raises AttributeError instead of
-    returning False on a timeout (it looks the code up on the builtin Exception)."""
-    try:
-        writer.wait_for_acks(duration(seconds=seconds))
-    except (AttributeError, DDSException):
-        pass
 
 
 class DdsPublisher:
@@ -171,6 +174,7 @@ class DdsPort:
         self._signals = StopSignals(self._stop.set)
         self._spinning = False
         self._closed = False
+        self._graph: Graph | None = None
         self._topic_dispatch = Dispatcher(self._participant, f'{self.node_name}-topics',
                                           self._faults)
         self._service_dispatch = Dispatcher(self._participant, f'{self.node_name}-services',
@@ -347,6 +351,33 @@ class DdsPort:
     def add_parameter_listener(self, callback: Any) -> None:
         self._params.add_listener(callback)
 
+    # --- the ROS graph (rclpy Node's graph queries; dds_graph.py) ----------------------------
+
+    def _graph_view(self) -> Graph:
+        if self._graph is None:
+            self._graph = Graph(self._participant, self.types)
+        return self._graph
+
+    def get_topic_names_and_types(self) -> list[tuple[str, list[str]]]:
+        return self._graph_view().topic_names_and_types()
+
+    def count_publishers(self, topic: str) -> int:
+        """As rclpy: the name is expanded against this node, not remapped."""
+        return self._graph_view().count_publishers(
+            expand_name(topic, self.node_name, self.namespace))
+
+    def get_node_names_and_namespaces(self) -> list[tuple[str, str]]:
+        return self._graph_view().node_names_and_namespaces()
+
+    def get_service_names_and_types_by_node(self, node_name: str,
+                                            node_namespace: str) -> list[tuple[str, list[str]]]:
+        return self._graph_view().service_names_and_types_by_node(node_name, node_namespace)
+
+    def publisher_qos(self, topic: str) -> list[tuple[str, bool, bool]]:
+        """DDS port only: (type, reliable, transient local) of each publisher on the topic
+        (expanded as in count_publishers), so a reader can pick a QoS that matches them."""
+        return self._graph_view().publishers(expand_name(topic, self.node_name, self.namespace))
+
     # --- simulated time ---------------------------------------------------------------------
 
     def _on_parameters(self, values: dict[str, Any]) -> None:
@@ -404,6 +435,9 @@ class DdsPort:
         for writer in [*self._writers, self._announcer.writer]:
             left = deadline - time.monotonic()
             if left > 0:
-                _wait_for_acks(writer, left)
+                try:
+                    wait_for_acks(writer, left)   # a reader that never acknowledges: timeout
+                except DDSException:
+                    pass                          # the shutdown goes on regardless
         delete_entity(self._participant)   # and with it every entity of the node
         self._signals.release()

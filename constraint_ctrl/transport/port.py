@@ -155,6 +155,19 @@ class Port(Protocol):
             self, callback: Callable[[dict[str, ParameterValue]], None]) -> None:
         """Called after values changed, with the new values."""
 
+    def get_topic_names_and_types(self) -> list[tuple[str, list[str]]]:
+        """rclpy Node.get_topic_names_and_types(): every topic discovery knows, sorted."""
+
+    def count_publishers(self, topic: str) -> int:
+        """rclpy Node.count_publishers(): the name expanded against this node, not remapped."""
+
+    def get_node_names_and_namespaces(self) -> list[tuple[str, str]]:
+        """rclpy Node.get_node_names_and_namespaces(): [(name, namespace)] of the graph."""
+
+    def get_service_names_and_types_by_node(self, node_name: str,
+                                            node_namespace: str) -> list[tuple[str, list[str]]]:
+        """rclpy Node.get_service_names_and_types_by_node(): the services that node serves."""
+
     def serialize(self, msg: Any) -> bytes:
         """CDR with the 4-byte encapsulation header, as stored in rosbag2."""
 

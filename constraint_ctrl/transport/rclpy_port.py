@@ -302,6 +302,21 @@ class RclpyPort:
                                          callback_group=self._client_group)
         return RclpyClient(self, client)
 
+    # --- the ROS graph ---------------------------------------------------------------------
+
+    def get_topic_names_and_types(self) -> list[tuple[str, list[str]]]:
+        return self.node.get_topic_names_and_types()
+
+    def count_publishers(self, topic: str) -> int:
+        return self.node.count_publishers(topic)
+
+    def get_node_names_and_namespaces(self) -> list[tuple[str, str]]:
+        return self.node.get_node_names_and_namespaces()
+
+    def get_service_names_and_types_by_node(self, node_name: str,
+                                            node_namespace: str) -> list[tuple[str, list[str]]]:
+        return self.node.get_service_names_and_types_by_node(node_name, node_namespace)
+
     def create_timer(self, period_s: float, callback: Callable[[], None], *,
                      control: bool = False) -> RclpyTimer:
         from rclpy.clock import Clock, ClockType
