@@ -64,6 +64,7 @@ class NodeHarness:
             log(level, text)
         self.port.log = recording_log            # type: ignore[method-assign]
         self.node = ControllerNode(self.port)
+        assert self.node.lifecycle.trigger('configure') and self.node.lifecycle.trigger('activate')
         self.t = self.port.types
         self.q = np.array(START, dtype=float)     # the robot: integrates the commands
         # a person far away on every configured source (a stale source stops the arm)
