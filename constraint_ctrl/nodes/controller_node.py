@@ -138,6 +138,7 @@ class ControllerNode:
         self._bag_names: dict[str, str] = {}               # publisher's topic -> name used
         self._recorded_here: set[str] = set()  # recorded by a subscription of this config
         self._record_errors = 0
+        self._open_recorder()
         port.set_parameter_validator(self._validate_parameters)
         port.add_parameter_listener(self._apply_parameters)
         self.lifecycle = serve_lifecycle(port, {
@@ -171,7 +172,9 @@ class ControllerNode:
         initial_skill, once per configuration, when joint states arrive)."""
         with self._tick_lock:
             self.active = True
-        self.port.log('info', 'active: control ticks')
+        self.port.log('info', f'{NODE_NAME} ready (active): {len(self.library.names())} '
+                      f'skills, {self.rate:g} Hz, tick on {self.tick_on}, transport '
+                      f'{type(self.port).__name__}')
         return None
 
     def deactivate(self) -> str | None:
@@ -340,13 +343,11 @@ class ControllerNode:
         self._status = StatusWorker(
             self._publish_status, port.log, name=f'{NODE_NAME}-status',
             on_start=None if self.realtime is None else lambda: self._enter_realtime(below=1))
-        self._open_recorder()
+        self._add_bag_topics()
         with self._tick_lock:
             self.configured = True
         self.timer = port.create_timer(self.dt, self._on_timer, control=True)
-        port.log('info', f'{NODE_NAME} configured (inactive): {len(self.library.names())} '
-                 f'skills, {self.rate:g} Hz, tick on {self.tick_on}, transport '
-                 f'{type(port).__name__}')
+        port.log('info', f'{NODE_NAME} configured (inactive: zero commands and status)')
 
     def _release(self, keep_publishers: bool = False) -> None:
         """Undo configure (also a partial one): stop ticking, destroy what it created,
@@ -387,7 +388,7 @@ class ControllerNode:
         self._made.publishers.append(pub)
         name = str(pub.topic_name)
         self._bag_names[topic] = name
-        self._bag_topics.setdefault(name, (self.port.type_name(msg_type), qos))
+        self._bag_add(name, self.port.type_name(msg_type), qos)
         return pub
 
     def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
@@ -406,29 +407,31 @@ class ControllerNode:
         name = str(sub.topic_name)
         if name not in self._recorded_here:
             self._recorded_here.add(name)
-            self._bag_topics.setdefault(name, (self.port.type_name(msg_type), 'sensor'))
+            self._bag_add(name, self.port.type_name(msg_type), 'sensor')
             records_to.append(name)
 
     def _open_recorder(self) -> None:
-        """Last step of the first configure, so a node that fails to configure leaves no bag
-        folder behind; later configures add the topics the bag does not have yet."""
+        """At start (a folder that cannot be created ends `run` with its reason, as a bad
+        option does); the topics come with each configure (_add_bag_topics)."""
         if self._record_to is None:
             return
-        if self.recorder is not None:
-            for name, (ros_type, qos) in self._bag_topics.items():
-                if name not in self._bag_added:
-                    self.recorder.add_topic(name, ros_type, qos)
-                    self._bag_added.add(name)
-            return
         from ..transport.bag import BagRecorder
-        recorder = BagRecorder(self._record_to, distro=self.port.distro,
-                               on_failure=lambda text: self.port.log('error', text))
-        for name, (ros_type, qos) in self._bag_topics.items():
-            recorder.add_topic(name, ros_type, qos)
+        self.recorder = BagRecorder(self._record_to, distro=self.port.distro,
+                                    on_failure=lambda text: self.port.log('error', text))
+
+    def _bag_add(self, name: str, ros_type: str, qos: str) -> None:
+        """A topic of this configuration into the bag (once over all configurations), before
+        its first message can come."""
+        self._bag_topics.setdefault(name, (ros_type, qos))
+        if self.recorder is not None and name not in self._bag_added:
+            self.recorder.add_topic(name, ros_type, qos)
             self._bag_added.add(name)
-        self.recorder = recorder
-        self.port.log('info', f'recording {len(self._bag_topics)} topics to {self._record_to} '
-                      f'(rosbag2 for ROS 2 {self.port.distro})')
+
+    def _add_bag_topics(self) -> None:
+        """Last step of configure: say what is recorded."""
+        if self.recorder is not None:
+            self.port.log('info', f'recording {len(self._bag_added)} topics to '
+                          f'{self._record_to} (rosbag2 for ROS 2 {self.port.distro})')
 
     def _record(self, name: str, msg: Any) -> None:
         """Never lets recording disturb control: a failure here is counted and logged once."""
