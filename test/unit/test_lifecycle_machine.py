@@ -13,6 +13,8 @@ References:
 """
 from __future__ import annotations
 
+from typing import Any
+
 import pytest
 from rosbags.typesys import Stores, get_typestore
 
@@ -107,51 +109,58 @@ def test_available_transitions_per_primary_state() -> None:
     assert machine.state == lc.FINALIZED and listed() == []
 
 
+DRIVE = {'unconfigured': [], 'inactive': ['configure'], 'active': ['configure', 'activate'],
+         'finalized': ['shutdown']}
+RESULT_LABEL = {'ok': lc.SUCCESS, 'fail': lc.FAILURE, 'raise': lc.ERROR}
+
+
+def run_case(start: str, label: str, outcome: str, error_step_ok: bool) -> tuple[Any, ...]:
+    """From ``start``, request ``label`` whose step ends in ``outcome``; (outcome, events,
+    end state)."""
+    events: list[tuple[str, str, str]] = []
+    mode = {'step': 'ok'}
+
+    def step() -> str | None:
+        if mode['step'] == 'fail':
+            return 'refused for the test'
+        if mode['step'] == 'raise':
+            msg = 'broken for the test'
+            raise RuntimeError(msg)
+        return None
+
+    def error_step() -> str | None:
+        return None if error_step_ok else 'cannot recover'
+    steps: dict[str, Any] = {name: step for name in
+                             ('configure', 'cleanup', 'activate', 'deactivate', 'shutdown')}
+    machine = LifecycleMachine({**steps, 'error': error_step},
+                               lambda t: events.append((t.label, t.start.label, t.goal.label)))
+    for request in DRIVE[start]:
+        assert machine.change_state(label=request).ok
+    assert machine.state.label == start
+    events.clear()
+    mode['step'] = outcome
+    result = machine.change_state(label=label)
+    return result, events, machine.state.label
+
+
 def test_every_request_and_outcome_leads_where_the_design_says() -> None:
     """For each primary state, each request and each step outcome (success, failure with a
     reason, exception), with error processing succeeding or failing."""
-    drive = {'unconfigured': [], 'inactive': ['configure'],
-             'active': ['configure', 'activate'], 'finalized': ['shutdown']}
     for start, requests in REQUESTS.items():
         for label, transition_state in requests:
             for outcome, goal in zip(('ok', 'fail', 'raise'), OUTCOMES[transition_state]):
                 for error_step_ok in (True, False):
-                    events: list[tuple[str, str, str]] = []
-                    mode = {'step': 'ok'}
-
-                    def step() -> str | None:
-                        if mode['step'] == 'fail':
-                            return 'refused for the test'
-                        if mode['step'] == 'raise':
-                            msg = 'broken for the test'
-                            raise RuntimeError(msg)
-                        return None
-
-                    def error_step() -> str | None:
-                        return None if error_step_ok else 'cannot recover'
-                    steps = {name: step for name in
-                             ('configure', 'cleanup', 'activate', 'deactivate', 'shutdown')}
-                    machine = LifecycleMachine({**steps, 'error': error_step},
-                                               lambda t: events.append(
-                                                   (t.label, t.start.label, t.goal.label)))
-                    for request in drive[start]:
-                        assert machine.change_state(label=request).ok
-                    assert machine.state.label == start
-                    events.clear()
-                    mode['step'] = outcome
-                    result = machine.change_state(label=label)
+                    result, events, state = run_case(start, label, outcome, error_step_ok)
                     assert result.ok == (outcome == 'ok')
                     end = goal
-                    expected = [(label, start, transition_state)]
-                    result_label = {'ok': lc.SUCCESS, 'fail': lc.FAILURE,
-                                    'raise': lc.ERROR}[outcome]
-                    expected.append((result_label, transition_state, goal))
+                    expected = [(label, start, transition_state),
+                                (RESULT_LABEL[outcome], transition_state, goal)]
                     if goal == 'errorprocessing':
                         end = OUTCOMES['errorprocessing'][0 if error_step_ok else 1]
                         expected.append((lc.SUCCESS if error_step_ok else lc.FAILURE,
                                          'errorprocessing', end))
                     assert events == expected, (start, label, outcome)
-                    assert machine.state.label == end == result.state.label
+                    assert state == end == result.state.label
                     if outcome == 'fail':
                         assert result.reason == 'refused for the test'
                     if outcome == 'raise':
