@@ -43,6 +43,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 import threading
 import time
@@ -138,7 +139,6 @@ class ControllerNode:
         self._bag_names: dict[str, str] = {}               # publisher's topic -> name used
         self._recorded_here: set[str] = set()  # recorded by a subscription of this config
         self._record_errors = 0
-        self._open_recorder()
         port.set_parameter_validator(self._validate_parameters)
         port.add_parameter_listener(self._apply_parameters)
         self.lifecycle = serve_lifecycle(port, {
@@ -411,13 +411,18 @@ class ControllerNode:
             records_to.append(name)
 
     def _open_recorder(self) -> None:
-        """At start (a folder that cannot be created ends `run` with its reason, as a bad
-        option does); the topics come with each configure (_add_bag_topics)."""
-        if self._record_to is None:
+        """At the end of the first configure, so the bag folder appears once the node is
+        configured (`constraint-ctrl demo` starts its sequencer then) and a node that never
+        configures leaves none behind; `run` checks the folder at start (record_folder_problem)."""
+        if self._record_to is None or self.recorder is not None:
             return
         from ..transport.bag import BagRecorder
-        self.recorder = BagRecorder(self._record_to, distro=self.port.distro,
-                                    on_failure=lambda text: self.port.log('error', text))
+        recorder = BagRecorder(self._record_to, distro=self.port.distro,
+                               on_failure=lambda text: self.port.log('error', text))
+        for name, (ros_type, qos) in self._bag_topics.items():
+            recorder.add_topic(name, ros_type, qos)
+            self._bag_added.add(name)
+        self.recorder = recorder
 
     def _bag_add(self, name: str, ros_type: str, qos: str) -> None:
         """A topic of this configuration into the bag (once over all configurations), before
@@ -428,7 +433,8 @@ class ControllerNode:
             self._bag_added.add(name)
 
     def _add_bag_topics(self) -> None:
-        """Last step of configure: say what is recorded."""
+        """Last step of configure: open the bag (first time) and say what is recorded."""
+        self._open_recorder()
         if self.recorder is not None:
             self.port.log('info', f'recording {len(self._bag_added)} topics to '
                           f'{self._record_to} (rosbag2 for ROS 2 {self.port.distro})')
@@ -1008,6 +1014,22 @@ class ControllerNode:
                               f'messages, {recorder.dropped + self._record_errors} dropped')
 
 
+def record_folder_problem(path: Path) -> str | None:
+    """Why --record PATH cannot become a new bag folder, checked at start (the bag itself is
+    created by the first configure): it exists, or its nearest existing parent is not a
+    writable folder."""
+    if path.exists():
+        return f'--record {path}: it exists already; give a new folder for the bag'
+    parent = path.absolute().parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir():
+        return f'--record {path}: cannot create the bag folder there ({parent} is not a folder)'
+    if not os.access(parent, os.W_OK | os.X_OK):
+        return f'--record {path}: cannot create the bag folder there ({parent} is not writable)'
+    return None
+
+
 def build_arg_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog='constraint-ctrl run',
                                      description='Start the controller node.')
@@ -1052,6 +1074,9 @@ def run(argv: list[str]) -> int:
     if args.realtime is not None and check_priority(args.realtime):
         parser.error(check_priority(args.realtime))
     realtime = RealtimeControl(args.realtime) if args.realtime is not None else None
+    problem = record_folder_problem(args.record) if args.record is not None else None
+    if problem:
+        raise ConstraintCtrlError(problem)
     from ..transport.port import open_port
     port = open_port(args.transport, NODE_NAME, ros, distro=args.distro, lifecycle=True)
 
