@@ -52,7 +52,9 @@ def generate_launch_description() -> LaunchDescription:
             LogInfo(msg='demo: the controller is active; starting the task sequencer'),
             sequencer]))
     # No target: whichever of the three processes exits first ends the demo.
-    stop_all = RegisterEventHandler(OnProcessExit(on_exit=[
+    # Only the first exit emits Shutdown: launch_ros' ROS adapter (running for the lifecycle
+    # events) shuts down on the first Shutdown event and raises on a second one.
+    stop_all = RegisterEventHandler(OnProcessExit(handle_once=True, on_exit=[
         LogInfo(msg='demo: a node exited (the plan ended or a node stopped); shutting down'),
         EmitEvent(event=Shutdown(reason='a demo node exited'))]))
     return LaunchDescription([
