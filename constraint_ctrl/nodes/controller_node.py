@@ -223,12 +223,23 @@ class ControllerNode:
         if self.loop is not None:
             self.loop.active = None
 
+    @staticmethod
+    def _read_at_configure(name: str) -> bool:
+        """A node parameter that configure reads: settable while unconfigured only."""
+        return name in STARTUP_PARAMETERS or (name.startswith('watchdog.')
+                                              and name != 'watchdog.reduced_mode')
+
     def _param(self, name: str, default: Any, description: str,
                read_only: bool = True) -> Any:
         """Declare a node parameter at the first configure; later configures read the value
-        in force (read-only parameters cannot be undeclared, so they stay through cleanup)."""
+        in force. Those read at configure stay settable, but the validator accepts a new value
+        only while unconfigured (after a failed configure or a cleanup); the rest are
+        read-only (inputs.*)."""
         if name in self._node_parameters:
             return self.port.get_parameter(name).value
+        if self._read_at_configure(name):
+            read_only = False
+            description += ' (read at configure; set it while unconfigured)'
         self._declaring.add(name)
         try:
             value = self.port.declare_parameter(name, default, description,
@@ -893,7 +904,7 @@ class ControllerNode:
     def _not_settable(self, name: str) -> str:
         """Why a parameter that is not a run-time parameter of this node cannot be set."""
         if name in STARTUP_PARAMETERS or name.startswith('watchdog.'):
-            return f'{name} is read at start-up only; restart the node to change it'
+            return f'{name} is read at configure; set it while the node is unconfigured'
         if name.startswith('inputs.'):
             return (f'{name}: input topics are mapped at start-up only; restart the node to '
                     'change them')
@@ -924,6 +935,12 @@ class ControllerNode:
                 if not isinstance(value, bool):
                     return False, f'{name} must be true or false, got {value!r}'
                 continue
+            if self._read_at_configure(name) and name in self._node_parameters:
+                if self.configured:
+                    return False, (f'{name} is read at configure: clean the node up first '
+                                   '(ros2 lifecycle set <node> cleanup), set it, then '
+                                   'configure again')
+                continue                  # read by the next configure
             found = self._tunable(name)
             if found is None:
                 return False, self._not_settable(name)
