@@ -622,6 +622,8 @@ class ControllerNode:
                 self._send(out)
             else:
                 self._send_zero()
+                if self.loop.active is not None:   # a switch queued before deactivate
+                    self._hold()
             if self._answered_arrival:
                 self._latency_ns[self._latency_count % self._latency_ns.size] = \
                     time.perf_counter_ns() - self._answered_arrival
