@@ -81,7 +81,8 @@ class _Request:
     """A switch asked for by another thread; ``done`` is set once a tick has run its outcome.
 
     ``kind`` is 'activate' (switch to ``name``), 'reload' (the running skill ``name`` takes
-    its reloaded version) or 'hold' (to the built-in hold). ``params`` are tunable values by name, applied with the switch.
+    its reloaded version) or 'hold' (to the built-in hold). ``params`` are tunable values by
+    name, applied with the switch.
     """
 
     def __init__(self, name: str, params: Mapping[str, float] | None = None,

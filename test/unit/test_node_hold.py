@@ -10,7 +10,7 @@ kinematics, see test_loop_hold.py).
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Iterator
+from collections.abc import Iterator
 
 import numpy as np
 import pytest

@@ -66,7 +66,8 @@ def test_did_you_mean_follows_difflib() -> None:
 
 def test_a_plan_the_controller_can_run_has_no_problems(tmp_path: Path) -> None:
     path = plan_file(tmp_path, """\
-        - {name: a, skill: move_to_point, set: {goal_x: 0.5, goal_z: 0.3}, done_when: arrived, timeout: 5}
+        - {name: a, skill: move_to_point, set: {goal_x: 0.5, goal_z: 0.3},
+           done_when: arrived, timeout: 5}
         - {name: b, skill: seat_gear, duration: 2}
         - {name: c, skill: hold, duration: 1}
         """)
