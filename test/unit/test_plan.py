@@ -375,3 +375,17 @@ def test_edited_plan_text_loads_or_raises_plan_error(tmp_path: Path, cut: int, l
         load_plan(path)
     except PlanError as error:
         assert error.file == str(path) and error.message
+
+
+def test_readme_plan_example_loads(tmp_path: Path) -> None:
+    """The plan example in README.md ("Sequencer and plans") is a valid plan as written."""
+    readme = (Path(__file__).resolve().parents[2] / 'README.md').read_text(encoding='utf-8')
+    blocks = [b for b in re.findall(r'```yaml\n(.*?)```', readme, flags=re.S)
+              if b.startswith('plan:')]
+    assert len(blocks) == 1, 'README.md should hold exactly one plan example'
+    path = tmp_path / 'readme_plan.yaml'
+    path.write_text(blocks[0], encoding='utf-8')
+    plan = load_plan(path)
+    assert [(s.name, s.skill, s.done_when, s.duration) for s in plan.steps] == [
+        ('approach', 'move_to_point', 'arrived', None), ('press', 'seat_gear', None, 2.0),
+        ('settle', 'hold', None, 0.5)]
