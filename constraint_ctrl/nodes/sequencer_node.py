@@ -39,8 +39,11 @@ NODE_NAME = 'task_sequencer'
 #: How long to wait for the controller's services to appear (s).
 SERVICE_WAIT_S = 10.0
 #: How long the skills named by the plan may take to appear in the ROS graph once the
-#: controller answers (discovery of a node's services lags behind its first service).
+#: controller answers (discovery of a node's services lags behind its first service) ...
 GRAPH_WAIT_S = 5.0
+#: ... unless the node's services have stopped changing for this long (then a skill still
+#: missing is not coming: a misspelt name fails in about this time, not GRAPH_WAIT_S).
+GRAPH_STABLE_S = 1.0
 #: Wait for a reply (an activation or a hold answers after one control tick; the controller
 #: gives up on a switch after 3 s).
 REPLY_S = 5.0
@@ -99,15 +102,21 @@ class Sequencer:
         namespace, _, base = controller.rpartition('/')
         needed = {s.skill for s in self.plan.steps if s.skill != HOLD}
         deadline = time.monotonic() + GRAPH_WAIT_S
+        seen: frozenset[str] = frozenset()
+        changed = time.monotonic()
         while True:
             try:
-                served = [name for name, _ in
-                          self.port.get_service_names_and_types_by_node(base, namespace or '/')]
+                served = frozenset(name for name, _ in self.port.get_service_names_and_types_by_node(
+                    base, namespace or '/'))
             except Exception:  # noqa: BLE001 - rclpy: node not in the graph yet
-                served = []
+                served = frozenset()
+            now = time.monotonic()
+            if served != seen:
+                seen, changed = served, now
             skills = skills_from_services(controller, served)
             hold = f'{controller}/{HOLD}' in served
-            if (needed <= skills and hold) or time.monotonic() >= deadline:
+            if (needed <= skills and hold) or now >= deadline or \
+                    (hold and now - changed >= GRAPH_STABLE_S):
                 return Offer(skills, parameters, hold)
             time.sleep(0.1)
 
