@@ -10,8 +10,11 @@ ControlLoop. Interface (names relative to the node, default node name constraint
   joint_names), ~/joint_command (sensor_msgs/JointState: the same velocities with names, stamped
   with the joint_states sample they answer), ~/events (std_msgs/String), ~/status
   (diagnostic_msgs/DiagnosticArray at status_rate_hz);
-- serves ~/skills/<skill>/activate and ~/reload_skills (std_srvs/Trigger) and the standard
-  parameter services; each skill's tunables are parameters <skill>.<tunable>.
+- serves ~/skills/<skill>/activate, ~/hold and ~/reload_skills (std_srvs/Trigger) and the
+  standard parameter services; each skill's tunables are parameters <skill>.<tunable>.
+
+The node starts in the control loop's built-in hold (zero velocity, watchdog active; see
+runtime/loop.py) and returns to it on ~/hold or activate_skill = hold.
 
 Joint states are judged per joint: a valid sample refreshes exactly the model joints it names,
 and every joint must be fresh for the watchdog to let the arm move; malformed samples are
@@ -45,7 +48,7 @@ import numpy as np
 
 from ..errors import ConstraintCtrlError, TransportError
 from ..model.kinematics import RobotModel
-from ..runtime.library import SkillLibrary
+from ..runtime.library import HOLD, SkillLibrary
 from ..runtime.loop import ControlLoop, InputSample, LoopOutput, Snapshot
 from ..runtime.realtime import RealtimeControl, check_priority, threads_named
 from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
@@ -132,8 +135,9 @@ class ControllerNode:
         self._initial = str(declare('initial_skill', '', 'skill to activate at start',
                                     read_only=True).value)
         declare('activate_skill', '', 'write-only (reads back empty): setting it activates that '
-                'skill, together with its tunables set in the same (atomic) call; the reply '
-                'comes after the first tick of the new skill, with its outcome')
+                'skill, together with its tunables set in the same (atomic) call, or the '
+                f'built-in hold ({HOLD}); the reply comes after the first tick of the new skill, '
+                'with its outcome')
         inputs = port.get_parameters_by_prefix('inputs')
         self.mappings = parse_input_mappings({k: v.value for k, v in inputs.items()})
         for key, param in inputs.items():   # mapped at start-up only: read-only from now on
@@ -193,6 +197,7 @@ class ControllerNode:
         self._services: dict[str, object] = {}
         port.create_service(t.Trigger, '~/reload_skills',
                             self._guarded('~/reload_skills', self._on_reload))
+        port.create_service(t.Trigger, '~/hold', self._guarded('~/hold', self._on_hold))
         for name in self.library.names():
             self._add_skill(name)
         port.set_parameter_validator(self._validate_parameters)
@@ -595,7 +600,14 @@ class ControllerNode:
             return response
         return callback
 
+    def _on_hold(self, request: Any, response: Any) -> Any:
+        """~/hold: the built-in hold from the next tick on; the reply comes after that tick."""
+        response.success, response.message = self.loop.request_hold(self._switch_timeout)
+        return response
+
     def _cannot_activate(self, name: str) -> str | None:
+        if name == HOLD:
+            return None                  # the built-in hold is always available
         loaded = self.library.get(name)
         if loaded is None:
             return f'skill {name!r} is not loaded (loaded: {", ".join(self.library.names())})'

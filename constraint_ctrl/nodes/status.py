@@ -20,7 +20,7 @@ from typing import Any
 
 import numpy as np
 
-from ..runtime.loop import LoopOutput
+from ..runtime.loop import HOLD, LoopOutput
 from ..safety.states import State
 from ..solve.qp import RowReport
 
@@ -76,6 +76,8 @@ def build_status(port: Any, node: str, out: LoopOutput, rows: RowReport | None,
     sec, nanosec = divmod(stamp_ns, 1_000_000_000)
     header = t.Header(stamp=t.Time(sec=int(sec), nanosec=int(nanosec)), frame_id='')
     skill_text = f'{out.skill}: {solve}' if out.skill else 'no skill active'
+    if out.skill == HOLD:
+        skill_text = 'holding: zero velocity, watchdog active'
     return t.DiagnosticArray(header=header, status=[
         status('controller', level, skill_text, controller_values),
         status('watchdog', level, f'{wd.state.value}: {wd.reason}', watchdog_values),

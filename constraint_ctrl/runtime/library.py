@@ -8,7 +8,8 @@ names), because the command is published in one fixed joint order.
 A skill's name becomes the prefix of its parameters (``<skill>.<tunable>``) and of its
 activation service, so names the node uses itself (``reserved``: its parameters and parameter
 groups such as ``watchdog`` or ``inputs``) are refused at load, located at the file's ``skill``
-field. A skill listed in ``keep`` (the running one) whose file disappeared stays loaded until a
+field; so is ``hold`` (HOLD), the name of the control loop's built-in hold, whatever the
+node. A skill listed in ``keep`` (the running one) whose file disappeared stays loaded until a
 later reload, so the running skill and its parameters never vanish under the controller.
 """
 from __future__ import annotations
@@ -25,6 +26,11 @@ from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
 from ..skill.robot import robot_model
 from .runner import SkillRunner
+
+#: The control loop's built-in hold (runtime/loop.py): zero velocity with the watchdog active.
+#: Not a skill file: `activate_skill` and the ~/hold service accept it, so no skill may be
+#: named so.
+HOLD = 'hold'
 
 
 @dataclass(slots=True)
@@ -109,6 +115,10 @@ class SkillLibrary:
         """Load and compile one file; raises ConstraintCtrlError with the file's location."""
         data = path.read_bytes()
         spec = load_skill(path)
+        if spec.name == HOLD:
+            raise spec.error(f'skill name {HOLD!r} is the controller\'s built-in hold (zero '
+                             'velocity, watchdog active; ~/hold, activate_skill hold); rename '
+                             'the skill', 'skill')
         if spec.name in self.reserved:
             raise spec.error(f'skill name {spec.name!r} is used by the controller itself (its '
                              f'parameters or parameter groups: '
@@ -201,4 +211,4 @@ class SkillLibrary:
         return report
 
 
-__all__ = ['LoadedSkill', 'ReloadReport', 'SkillLibrary']
+__all__ = ['HOLD', 'LoadedSkill', 'ReloadReport', 'SkillLibrary']
