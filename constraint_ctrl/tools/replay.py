@@ -85,6 +85,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument('--node', default=None,
                    help='recorded node name, e.g. /constraint_controller (default: found in '
                    'the bag)')
+    p.add_argument('--robot', type=Path, metavar='FILE',
+                   help="the robot's URDF (default: the parameter robot_description_file); "
+                   "needed when the node took its model from the robot_description topic")
     p.add_argument('--out', type=Path, default=Path('out/replay'), help='output folder')
 
 
@@ -409,6 +412,10 @@ def node_settings(params_file: Path | None, overrides: Mapping[str, Any], node: 
         if node_key_matches(key, node):
             params.update(values)
     params.update(overrides)
+    if params.get('robot_description_source') == 'topic' and \
+            'robot_description_file' not in params:
+        raise ReplayError('the node took its robot model from the robot_description topic; '
+                          "give the robot's URDF with --robot FILE")
     robot = Path(str(params.get('robot_description_file', cfg / 'robots' / 'six_axis_arm.urdf')))
     from ..model.kinematics import RobotModel
     model_joints = RobotModel.from_urdf(robot).joint_names
@@ -469,7 +476,7 @@ def replay(index: BagIndex, window: Window, skill_path: Path, settings: NodeSett
     from ..safety.watchdog import PersonSample
 
     model = RobotModel.from_urdf(settings.robot)
-    library = SkillLibrary(skill_path.parent, model.joint_names)
+    library = SkillLibrary(skill_path.parent, model.joint_names, model=model)
     loaded = library.load_file(skill_path.resolve())
     compiled = loaded.compiled
     for name, value in tunables.items():
@@ -598,6 +605,8 @@ def run_replay(args: argparse.Namespace) -> int:
     tunables = parse_assignments(args.tunables, '--set')
     node_params = parse_assignments(args.node_params, '--param')
     index = index_bag(args.bag, args.node)
+    if getattr(args, 'robot', None) is not None:
+        node_params['robot_description_file'] = str(args.robot)
     settings = node_settings(args.params, node_params, index.node)
     spec = load_skill(args.skill)
     window = choose_window(index, spec.name, args.activation, args.start, args.stop)
