@@ -242,9 +242,39 @@ def _capture(header: Any, log_ns: int) -> float:
     return capture_time(header.stamp.sec, header.stamp.nanosec, log_ns, log_ns * 1e-9)
 
 
+class _BagFrames:
+    """The node's own frames code (TopicFrames + PointsInBase) fed from the bag's /tf and
+    /tf_static in log order, so persons and point inputs in other frames are transformed (or
+    fail) as the node did when they arrived."""
+
+    TOPICS = ('/tf', '/tf_static')
+
+    def __init__(self, base_frame: str, timeout_s: float) -> None:
+        from types import SimpleNamespace
+
+        from ..nodes.frames import TopicFrames
+        from ..nodes.points_in_base import CACHE_TIME, PointsInBase
+        self.clock_ns = 0
+        self.feed: dict[str, Any] = {}
+        port = SimpleNamespace(types=SimpleNamespace(TFMessage=None),
+                               now_ns=lambda: self.clock_ns)
+        frames = TopicFrames(port, cache_time_s=CACHE_TIME, max_age_s=timeout_s,
+                             subscribe=lambda _type, topic, callback, _qos:
+                             self.feed.__setitem__(topic, callback))
+        self.points = PointsInBase(frames, base_frame, timeout_s, lambda _level, _text: None)
+
+    def preload(self, reader: Any, before_ns: int) -> None:
+        """Every /tf and /tf_static message logged before the window's span."""
+        conns = [c for c in reader.connections if c.topic in self.TOPICS]
+        if not conns:             # (no connections given means all of them to rosbags)
+            return
+        for conn, _t, raw in reader.messages(connections=conns, stop=before_ns):
+            self.feed[conn.topic](reader.deserialize(raw, conn.msgtype))
+
+
 def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
                  mappings: Mapping[str, Any], person_sources: Iterable[str],
-                 base_frame: str) -> Samples:
+                 base_frame: str, transform_timeout: float = 0.1) -> Samples:
     """Joint states, mapped inputs, person positions and commands from the window's span."""
     begin = int(index.command_ns[window.first]) - int(LOOKBACK * 1e9)
     end = int(index.command_ns[window.last]) + 1
@@ -258,9 +288,11 @@ def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
     for name, mapping in mappings.items():
         by_topic.setdefault(mapping.topic, []).append(mapping)
     cmd_ns, cmd, answered = [], [], []
+    frames = _BagFrames(base_frame, transform_timeout)
     with _open(index.path) as reader:
+        frames.preload(reader, begin)
         wanted = {f'{index.node}/command', f'{index.node}/joint_command', '/joint_states',
-                  *by_topic, *people}
+                  *by_topic, *people, *_BagFrames.TOPICS}
         conns = [c for c in reader.connections if c.topic in wanted]
         missing = sorted(set(by_topic) - {c.topic for c in conns})
         if missing:
@@ -272,6 +304,9 @@ def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
                 continue
             msg = reader.deserialize(raw, conn.msgtype)
             topic = conn.topic
+            frames.clock_ns = t       # the node's ROS time at arrival (an unset stamp: now)
+            if topic in frames.feed:
+                frames.feed[topic](msg)
             if topic == '/joint_states':
                 names, positions = list(msg.name), list(msg.position)
                 if len(names) != len(positions):
@@ -293,16 +328,14 @@ def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
             elif topic == f'{index.node}/joint_command':
                 answered.append((t, msg.header.stamp.sec * 1_000_000_000
                                  + msg.header.stamp.nanosec))
-            elif topic in people:
-                frame = msg.header.frame_id
-                if frame not in ('', base_frame):
-                    continue          # the node ignores it (no transform lookup)
-                people[topic].append((t, np.array([msg.point.x, msg.point.y, msg.point.z]),
+            elif topic in people:      # NaN where the node could not transform it either
+                people[topic].append((t, frames.points.person(topic, msg).copy(),
                                       _capture(msg.header, t)))
             if topic in by_topic:
                 for mapping in by_topic[topic]:
                     try:
-                        value = mapping.extract(msg)
+                        value = (frames.points.input_value(mapping, msg) if mapping.frame
+                                 else mapping.extract(msg))
                     except (TypeError, ValueError):
                         value = math.nan
                     stamp = _capture(msg.header, t) if mapping.has_header else t * 1e-9
@@ -397,6 +430,7 @@ class NodeSettings:
     person_timeout: float
     watchdog: dict[str, Any]
     inputs: dict[str, Any]
+    transform_timeout: float = 0.1
 
 
 def node_settings(params_file: Path | None, overrides: Mapping[str, Any], node: str
@@ -433,7 +467,8 @@ def node_settings(params_file: Path | None, overrides: Mapping[str, Any], node: 
     return NodeSettings(robot, joints, float(params.get('rate_hz', 500.0)),
                         str(params.get('base_frame', 'base_link')), sources,
                         float(params.get('people.timeout', 0.2)),
-                        {**DEFAULTS, **watchdog}, mappings)
+                        {**DEFAULTS, **watchdog}, mappings,
+                        float(params.get('people.transform_timeout', 0.1)))
 
 
 class _OneSkill:
@@ -502,7 +537,7 @@ def replay(index: BagIndex, window: Window, skill_path: Path, settings: NodeSett
                               {s: settings.person_timeout for s in settings.person_sources})
     loop = ControlLoop(_OneSkill(loaded), watchdog, dt, person_sources=settings.person_sources)
     samples = read_samples(index, window, model.joint_names, mappings, settings.person_sources,
-                           settings.base_frame)
+                           settings.base_frame, settings.transform_timeout)
     to_command = np.array([model.joint_names.index(j) for j in settings.joint_names])
     first_ns = int(index.command_ns[window.first])
     k0 = int(np.searchsorted(samples.command_ns, first_ns))
