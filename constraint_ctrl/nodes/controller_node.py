@@ -61,7 +61,7 @@ from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time,
 from .points_in_base import PARAMETERS as FRAMES_PARAMETERS
 from .points_in_base import open_points_in_base
 from .robot_source import PARAMETERS as MODEL_PARAMETERS
-from .robot_source import declare_model_source, load_robot_model
+from .robot_source import declare_model_source, load_robot_model, watch_robot_description
 from .status import StatusWorker, build_status
 
 NODE_NAME = 'constraint_controller'
@@ -92,6 +92,8 @@ class ControllerNode:
         declare = port.declare_parameter
         self.model_source = declare_model_source(declare, cfg / 'robots' / 'six_axis_arm.urdf')
         self._load_model()
+        self._description_watch = watch_robot_description(port, self.model_source,
+                                                           self.loaded_model)
         robot = self.loaded_model.origin
         names = list(declare('joint_names', list(self.model.joint_names),
                              'joint order of ~/command', read_only=True).value)

@@ -98,5 +98,25 @@ def load_robot_model(port: Any, source: ModelSource,
     return LoadedModel(model, name, text)
 
 
+def watch_robot_description(port: Any, source: ModelSource, loaded: LoadedModel) -> Any:
+    """Source 'topic': keep listening, and say once when a different description arrives.
+
+    robot_state_publisher publishes again when its robot_description parameter changes. The
+    running node keeps its model (skills are compiled against it, the watchdog's points come
+    from it); the new one is used at the next start. Returns the subscription (None for
+    'file')."""
+    if source.source != 'topic':
+        return None
+    said = []
+
+    def on_description(msg: Any) -> None:
+        if str(msg.data) != loaded.text and not said:
+            said.append(True)
+            port.log('warn', f'a new robot description arrived on {loaded.origin}; this node '
+                     'keeps the model it started with: restart it to use the new one')
+    return port.create_subscription(port.types.String, source.topic, on_description,
+                                    'robot_description')
+
+
 __all__ = ['DEFAULT_TIMEOUT', 'LoadedModel', 'ModelSource', 'PARAMETERS', 'SOURCES',
-           'declare_model_source', 'load_robot_model']
+           'declare_model_source', 'load_robot_model', 'watch_robot_description']

@@ -284,6 +284,15 @@ def test_the_model_came_from_the_latched_robot_description(
     peer, node = cell
     assert peer.moving_since(0.0)
     assert node.log('ready: 1 skills')
+    # robot_state_publisher publishes again after a parameter change: the running node keeps
+    # its model and says so once, however often it comes
+    for i in range(3):
+        peer._keep[0].publish(peer.t.String(data=peer.description + f'<!-- change {i} -->'))
+    assert wait_until(lambda: node.log('a new robot description arrived'), 20.0)
+    time.sleep(0.5)
+    assert len(node.log('a new robot description arrived on /robot_description')) == 1
+    now = time.monotonic()
+    assert wait_until(lambda: peer.moving_since(now), 20.0)
 
 
 def test_a_skill_naming_a_link_the_model_lacks_is_refused_with_file_and_line(
