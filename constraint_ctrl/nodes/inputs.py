@@ -86,7 +86,8 @@ def parse_input_mappings(params: dict[str, Any]) -> dict[str, InputMapping]:
     for key, value in params.items():
         name, _, attr = key.partition('.')
         if not attr:
-            msg = (f'parameter inputs.{key}: expected inputs.<input>.<topic|type|field|scale|frame|transform_timeout>')
+            msg = (f'parameter inputs.{key}: expected inputs.<input>.<key> with a key of '
+                   f'{", ".join(MAPPING_KEYS)}')
             raise TransportError(msg)
         grouped.setdefault(name, {})[attr] = value
     out = {}

@@ -52,8 +52,8 @@ def node(tmp_path: Path) -> Iterator[NodeHarness]:
 
 
 def static_camera(h: NodeHarness) -> None:
-    h.node.points.frames._on_tf_static(tf_message(h.t, [make_edge('base_link', 'camera', 0, CAMERA_T,
-                                                           CAMERA_Q)]))
+    h.node.points.frames._on_tf_static(tf_message(h.t, [make_edge('base_link', 'camera', 0,
+                                                                  CAMERA_T, CAMERA_Q)]))
 
 
 def test_a_person_in_a_camera_frame_is_transformed_into_the_base_frame(
