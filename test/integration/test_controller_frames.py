@@ -35,7 +35,8 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
+from collections.abc import Iterator
 
 import numpy as np
 import pytest

@@ -12,6 +12,7 @@ import time
 from pathlib import Path
 from collections.abc import Iterator
 
+import numpy as np
 import pytest
 
 pytest.importorskip('cyclonedds')

@@ -13,7 +13,8 @@ from __future__ import annotations
 
 import time
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
+from collections.abc import Iterator
 
 import numpy as np
 import pytest
