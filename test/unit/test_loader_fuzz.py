@@ -168,7 +168,7 @@ def assert_valid(spec: SkillSpec, text: str) -> None:
         assert value is None or positive(value)
     assert positive(spec.limits.position_gain)
     assert all(positive(v) for v in spec.limits.joint_speeds.values())
-    assert positive(spec.regularisation.damping) and positive(spec.regularisation.unknown_weight)
+    assert spec.robot is None or spec.robot.is_file()   # robot: is optional (issue 9.3)
     assert all(positive(v) for v in spec.regularisation.joint_weights.values())
     assert set(spec.offline.inputs) <= {i.name for i in spec.inputs}
     assert all(math.isfinite(v) for v in spec.offline.start.values())
