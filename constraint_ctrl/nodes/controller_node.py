@@ -4,8 +4,11 @@ The node only moves data between the port (rclpy or direct DDS) and the middlewa
 ControlLoop. Interface (names relative to the node, default node name constraint_controller):
 
 - subscribes joint_states (sensor_msgs/JointState, matched by name), every topic a skill input
-  is mapped to (parameters inputs.<input>.topic/type/field/scale) and the person-position
-  topics in people.sources (geometry_msgs/PointStamped in base_frame);
+  is mapped to (parameters inputs.<input>.topic/type/field/scale/frame) and the
+  person-position topics in people.sources (geometry_msgs/PointStamped in any frame: put into
+  base_frame with tf, see nodes/points_in_base.py), and /tf, /tf_static (on rclpy through
+  tf2_ros's TransformListener); with robot_description_source 'topic' it takes its robot
+  model from robot_description (std_msgs/String, transient local) at start;
 - publishes ~/command (std_msgs/Float64MultiArray, joint velocities in the order of
   joint_names), ~/joint_command (sensor_msgs/JointState: the same velocities with names, stamped
   with the joint_states sample they answer), ~/events (std_msgs/String), ~/status
@@ -47,7 +50,6 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConstraintCtrlError, TransportError
-from ..model.kinematics import RobotModel
 from ..runtime.library import HOLD, SkillLibrary
 from ..runtime.loop import ControlLoop, InputSample, LoopOutput, Snapshot
 from ..runtime.realtime import RealtimeControl, check_priority, threads_named
@@ -59,14 +61,18 @@ from .common import config_dir, ros_arguments, serve, split_ros_args, transport_
 from ..problem_log import ProblemLog
 from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     joint_sample_problem, parse_input_mappings
+from .points_in_base import PARAMETERS as FRAMES_PARAMETERS
+from .points_in_base import open_points_in_base
+from .robot_source import PARAMETERS as MODEL_PARAMETERS
+from .robot_source import declare_model_source, load_robot_model, watch_robot_description
 from .status import StatusWorker, build_status
 
 NODE_NAME = 'constraint_controller'
 SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
 #: Parameters fixed at start-up (changing them needs a restart).
-STARTUP_PARAMETERS = ('robot_description_file', 'skills_folder', 'joint_names', 'rate_hz',
+STARTUP_PARAMETERS = (*MODEL_PARAMETERS, 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
-                      'people.sources', 'people.timeout')
+                      'people.sources', 'people.timeout', *FRAMES_PARAMETERS)
 #: Names of the node's own parameters and parameter groups (and those rclpy declares on every
 #: node): a skill named like one would mix its tunables into them, so it is refused at load.
 NODE_PARAMETER_GROUPS = tuple(sorted(
@@ -87,9 +93,11 @@ class ControllerNode:
         self._tick_lock = threading.Lock()
         cfg = config_dir()
         declare = port.declare_parameter
-        robot = str(declare('robot_description_file', str(cfg / 'robots' / 'six_axis_arm.urdf'),
-                            'URDF file of the robot', read_only=True).value)
-        self.model = RobotModel.from_urdf(robot)
+        self.model_source = declare_model_source(declare, cfg / 'robots' / 'six_axis_arm.urdf')
+        self._load_model()
+        self._description_watch = watch_robot_description(port, self.model_source,
+                                                           self.loaded_model)
+        robot = self.loaded_model.origin
         names = list(declare('joint_names', list(self.model.joint_names),
                              'joint order of ~/command', read_only=True).value)
         if sorted(names) != sorted(self.model.joint_names):
@@ -109,8 +117,9 @@ class ControllerNode:
         if self.tick_on not in ('timer', 'joint_states'):
             msg = f"parameter tick_on must be 'timer' or 'joint_states', got {self.tick_on!r}"
             raise ConstraintCtrlError(msg)
-        self.base_frame = str(declare('base_frame', 'base_link', 'frame of person positions',
-                                      read_only=True).value)
+        self.base_frame = str(declare('base_frame', self.model.base_link, 'tf frame of the '
+                                      "model's base link (default its root link): person "
+                                      'positions are put into it', read_only=True).value)
         sources = [str(s) for s in declare('people.sources', [''],
                                            'PointStamped topics of person positions',
                                            read_only=True).value if s]
@@ -124,7 +133,7 @@ class ControllerNode:
         folder = Path(str(declare('skills_folder', str(cfg / 'skills'),
                                   'folder of skill files', read_only=True).value))
         self.library = SkillLibrary(folder, self.model.joint_names,
-                                    reserved=NODE_PARAMETER_GROUPS)
+                                    reserved=NODE_PARAMETER_GROUPS, model=self.model)
         report = self.library.reload()
         for line in report.log_lines():   # one failed file per line
             port.log('info' if report.ok else 'warn', f'skills: {line}')
@@ -160,7 +169,6 @@ class ControllerNode:
         self._js_plans: dict[tuple[str, ...], list[tuple[int, int]]] = {}
         self._js_rejected = 0
         self._js_problems = ProblemLog(port.log)
-        self._person_problems = ProblemLog(port.log)
         self._js_stamp: float | None = None
         self._js_header = (0, 0)
         self._answered = (0, 0)   # stamp of the joint_states sample the current tick answers
@@ -187,6 +195,9 @@ class ControllerNode:
         self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'default')
         self._pub_events = self._publisher(t.String, '~/events', 'default')
         self._pub_status = self._publisher(t.DiagnosticArray, '~/status', 'default')
+        # frames hook: /tf and /tf_static (DDS) or tf2_ros (rclpy); persons and point inputs
+        self.points = open_points_in_base(port, declare, self.base_frame, self._subscribe)
+        self._person_problems = self.points.person_faults
         self._subscribe(t.JointState, 'joint_states', self._on_joint_states)
         for mapping in self.mappings.values():
             msg_type = getattr(t, TYPE_ATTRIBUTE[mapping.ros_type])
@@ -214,6 +225,12 @@ class ControllerNode:
                  f'{self.rate:g} Hz, tick on {self.tick_on}, transport '
                  f'{type(port).__name__}')
 
+    def _load_model(self, receive: Any = None) -> None:
+        """The robot model from robot_description_file or the robot_description topic (see
+        nodes/robot_source.py): one step, so a configure transition can call it."""
+        self.loaded_model = load_robot_model(self.port, self.model_source, receive)
+        self.model = self.loaded_model.model
+
     # ------------------------------------------------------------ plumbing
     # The bag names each topic as the port really used it: the fully qualified name after
     # remapping, from the publisher's or subscription's topic_name (rclpy's property, which the
@@ -225,21 +242,26 @@ class ControllerNode:
         self._bag_topics.setdefault(name, (self.port.type_name(msg_type), qos))
         return pub
 
-    def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
-        if self._record_to is None:   # everything the tick reads: the control path
-            self.port.create_subscription(msg_type, topic, callback, 'latest', control=True)
-            return
+    def _subscribe(self, msg_type: Any, topic: str, callback: Any, qos: str = 'latest') -> Any:
+        # 'latest': what the tick reads, the control path; other profiles (/tf, /tf_static)
+        # feed state the callbacks read, off the control path
+        control = qos == 'latest'
+        if self._record_to is None:
+            return self.port.create_subscription(msg_type, topic, callback, qos,
+                                                 control=control)
         records_to: list[str] = []      # the bag topic, unless another subscription has it
 
         def recorded(msg: Any) -> None:
             if records_to:
                 self._record(records_to[0], msg)
             callback(msg)
-        sub = self.port.create_subscription(msg_type, topic, recorded, 'latest', control=True)
+        sub = self.port.create_subscription(msg_type, topic, recorded, qos, control=control)
         name = str(sub.topic_name)
         if name not in self._bag_topics:
-            self._bag_topics[name] = (self.port.type_name(msg_type), 'sensor')
+            self._bag_topics[name] = (self.port.type_name(msg_type),
+                                      'sensor' if control else qos)
             records_to.append(name)
+        return sub
 
     def _open_recorder(self) -> None:
         """Last step of start-up, so a node that fails to start leaves no bag folder behind."""
@@ -345,7 +367,8 @@ class ControllerNode:
     def _input_callback(self, mapping: InputMapping) -> Any:
         def callback(msg: Any) -> None:
             try:
-                value = mapping.extract(msg)
+                value = (self.points.input_value(mapping, msg) if mapping.frame
+                         else mapping.extract(msg))
             except (TypeError, ValueError):
                 value = float('nan')
             stamp = self._stamp(msg.header) if mapping.has_header else time.monotonic()
@@ -354,20 +377,12 @@ class ControllerNode:
         return callback
 
     def _person_callback(self, source: str) -> Any:
-        problems = self._person_problems
-        expected = ('', self.base_frame)
+        points = self.points
 
         def callback(msg: Any) -> None:
-            frame = msg.header.frame_id
-            if frame not in expected:
-                # counted and logged once per source (and once when it stops), not per message;
-                # the source goes stale, which the watchdog treats as a person anywhere
-                problems.problem(source, 'person positions in an unusable frame',
-                                 f'frame {frame!r}, expected {self.base_frame!r}; ignored (no '
-                                 'transform lookup here)')
-                return
-            problems.ok(source, f'person positions in {self.base_frame!r} again')
-            point = np.array([msg.point.x, msg.point.y, msg.point.z], dtype=float)
+            # in base_frame; NaN when it cannot be put there (no or too old transform): the
+            # watchdog then counts a person anywhere. Faults are counted and logged once.
+            point = points.person(source, msg)
             sample = PersonSample(source, point, self._stamp(msg.header))
             with self._lock:   # a new dict: a tick's snapshot keeps the one it took
                 self._people = {**self._people, source: sample}
@@ -502,6 +517,7 @@ class ControllerNode:
                  'joint_states_rejected': str(self._js_rejected),
                  'joint_states_last_rejection': self._js_problems.last_reason,
                  'person_samples_ignored': str(self._person_problems.total),
+                 **self.points.report(),
                  'recorder': recorder.state if recorder is not None else 'off',
                  'recorder_written': str(recorder.written if recorder is not None else 0),
                  'recorder_dropped': str((recorder.dropped if recorder is not None else 0)

@@ -3,7 +3,10 @@
 A reload looks at every ``*.yaml`` file of the skills folder, loads and compiles the new or
 changed ones (by content digest) and keeps the previous version of any file that fails, so a bad
 edit never takes a working skill away. All skills must drive the controller's robot (same joint
-names), because the command is published in one fixed joint order.
+names), because the command is published in one fixed joint order. A skill without ``robot:``
+compiles against the controller's own model (``model``: from its URDF file or the
+robot_description topic); a link or joint it names that the model lacks fails the file at the
+formula's line, like any unknown name.
 
 A skill's name becomes the prefix of its parameters (``<skill>.<tunable>``) and of its
 activation service, so names the node uses itself (``reserved``: its parameters and parameter
@@ -91,9 +94,11 @@ class SkillLibrary:
     """Skills by name. ``reload`` may run on any thread; lookups are cheap and thread-safe."""
 
     def __init__(self, folder: Path, joint_names: tuple[str, ...],
-                 qp_solver: str = 'quadprog', reserved: Collection[str] = ()) -> None:
+                 qp_solver: str = 'quadprog', reserved: Collection[str] = (),
+                 model: RobotModel | None = None) -> None:
         """``qp_solver``: 'quadprog' (default) or 'daqp', the QP solver of every skill;
-        ``reserved``: names a skill may not have (see the module docstring)."""
+        ``reserved``: names a skill may not have (see the module docstring); ``model``: the
+        controller's robot, for skills without ``robot:`` (None: such skills are refused)."""
         self.folder = Path(folder)
         self.joint_names = tuple(joint_names)
         self.qp_solver = qp_solver
@@ -101,7 +106,8 @@ class SkillLibrary:
         self._skills: dict[str, LoadedSkill] = {}
         self._by_path: dict[Path, str] = {}
         self._lock = threading.Lock()
-        self._models: dict[tuple[Path, str | None], RobotModel] = {}
+        self.model = model
+        self._models: dict[tuple[Path | None, str | None], RobotModel] = {}
 
     def names(self) -> list[str]:
         with self._lock:
@@ -124,15 +130,18 @@ class SkillLibrary:
                              f'parameters or parameter groups: '
                              f'{", ".join(sorted(self.reserved))}); rename the skill',
                              'skill')
-        key = (spec.robot.resolve(), spec.base_link)
+        key = (None if spec.robot is None else spec.robot.resolve(), spec.base_link)
         model = self._models.get(key)
         if model is None:
-            model = robot_model(spec)   # URDF and base_link errors located in the file
+            # URDF and base_link errors located in the file
+            model = robot_model(spec, self.model)
             self._models[key] = model
         if set(model.joint_names) != set(self.joint_names):
-            msg = (f'{path}: robot {spec.robot.name} has joints {list(model.joint_names)}, '
-                   f'but this controller drives {list(self.joint_names)}')
-            raise ConstraintCtrlError(msg)
+            robot = 'the controller\'s robot' if spec.robot is None else \
+                f'robot {spec.robot.name}'
+            raise spec.error(f'{robot} has joints {list(model.joint_names)}, but this '
+                             f'controller drives {list(self.joint_names)}',
+                             'skill' if spec.robot is None else 'robot')
         compiled = compile_skill(spec, model)
         return LoadedSkill(path=path, digest=hashlib.sha256(data).hexdigest(),
                            compiled=compiled, runner=SkillRunner(compiled, self.qp_solver))
