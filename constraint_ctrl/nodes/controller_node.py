@@ -7,9 +7,12 @@ ControlLoop. Interface (names relative to the node, default node name constraint
   is mapped to (parameters inputs.<input>.topic/type/field/scale) and the person-position
   topics in people.sources (geometry_msgs/PointStamped in base_frame);
 - publishes ~/command (std_msgs/Float64MultiArray, joint velocities in the order of
-  joint_names), ~/joint_command (sensor_msgs/JointState: the same velocities with names, stamped
-  with the joint_states sample they answer), ~/events (std_msgs/String), ~/status
-  (diagnostic_msgs/DiagnosticArray at status_rate_hz);
+  joint_names) and/or ~/position_command (joint positions, parameter command_interfaces; see
+  nodes/outputs.py), ~/joint_command (sensor_msgs/JointState: the same velocities (and
+  positions) with names, stamped with the joint_states sample they answer), ~/events
+  (std_msgs/String), ~/status and ~/rows (diagnostic_msgs/DiagnosticArray at status_rate_hz),
+  /diagnostics (about 1 Hz) and ~/markers (visualization_msgs/MarkerArray; nodes/status.py,
+  nodes/markers.py);
 - serves ~/skills/<skill>/activate and ~/reload_skills (std_srvs/Trigger) and the standard
   parameter services; each skill's tunables are parameters <skill>.<tunable>.
 
