@@ -210,7 +210,7 @@ class ControllerNode:
             self._publish_status, port.log, name=f'{NODE_NAME}-status',
             on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
         self._markers = StatusWorker(
-            self._publish_markers, port.log, name=f'{NODE_NAME}-markers',
+            self._publish_markers, port.log, name=f'{NODE_NAME}-markers', what='~/markers',
             on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
         self.timer = port.create_timer(self.dt, self._on_timer, control=True)
         self._open_recorder()

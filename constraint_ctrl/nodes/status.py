@@ -121,14 +121,16 @@ class StatusWorker:
     hands over only what it alone can read consistently (its LoopOutput and the rows of that
     solve, taken in the tick) with ``post`` and goes on. If the worker is still busy when the
     next status is due, the newer one replaces the waiting one: a status is a snapshot.
-    ``publish(out, rows, names)`` failing is logged (the first time, then at most once a
-    minute) and counted in ``errors``; the worker goes on.
+    ``publish(*job)`` failing is logged (the first time, then at most once a minute) and
+    counted in ``errors``; the worker goes on. The controller runs two: ~/status (with ~/rows
+    and /diagnostics) and ~/markers.
     """
 
     def __init__(self, publish: Callable[..., None],
-                 log: Callable[[str, str], None], name: str = 'status',
+                 log: Callable[[str, str], None], name: str = 'status', what: str = '~/status',
                  on_start: Callable[[], None] | None = None) -> None:
         self._publish = publish
+        self.what = what              # what it publishes, for its log line
         self._on_start = on_start
         self._log = log
         self._wake = threading.Condition()
@@ -165,7 +167,7 @@ class StatusWorker:
                 now = time.monotonic()
                 if now - self._last_log >= 60.0:
                     self._last_log = now
-                    self._log('error', f'~/status failed ({self.errors} so far):\n'
+                    self._log('error', f'{self.what} failed ({self.errors} so far):\n'
                               + traceback.format_exc())
 
     def close(self, timeout: float = 2.0) -> None:
