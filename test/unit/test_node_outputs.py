@@ -297,3 +297,49 @@ def _pose(model: RobotModel, link: str, q: np.ndarray) -> np.ndarray:
     import casadi as ca
     fn = ca.Function('pose', [model.q], [model.pose(link)])
     return np.array(fn(q))
+
+
+def test_replay_reads_rows_from_the_rows_topic(tmp_path: Path) -> None:
+    """A bag as the node now records it (~/rows beside ~/status, built by the node's own
+    builders, written with rosbags' rosbag2 writer): replay's reader finds each row's series
+    and the watchdog state of the same moment."""
+    from types import SimpleNamespace
+
+    from rosbags.rosbag2 import StoragePlugin, Writer
+    from rosbags.typesys import Stores, get_typestore
+
+    from constraint_ctrl.solve.qp import RowReport
+    from constraint_ctrl.tools.replay import index_bag, read_recorded_rows
+    store = get_typestore(Stores.ROS2_JAZZY)
+    port = SimpleNamespace(types=SimpleNamespace(**{k.rsplit('/', 1)[1]: v
+                                                    for k, v in store.types.items()}),
+                           diagnostic_level=lambda level: int(level))
+    names = ['tip_on_line[0]', 'above_bench']
+    bag = tmp_path / 'bag'
+    t0 = 10**12
+    with Writer(bag, version=9, storage_plugin=StoragePlugin.MCAP) as writer:
+        conns = {topic: writer.add_connection(topic, kind, typestore=store) for topic, kind in (
+            ('/constraint_controller/rows', 'diagnostic_msgs/msg/DiagnosticArray'),
+            ('/constraint_controller/events', 'std_msgs/msg/String'),
+            ('/constraint_controller/command', 'std_msgs/msg/Float64MultiArray'))}
+        T = store.types
+        layout = T['std_msgs/msg/MultiArrayLayout'](dim=[], data_offset=0)
+        writer.write(conns['/constraint_controller/command'], t0, store.serialize_cdr(
+            T['std_msgs/msg/Float64MultiArray'](layout=layout, data=np.zeros(6)),
+            'std_msgs/msg/Float64MultiArray'))
+        for k in range(5):
+            report = RowReport(value=np.array([0.1 * k, 0.12]), error=np.array([1e-3 * k, 0.0]),
+                               slack=np.zeros(2), active=np.array([True, False]),
+                               solved=np.array([True, True]))
+            msg = build_rows(port, 'move_to_point', report, names, t0 + k * 10**8, 'arm')
+            writer.write(conns['/constraint_controller/rows'], t0 + k * 10**8,
+                         store.serialize_cdr(msg, 'diagnostic_msgs/msg/DiagnosticArray'))
+        writer.write(conns['/constraint_controller/events'], t0, store.serialize_cdr(
+            store.types['std_msgs/msg/String'](data='activated_move_to_point'),
+            'std_msgs/msg/String'))
+    index = index_bag(bag)
+    rows = read_recorded_rows(index, 'move_to_point', 0.0, 10.0)
+    assert len(rows.time) == 5
+    assert np.allclose(rows.values['tip_on_line[0]']['error'], [0, 1e-3, 2e-3, 3e-3, 4e-3])
+    assert np.allclose(rows.values['above_bench']['value'], 0.12)
+    assert read_recorded_rows(index, 'other_skill', 0.0, 10.0).time.size == 0
