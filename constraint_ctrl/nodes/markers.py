@@ -80,7 +80,7 @@ class MarkerBuilder:
         self._lifetime = (int(lifetime), int(round((lifetime % 1.0) * 1e9)))
 
     def _marker(self, header: Any, ns: str, ident: int, kind: int, *,
-                position: np.ndarray = np.zeros(3),
+                position: np.ndarray | tuple[float, float, float] = (0.0, 0.0, 0.0),
                 orientation: tuple[float, float, float, float] = (0.0, 0.0, 0.0, 1.0),
                 scale: tuple[float, float, float] = (1.0, 1.0, 1.0),
                 colour: tuple[float, float, float, float] = (1.0, 1.0, 1.0, 1.0),

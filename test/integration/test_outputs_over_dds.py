@@ -22,8 +22,9 @@ import subprocess
 import sys
 import threading
 import time
+from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any
 
 import numpy as np
 import pytest
@@ -222,8 +223,9 @@ def test_command_publishers_are_reliable_keep_last_1(cell) -> None:
     robot, _ = cell
     from cyclonedds.qos import Policy
     for topic in ('command', 'position_command', 'joint_command'):
-        assert wait_until(lambda: bool(_publishers_qos(robot.port, f'{NODE}/{topic}')), 20.0)
-        qos = _publishers_qos(robot.port, f'{NODE}/{topic}')
+        name = f'{NODE}/{topic}'
+        assert wait_until(lambda name=name: bool(_publishers_qos(robot.port, name)), 20.0)
+        qos = _publishers_qos(robot.port, name)
         assert qos == [(True, Policy.History.KeepLast(depth=1))], (topic, qos)
 
 
