@@ -10,9 +10,12 @@ ControlLoop. Interface (names relative to the node, default node name constraint
   tf2_ros's TransformListener); with robot_description_source 'topic' it takes its robot
   model from robot_description (std_msgs/String, transient local) at start;
 - publishes ~/command (std_msgs/Float64MultiArray, joint velocities in the order of
-  joint_names), ~/joint_command (sensor_msgs/JointState: the same velocities with names, stamped
-  with the joint_states sample they answer), ~/events (std_msgs/String), ~/status
-  (diagnostic_msgs/DiagnosticArray at status_rate_hz);
+  joint_names) and/or ~/position_command (joint positions, parameter command_interfaces; see
+  nodes/outputs.py), ~/joint_command (sensor_msgs/JointState: the same velocities (and
+  positions) with names, stamped with the joint_states sample they answer), ~/events
+  (std_msgs/String), ~/status and ~/rows (diagnostic_msgs/DiagnosticArray at status_rate_hz),
+  /diagnostics (about 1 Hz) and ~/markers (visualization_msgs/MarkerArray; nodes/status.py,
+  nodes/markers.py);
 - serves ~/skills/<skill>/activate, ~/hold and ~/reload_skills (std_srvs/Trigger) and the
   standard parameter services; each skill's tunables are parameters <skill>.<tunable>.
 
@@ -65,14 +68,19 @@ from .points_in_base import PARAMETERS as FRAMES_PARAMETERS
 from .points_in_base import open_points_in_base
 from .robot_source import PARAMETERS as MODEL_PARAMETERS
 from .robot_source import declare_model_source, load_robot_model, watch_robot_description
-from .status import StatusWorker, build_status
+from .markers import MarkerBuilder, MarkerJob, SkillShapes
+from .outputs import DEFAULT_COMMAND_INTERFACES, PositionTarget, parse_command_interfaces, \
+    position_message
+from .status import StatusWorker, build_rows, build_status
 
 NODE_NAME = 'constraint_controller'
 SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
 #: Parameters fixed at start-up (changing them needs a restart).
 STARTUP_PARAMETERS = (*MODEL_PARAMETERS, 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
-                      'people.sources', 'people.timeout', *FRAMES_PARAMETERS)
+                      'people.sources', 'people.timeout', *FRAMES_PARAMETERS,
+                      'command_interfaces', 'hardware_id', 'diagnostics_rate_hz',
+                      'markers_rate_hz')
 #: Names of the node's own parameters and parameter groups (and those rclpy declares on every
 #: node): a skill named like one would mix its tunables into them, so it is refused at load.
 NODE_PARAMETER_GROUPS = tuple(sorted(
@@ -191,8 +199,7 @@ class ControllerNode:
         self._bag_topics: dict[str, tuple[str, str]] = {}  # name used -> (type, qos profile)
         self._bag_names: dict[str, str] = {}               # publisher's topic -> name used
         self._record_errors = 0
-        self._pub_command = self._publisher(t.Float64MultiArray, '~/command', 'default')
-        self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'default')
+        self._setup_outputs(settings, status_rate)
         self._pub_events = self._publisher(t.String, '~/events', 'default')
         self._pub_status = self._publisher(t.DiagnosticArray, '~/status', 'default')
         # frames hook: /tf and /tf_static (DDS) or tf2_ros (rclpy); persons and point inputs
@@ -219,6 +226,9 @@ class ControllerNode:
         self._status = StatusWorker(
             self._publish_status, port.log, name=f'{NODE_NAME}-status',
             on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
+        self._markers = StatusWorker(
+            self._publish_markers, port.log, name=f'{NODE_NAME}-markers', what='~/markers',
+            on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
         self.timer = port.create_timer(self.dt, self._on_timer, control=True)
         self._open_recorder()
         port.log('info', f'{NODE_NAME} ready: {len(self.library.names())} skills, '
@@ -230,6 +240,67 @@ class ControllerNode:
         nodes/robot_source.py): one step, so a configure transition can call it."""
         self.loaded_model = load_robot_model(self.port, self.model_source, receive)
         self.model = self.loaded_model.model
+
+    # ------------------------------------------------------------ outputs (issue 9.4)
+    def _setup_outputs(self, settings: dict[str, Any], status_rate: float) -> None:
+        """Command interfaces, ~/rows, /diagnostics and ~/markers (nodes/outputs.py,
+        status.py, markers.py); all read at start-up."""
+        declare, t = self.port.declare_parameter, self.port.types
+        self.command_interfaces = parse_command_interfaces(declare(
+            'command_interfaces', DEFAULT_COMMAND_INTERFACES, 'velocity (~/command) and/or '
+            'position (~/position_command)', read_only=True).value)
+        self.hardware_id = str(declare('hardware_id', self.model.description.name or NODE_NAME,
+                                       'hardware_id in /diagnostics', read_only=True).value)
+        diagnostics_rate = float(declare('diagnostics_rate_hz', 1.0, '/diagnostics rate (Hz)',
+                                         read_only=True).value)
+        markers_rate = float(declare('markers_rate_hz', 5.0, '~/markers rate (Hz), 0 = off',
+                                     read_only=True).value)
+        if not (0.0 < diagnostics_rate <= status_rate) or not (0.0 <= markers_rate <= self.rate):
+            msg = (f'parameters diagnostics_rate_hz must be > 0 and at most status_rate_hz '
+                   f'({status_rate:g}), markers_rate_hz 0 (off) to rate_hz ({self.rate:g}); got '
+                   f'{diagnostics_rate:g} and {markers_rate:g}')
+            raise ConstraintCtrlError(msg)
+        self._diagnostics_every = max(1, round(status_rate / diagnostics_rate))
+        self._markers_every = max(1, round(self.rate / markers_rate)) if markers_rate else 0
+        self._status_count = 0
+        velocity = 'velocity' in self.command_interfaces
+        self._pub_command = (self._publisher(t.Float64MultiArray, '~/command', 'command')
+                             if velocity else None)
+        self._position: PositionTarget | None = None
+        if 'position' in self.command_interfaces:
+            self._position = PositionTarget(self._to_command, self.dt,
+                                            float(settings['joint_state_timeout']))
+            self._position_msg = position_message(t, self.joint_names)
+            self._pub_position = self._publisher(t.Float64MultiArray, '~/position_command',
+                                                 'command')
+        self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'command')
+        self._pub_rows = self._publisher(t.DiagnosticArray, '~/rows', 'default')
+        self._pub_diagnostics = self._publisher(t.DiagnosticArray, '/diagnostics', 'default')
+        self._pub_markers = None
+        if self._markers_every:
+            self._pub_markers = self._publisher(t.MarkerArray, '~/markers', 'default')
+            self._marker_builder = MarkerBuilder(self.port, self.base_frame,
+                                                 self._markers_every * self.dt)
+            self._skill_shapes = SkillShapes()
+
+    def _send_position(self, target: list[float] | None, joint: Any) -> None:
+        """On the tick: ~/position_command, and the same positions in ~/joint_command."""
+        joint.position = target if target is not None else []
+        if target is not None:
+            self._position_msg.data = target
+            self._publish(self._pub_position, '~/position_command', self._position_msg)
+
+    def _marker_job(self) -> MarkerJob:
+        """On the tick: copies of what ~/markers draws (the worker builds the message)."""
+        runner = self.loop.active
+        ran = runner is not None and runner.solver.last_status.value == 'ok'
+        return MarkerJob(self.watchdog.geometry(), runner.skill if ran else None,
+                         runner.solver.input_values() if ran else None, self.port.now_ns())
+
+    def _publish_markers(self, job: MarkerJob) -> None:
+        """On the marker thread (a StatusWorker)."""
+        shapes = self._skill_shapes.shapes(job.skill, job.skill_inputs)
+        self._publish(self._pub_markers, '~/markers', self._marker_builder.build(job, shapes))
 
     # ------------------------------------------------------------ plumbing
     # The bag names each topic as the port really used it: the fully qualified name after
@@ -430,6 +501,8 @@ class ControllerNode:
             if self._closing:            # close() held the lock meanwhile
                 return
             snap = self._snapshot()
+            if self._position is not None:
+                self._position.take(snap)
             self._last_tick = snap.now
             if self._initial and snap.q is not None:
                 self.loop.request_activation(self._initial)
@@ -443,6 +516,8 @@ class ControllerNode:
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
+            if self._markers_every and self._ticks % self._markers_every == 0:
+                self._markers.post(self._marker_job())
         except Exception:  # noqa: BLE001 - any failure in a tick must end in a zero command
             self._errors += 1
             try:
@@ -479,7 +554,10 @@ class ControllerNode:
 
     def _send(self, out: LoopOutput) -> None:
         array, joint = self._command_messages(out.command)
-        self._publish(self._pub_command, '~/command', array)
+        if self._position is not None:
+            self._send_position(self._position.target(out.command), joint)
+        if self._pub_command is not None:
+            self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
         for name in out.events:
             self._publish(self._pub_events, '~/events', self.port.types.String(data=name))
@@ -494,7 +572,10 @@ class ControllerNode:
 
     def _send_zero(self) -> None:
         array, joint = self._command_messages(np.zeros(self.model.n_joints))
-        self._publish(self._pub_command, '~/command', array)
+        if self._position is not None:
+            self._send_position(self._position.hold(), joint)
+        if self._pub_command is not None:
+            self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
 
     def _send_status(self, out: LoopOutput) -> None:
@@ -525,9 +606,14 @@ class ControllerNode:
                  'recorder_error': recorder.error if recorder is not None else '',
                  'samples_dropped': str(sum(f.dropped for f in faults)),
                  'callback_errors': str(sum(f.callback_errors for f in faults))}
-        msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
-                           extra)
+        stamp = self.port.now_ns()
+        msg = build_status(self.port, self.port.node_name, out, stamp, extra, self.hardware_id)
         self._publish(self._pub_status, '~/status', msg)
+        self._publish(self._pub_rows, '~/rows',
+                      build_rows(self.port, out.skill, rows, names, stamp, self.hardware_id))
+        if self._status_count % self._diagnostics_every == 0:
+            self._publish(self._pub_diagnostics, '/diagnostics', msg)
+        self._status_count += 1
 
     # ------------------------------------------------------------- skills
     def _guarded(self, what: str, handler: Any) -> Any:
@@ -827,6 +913,7 @@ class ControllerNode:
         """After spin() returned (callbacks no longer run on either transport): zero, close."""
         self._closing = True
         self._status.close()
+        self._markers.close()
         with self._tick_lock:
             for _ in range(3):
                 self._send_zero()

@@ -269,6 +269,13 @@ class SkillSolver:
         self._inputs['q_start'][:] = q
         self._inputs['s_start'][:] = s
 
+    def input_values(self) -> dict[str, np.ndarray]:
+        """Copies of the function inputs of the last solve, by name (FUNCTION_INPUTS): what a
+        drawing of the skill's geometry evaluates (skill/geometry.py); call it on the tick.
+        q_now and s_now are q and s, as the function is fed them."""
+        return {name: self._inputs[{'q_now': 'q', 's_now': 's'}.get(name, name)].copy()
+                for name in FUNCTION_INPUTS}
+
     # -------------------------------------------------------------- solve
     def solve(self, q: np.ndarray, s: np.ndarray, u: np.ndarray, t: float, dt: float,
               x_prev: np.ndarray) -> SolveResult:

@@ -65,17 +65,21 @@ class Status:
 
 def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]],
                                               list[tuple[float, float]]]:
-    """(status, events, commands): commands as (time, largest absolute joint velocity)."""
+    """(status, events, commands): ~/status, the rows of ~/rows (matched to it by header
+    stamp: the node stamps both of one status period alike), ~/events, and ~/command as (time,
+    largest absolute joint velocity). Bags from before ~/rows carry the rows in ~/status
+    ('<node>: rows', keys '<row>.<what>')."""
     from rosbags.highlevel import AnyReader
     from rosbags.typesys import Stores, get_typestore
     times, skills, states, scale, sep, prot, rows = [], [], [], [], [], [], []
     reasons: list[str] = []
     events: list[tuple[float, str]] = []
     commands: list[tuple[float, float]] = []
+    row_sets: dict[tuple[int, int], dict[str, str]] = {}
+    status_stamps: list[tuple[int, int]] = []
     with AnyReader([bag], default_typestore=get_typestore(Stores.ROS2_JAZZY)) as reader:
-        wanted = [c for c in reader.connections
-                  if c.topic.endswith('/status') or c.topic.endswith('/events')
-                  or c.topic.endswith('/command')]
+        wanted = [c for c in reader.connections if c.topic.endswith(('/status', '/events',
+                                                                     '/rows', '/command'))]
         for conn, stamp, raw in reader.messages(connections=wanted):
             msg = reader.deserialize(raw, conn.msgtype)
             t = stamp * 1e-9 - t0
@@ -86,7 +90,14 @@ def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]],
                 data = np.asarray(msg.data, dtype=float)
                 commands.append((t, float(np.abs(data).max()) if data.size else 0.0))
                 continue
-            ctrl, wd, row = ({kv.key: kv.value for kv in s.values} for s in msg.status)
+            key = (msg.header.stamp.sec, msg.header.stamp.nanosec)
+            if conn.topic.endswith('/rows'):
+                row_sets[key] = {f'{s.name.partition(": ")[2]}.{kv.key}': kv.value
+                                 for s in msg.status for kv in s.values}
+                continue
+            by_name = {s.name.rpartition(': ')[2]: {kv.key: kv.value for kv in s.values}
+                       for s in msg.status}
+            ctrl, wd = by_name.get('controller', {}), by_name.get('watchdog', {})
             times.append(t)
             skills.append(ctrl.get('skill', ''))
             states.append(wd.get('state', ''))
@@ -94,7 +105,10 @@ def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]],
             scale.append(float(wd.get('speed_scale', 'nan')))
             sep.append(float(wd.get('min_separation', 'nan')))
             prot.append(float(wd.get('protective_distance', 'nan')))
-            rows.append(row)
+            rows.append(by_name.get('rows', {}))
+            status_stamps.append(key)
+    if row_sets:
+        rows = [row_sets.get(key, {}) for key in status_stamps]
     return Status(np.array(times), skills, states, np.array(scale), np.array(sep),
                   np.array(prot), rows, reasons), events, commands
 
@@ -292,10 +306,76 @@ def evaluate(out: Path) -> dict[str, Any]:
         'after_plan': hold,
         'criteria': criteria,
     }
+    summary['markers_frame'] = (marker_png(out / 'bag', t0, status, out / 'markers.png')
+                                if (out / 'bag').exists() else None)
     (out / 'summary.json').write_text(json.dumps(summary, indent=2) + '\n')
     (out / 'summary.md').write_text(_markdown(summary))
     _plots(out, t, truth, status, step_times, sep)
     return summary
+
+
+def marker_views(msg: Any) -> list[dict[str, Any]]:
+    """A visualization_msgs/MarkerArray as plain values (plots.marker_figure's input)."""
+    views = []
+    for m in msg.markers:
+        p, o, sc, c = m.pose.position, m.pose.orientation, m.scale, m.color
+        views.append({'ns': m.ns, 'type': int(m.type), 'action': int(m.action), 'text': m.text,
+                      'position': (p.x, p.y, p.z), 'orientation': (o.x, o.y, o.z, o.w),
+                      'scale': (sc.x, sc.y, sc.z), 'colour': (c.r, c.g, c.b, c.a),
+                      'points': [(q.x, q.y, q.z) for q in m.points]})
+    return views
+
+
+def _closest_approach(msg: Any) -> float:
+    """Smallest distance from a drawn person to a monitored sphere's surface in one
+    MarkerArray (inf without people or spheres), from the markers themselves."""
+    spheres = [(np.array([m.pose.position.x, m.pose.position.y, m.pose.position.z]),
+                m.scale.x / 2.0) for m in msg.markers if m.ns == 'monitored_spheres']
+    people = [np.array([m.pose.position.x, m.pose.position.y, m.pose.position.z])
+              for m in msg.markers if m.ns == 'people']
+    return min((float(np.linalg.norm(p - c)) - r for p in people for c, r in spheres),
+               default=float('inf'))
+
+
+def marker_png(bag: Path, t0: float, status: Status | None, path: Path) -> dict[str, Any] | None:
+    """One frame of the recorded ~/markers as a PNG: the frame in which a person came
+    closest to a monitored sphere after the plan started (measured on the drawn markers), else
+    the last frame. None when no frame was recorded."""
+    from rosbags.highlevel import AnyReader
+    from rosbags.typesys import Stores, get_typestore
+
+    from .plots import marker_figure, save
+    best: tuple[float, float, Any] | None = None
+    last: tuple[float, Any] | None = None
+    frames = 0
+    with AnyReader([bag], default_typestore=get_typestore(Stores.ROS2_JAZZY)) as reader:
+        conns = [c for c in reader.connections if c.topic.endswith('/markers')]
+        for conn, stamp, raw in reader.messages(connections=conns):
+            t = stamp * 1e-9 - t0
+            if t < 0.0:
+                continue
+            msg = reader.deserialize(raw, conn.msgtype)
+            frames += 1
+            last = (t, msg)
+            gap = _closest_approach(msg)
+            if np.isfinite(gap) and (best is None or gap < best[0]):
+                best = (gap, t, msg)
+    if last is None:
+        return None
+    if best is not None:
+        gap, t, msg = best
+        why = f'a person nearest a monitored sphere: {gap:.3f} m from its surface'
+    else:
+        (t, msg), why = last, 'the last frame; no person drawn'
+    views = marker_views(msg)
+    states = sorted({v['text'] for v in views if v['ns'] == 'monitored_spheres'})
+    skill = next((sk for tt, sk in zip(status.time, status.skill) if tt >= t), '') \
+        if status is not None else ''
+    title = (f'~/markers, one frame at {t:.2f} s since the plan started\n({why})\n'
+             f'watchdog {", ".join(states) or "unknown"}; skill {skill or "none"}')
+    save(marker_figure(views, title), path)
+    return {'time_s': round(t, 3), 'file': path.name, 'markers': len(views), 'why': why,
+            'frames_recorded': frames}
 
 
 def _markdown(s: dict[str, Any]) -> str:
@@ -325,8 +405,11 @@ def _markdown(s: dict[str, Any]) -> str:
               'below S_p while moving: '
               f"{s['separation']['samples_below_protective_distance_while_moving']}",
               'Watchdog transitions: ' + ', '.join(f'{n[9:]} at {t:.2f} s'
-                                                  for t, n in s['watchdog_transitions']), '',
-              '| criterion | passed | value |', '|---|---|---|']
+                                                  for t, n in s['watchdog_transitions'])]
+    frame = s.get('markers_frame')
+    lines += ['', f"Markers: one frame of ~/markers at {frame['time_s']:.2f} s ({frame['why']}) "
+                  f"in {frame['file']}" if frame else 'Markers: no ~/markers in the bag']
+    lines += ['', '| criterion | passed | value |', '|---|---|---|']
     for name, c in s['criteria'].items():
         lines.append(f"| {c.get('label', name)} | {'yes' if c['passed'] else 'NO'} | "
                      f"{_short(c['value'])} |")
@@ -506,7 +589,7 @@ def demo_figures(t: np.ndarray, truth: dict[str, np.ndarray], status: Status | N
                                    title_fontsize=7)
             axes[-1].set_xlabel(xlabel)
             rows = label_steps(axes[0], spans)
-            title_above_steps(axes[0], 'Errors and slacks of the active skill from ~/status: '
+            title_above_steps(axes[0], 'Errors and slacks of the active skill from ~/rows: '
                               'largest row of each constraint\n(values <= '
                               f'{LOG_FLOOR:g}, e.g. a bound not reached, are not drawn)', rows)
             figures['constraints.png'] = fig

@@ -385,11 +385,63 @@ class RecordedRows:
 
 
 def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float) -> RecordedRows:
-    """Rows of ``skill`` from ~/status (DiagnosticArray '<node>: rows', keys '<row>.<what>').
+    """Rows of ``skill`` the node published, with the watchdog state of the same moments.
 
-    The one place that knows where recorded row values live: if they move to a topic of their
-    own, only this function changes.
+    The one place that knows where recorded row values live: ~/rows (DiagnosticArray, one
+    status '<skill>: <row>' per row with keys 'value', 'error', 'slack', ...), with the state
+    from ~/status; bags recorded before ~/rows existed carry them in ~/status ('<node>: rows',
+    keys '<row>.<what>').
     """
+    with _open(index.path) as reader:
+        topics = {c.topic for c in reader.connections}
+    if f'{index.node}/rows' in topics:
+        return _rows_topic(index, skill, begin_s, end_s)
+    return _rows_in_status(index, skill, begin_s, end_s)
+
+
+def _series(times: list[float], raw: list[dict[str, str]], states: list[str]) -> RecordedRows:
+    values: dict[str, dict[str, np.ndarray]] = {}
+    keys = sorted({k for r in raw for k in r})
+    for key in keys:
+        row, _, what = key.rpartition('.')
+        if what not in ('error', 'slack', 'value'):
+            continue
+        series = np.array([float(r.get(key, 'nan')) for r in raw])
+        values.setdefault(row, {})[what] = series
+    return RecordedRows(np.array(times), values, states)
+
+
+def _rows_topic(index: BagIndex, skill: str, begin_s: float, end_s: float) -> RecordedRows:
+    times: list[float] = []
+    raw: list[dict[str, str]] = []
+    states: list[str] = []
+    state = ''
+    prefix = f'{skill}: '
+    with _open(index.path) as reader:
+        conns = [c for c in reader.connections
+                 if c.topic in (f'{index.node}/rows', f'{index.node}/status')]
+        start = index.start_ns + int(begin_s * 1e9)
+        stop = index.start_ns + int(end_s * 1e9) + 1
+        for conn, t, data in reader.messages(connections=conns, start=start, stop=stop):
+            msg = reader.deserialize(data, conn.msgtype)
+            if conn.topic.endswith('/status'):
+                for s in msg.status:
+                    if s.name.rpartition(': ')[2] == 'watchdog':
+                        state = {kv.key: kv.value for kv in s.values}.get('state', '')
+                continue
+            rows = {s.name[len(prefix):]: {kv.key: kv.value for kv in s.values}
+                    for s in msg.status if s.name.startswith(prefix)}
+            if not rows:
+                continue
+            times.append(float(index.seconds(t)))
+            raw.append({f'{row}.{key}': value for row, kv in rows.items()
+                        for key, value in kv.items()})
+            states.append(state)
+    return _series(times, raw, states)
+
+
+def _rows_in_status(index: BagIndex, skill: str, begin_s: float, end_s: float
+                    ) -> RecordedRows:
     times: list[float] = []
     raw: list[dict[str, str]] = []
     states: list[str] = []
@@ -406,15 +458,7 @@ def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float
             times.append(float(index.seconds(t)))
             raw.append(by_name.get('rows', {}))
             states.append(by_name.get('watchdog', {}).get('state', ''))
-    values: dict[str, dict[str, np.ndarray]] = {}
-    keys = sorted({k for r in raw for k in r})
-    for key in keys:
-        row, _, what = key.rpartition('.')
-        if what not in ('error', 'slack', 'value'):
-            continue
-        series = np.array([float(r.get(key, 'nan')) for r in raw])
-        values.setdefault(row, {})[what] = series
-    return RecordedRows(np.array(times), values, states)
+    return _series(times, raw, states)
 
 
 # -------------------------------------------------------------------------------- the replay
