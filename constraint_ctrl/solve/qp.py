@@ -163,6 +163,8 @@ class _DaqpCall:
         if self.f.shape != a.shape:
             self.f = np.empty_like(a)
         np.negative(a, out=self.f)
+        if not (G.flags.c_contiguous or G.flags.f_contiguous):
+            G = np.ascontiguousarray(G)      # DAQP reads H as one block (G is symmetric)
         nb, nr = self.n_box, self.n_rows
         self.lower[:nb] = b[nr:nr + nb]
         np.negative(b[nr + nb:], out=self.upper[:nb])

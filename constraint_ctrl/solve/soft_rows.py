@@ -83,6 +83,7 @@ class SoftRowQp:
         self._cs = np.zeros((n_x, self.soft.size), order='F')
         self._bs = np.zeros(self.soft.size)
         self._w = np.zeros(self.soft.size)
+        self._gx = np.zeros((n_x, n_x))
         self.rounds = 0          # guesses the last call needed (0: it solved the full QP)
         self.fallbacks = 0       # calls that solved the full QP
 
@@ -103,8 +104,9 @@ class SoftRowQp:
                 cv = cs[:, guess]
                 wv = w[guess]
                 gv, av = gx + (cv * wv) @ cv.T, ax + cv @ (wv * bs[guess])
-            else:
-                gv, av = gx, ax
+            else:   # a copy: DAQP reads H as one contiguous block, G[:n_x, :n_x] is not one
+                np.copyto(self._gx, gx)
+                gv, av = self._gx, ax
             x, its, iact = self.reduced(gv, av, self._ch, self._bh)
             iterations += its
             residual = x @ cs - bs
