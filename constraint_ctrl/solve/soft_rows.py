@@ -85,6 +85,8 @@ class SoftRowQp:
         self._w = np.zeros(self.soft.size)
         self._gx = np.zeros((n_x, n_x))
         self.rounds = 0          # guesses the last call needed (0: it solved the full QP)
+        #: the reduced QP (G, a, C, b) of the last call's last guess (for the benchmark)
+        self.last_reduced: tuple[np.ndarray, ...] | None = None
         self.fallbacks = 0       # calls that solved the full QP
 
     def __call__(self, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray
@@ -120,6 +122,7 @@ class SoftRowQp:
                     continue
             self.violated = guess
             self.rounds = round_
+            self.last_reduced = (gv, av, self._ch, self._bh)
             z = np.zeros(self.n_z)
             z[:n_x] = x
             # slack = b_c - C_c^T x on the violated columns (at most one per slack), 0 elsewhere
