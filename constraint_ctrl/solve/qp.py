@@ -275,16 +275,24 @@ class SkillSolver:
             source = {'q_now': 'q', 's_now': 's'}.get(name, name)
             buf.set_arg(i, memoryview(self._inputs[source]))
         self._flat: dict[str, np.ndarray] = {}
-        for i, name in enumerate(FUNCTION_OUTPUTS):
-            rows, cols = fn.size1_out(i), fn.size2_out(i)
-            flat = np.zeros(rows * cols)
-            buf.set_res(i, memoryview(flat))
+        n_z = skill.layout.n_z
+        for name in FUNCTION_OUTPUTS:
+            if skill.objective_by_solver and name in ('G', 'a'):
+                rows, cols = (n_z, n_z) if name == 'G' else (n_z, 1)   # formed by _objective
+                flat = np.zeros(rows * cols)
+            else:
+                i = fn.index_out(name)
+                rows, cols = fn.size1_out(i), fn.size2_out(i)
+                flat = np.zeros(rows * cols)
+                buf.set_res(i, memoryview(flat))
             self._flat[name] = flat
             # CasADi writes column-major: a Fortran-ordered view gives the matrix
             self._outputs[name] = flat.reshape((rows, cols), order='F') \
                 if name in MATRIX_OUTPUTS else flat
         self.p = self._inputs['p']
         self.p[:] = skill.default_params()
+        if skill.objective_by_solver:
+            self._evaluate = self._evaluate_and_form_objective(self._evaluate)
         lay = skill.layout
         self._is_eq = np.array([r.kind == 'equal' for r in skill.rows], dtype=bool)
         n_hard = lay.meq + len(lay.hard_lo) + len(lay.hard_hi)
@@ -309,6 +317,34 @@ class SkillSolver:
         self.last_iact = np.zeros(0, dtype=int)
         self.last_status = SolveStatus.OK
         self.last_levels_solved = 0
+
+    def _evaluate_and_form_objective(self, evaluate: Callable[[], None]) -> Callable[[], None]:
+        """The compiled call, then G and a of level 1 with BLAS (CompiledSkill.objective_by_solver):
+
+            G = [[H^T H + lambda^2 diag(r), 0], [0, diag(w_slack)]],  a = [H^T h, 0]
+
+        with H = hj, h = hv from the compiled function (solve/qp.py module docstring). Only the
+        joint block, its diagonal and the slack diagonal are written: the rest stays zero.
+        """
+        skill, out = self.skill, self._outputs
+        n_x = skill.n_x
+        G, a, hj, hv = out['G'], out['a'], out['hj'], out['hv']
+        g_flat, weight = self._flat['G'], self._flat['weight']
+        diag_x = np.arange(n_x) * (G.shape[0] + 1)
+        slack = n_x + np.arange(len(skill.layout.soft_ineq))
+        diag_slack = slack * (G.shape[0] + 1)
+        slack_rows = np.array(skill.layout.soft_ineq, dtype=np.intp)
+        reg, damping = skill.reg_diag, skill.damping_param
+        p = self.p
+        gx = G[:n_x, :n_x]
+
+        def evaluate_and_form() -> None:
+            evaluate()
+            gx[...] = hj.T @ hj
+            g_flat[diag_x] += p[damping] ** 2 * reg
+            g_flat[diag_slack] = weight[slack_rows]
+            a[:n_x] = hj.T @ hv
+        return evaluate_and_form
 
     # ------------------------------------------------------------ buffers
     @property

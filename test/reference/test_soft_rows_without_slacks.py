@@ -187,3 +187,40 @@ def test_same_commands_as_bare_daqp_on_the_qp_with_slacks(tmp_path) -> None:
         x = result.x
         q = q + dt * x
     assert checked >= 50
+
+
+def test_objective_formed_by_the_solver_is_the_compiled_one(tmp_path, monkeypatch) -> None:
+    """Large skills (more than EXPAND_LIMIT Jacobian entries) leave G and a to the solver (BLAS);
+    both must equal the definition (solve/qp.py module docstring: G = H^T H + lambda^2 diag(r)
+    beside diag(w) of the slacks, a = H^T sqrt(w) v, H = sqrt(w) J over the soft equality rows)
+    and CasADi's own G and a of the same skill compiled the old way."""
+    from constraint_ctrl.skill import compile as compile_module
+    urdf = tmp_path / 'chain.urdf'
+    urdf.write_text(generated_chain_urdf(24))
+    spec = generated_skill(urdf, 24, 200, 1)
+    large = compile_skill(spec)
+    monkeypatch.setattr(compile_module, 'EXPAND_LIMIT', 10 ** 6)
+    compiled = compile_skill(spec)
+    assert large.objective_by_solver and not compiled.objective_by_solver
+    one, two = SkillSolver(large), SkillSolver(compiled)
+    rng = np.random.default_rng(7)
+    for _ in range(3):
+        q, x = rng.uniform(-1.0, 1.0, 24), rng.uniform(-0.5, 0.5, 24)
+        a = one.solve(q, EMPTY, EMPTY, 0.0, 0.002, x)
+        b = two.solve(q, EMPTY, EMPTY, 0.0, 0.002, x)
+        np.testing.assert_allclose(a.x, b.x, atol=1e-9, rtol=0)
+        out, ref = one.outputs, two.outputs
+        np.testing.assert_allclose(out['G'], ref['G'], atol=1e-9, rtol=1e-12)
+        np.testing.assert_allclose(out['a'], ref['a'], atol=1e-9, rtol=1e-12)
+        # from the definition, with the rows' own J, targets and weights
+        lay = large.layout
+        eq, ineq = list(lay.soft_eq), list(lay.soft_ineq)
+        J, lo, w = out['J'], out['lo'], out['weight']
+        lam = one.p[large.damping_param]
+        G = np.zeros((lay.n_z, lay.n_z))
+        G[:24, :24] = J[eq].T @ (w[eq, None] * J[eq]) + lam ** 2 * np.diag(large.reg_diag)
+        G[24:, 24:] = np.diag(w[ineq])
+        np.testing.assert_allclose(out['G'], G, atol=1e-9, rtol=1e-12)
+        np.testing.assert_allclose(out['a'][:24], J[eq].T @ (w[eq] * lo[eq]), atol=1e-9,
+                                   rtol=1e-12)
+        assert not out['a'][24:].any()
