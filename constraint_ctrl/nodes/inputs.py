@@ -152,5 +152,6 @@ def capture_time(stamp_sec: int, stamp_nanosec: int, recv_ros_ns: int, recv_mono
     return recv_mono - max(age, 0.0)
 
 
-__all__ = ['INPUT_TYPES', 'InputMapping', 'JOINT_SAMPLE_PROBLEMS', 'MAX_JOINT_NAMES', 'TYPE_ATTRIBUTE', 'capture_time',
-           'check_field', 'joint_sample_problem', 'parse_input_mappings']
+__all__ = ['INPUT_TYPES', 'InputMapping', 'JOINT_SAMPLE_PROBLEMS', 'MAX_JOINT_NAMES',
+           'TYPE_ATTRIBUTE', 'capture_time', 'check_field', 'joint_sample_problem',
+           'parse_input_mappings']

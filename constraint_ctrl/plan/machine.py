@@ -80,7 +80,8 @@ class PlanRunner:
         return Activate(step, index)
 
     def activated(self, now: float) -> None:
-        """The controller confirmed the switch at ``now``; earlier events belong to the old skill."""
+        """The controller confirmed the switch at ``now``; earlier events belong to the old
+        skill."""
         self.armed = True
         self.armed_at = now
 

@@ -34,7 +34,7 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 from enum import Enum
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 import quadprog
@@ -65,7 +65,7 @@ class SolveStatus(str, Enum):
     INFEASIBLE = 'infeasible'          # the hard rows and limits cannot all hold
     BAD_INPUT = 'bad_input'            # NaN or inf among q, s, inputs, time or the last command
     BAD_OUTPUT = 'bad_output'          # the skill's formulas produced NaN/inf, or the QP did
-    NOT_CONVEX = 'not_convex'          # G lost positive definiteness (should not happen: damping > 0)
+    NOT_CONVEX = 'not_convex'          # G lost positive definiteness (not with damping > 0)
 
 
 @dataclass(slots=True)

@@ -16,7 +16,8 @@ tests and inspected before they are written.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Iterable, Sequence
+from typing import TYPE_CHECKING, Any
+from collections.abc import Iterable, Sequence
 
 import numpy as np
 

@@ -42,7 +42,8 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Mapping
+from typing import Any
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 
@@ -252,7 +253,7 @@ def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
     inputs: dict[str, list[tuple[int, float, float]]] = {m: [] for m in mappings}
     people: dict[str, list[tuple[int, np.ndarray, float]]] = {s: [] for s in person_sources}
     by_topic: dict[str, list[Any]] = {}
-    for name, mapping in mappings.items():
+    for mapping in mappings.values():
         by_topic.setdefault(mapping.topic, []).append(mapping)
     cmd_ns, cmd, answered = [], [], []
     with _open(index.path) as reader:

@@ -9,14 +9,14 @@ recorded bag back with `rosbags` (an outside reader of rosbag2).
 from __future__ import annotations
 
 import os
-import shutil
 import signal
 import subprocess
 import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any
+from collections.abc import Callable, Iterator
 
 import numpy as np
 import pytest
@@ -107,18 +107,21 @@ class Robot:
 
 
 @pytest.fixture(scope='module')
-def setup(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Robot, subprocess.Popen, Path]]:
+def setup(tmp_path_factory: pytest.TempPathFactory
+          ) -> Iterator[tuple[Robot, subprocess.Popen, Path]]:
     work = tmp_path_factory.mktemp('node')
     skills = work / 'skills'
     skills.mkdir()
     for name in ('move_to_point.yaml', 'keep_tool_vertical.yaml'):
         text = (ROOT / 'config' / 'skills' / name).read_text()
-        (skills / name).write_text(text.replace('../robots/', str(ROOT / 'config' / 'robots') + '/'))
+        robots = str(ROOT / 'config' / 'robots') + '/'
+        (skills / name).write_text(text.replace('../robots/', robots))
     bag = work / 'bag'
     env = dict(os.environ, PYTHONPATH=str(ROOT))
     proc = subprocess.Popen(
         [sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport', 'dds',
-         '--record', str(bag), '--ros-args', '--params-file', str(ROOT / 'config' / 'controller.yaml'),
+         '--record', str(bag), '--ros-args',
+         '--params-file', str(ROOT / 'config' / 'controller.yaml'),
          '-p', f'skills_folder:={skills}', '-p', 'rate_hz:=250.0'],
         cwd=work, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     robot = Robot()

@@ -9,7 +9,7 @@ import pytest
 
 from constraint_ctrl.model.kinematics import RobotModel
 from constraint_ctrl.runtime.library import SkillLibrary
-from constraint_ctrl.runtime.loop import ControlLoop, InputSample, Snapshot
+from constraint_ctrl.runtime.loop import ControlLoop, Snapshot
 from constraint_ctrl.runtime.watchdog_setup import build_watchdog
 from constraint_ctrl.safety.states import State
 
@@ -25,7 +25,8 @@ def loop(tmp_path: Path) -> ControlLoop:
     (tmp_path / 'robots').mkdir()
     shutil.copy(CONFIG / 'robots' / 'six_axis_arm.urdf', tmp_path / 'robots')
     for name in ('move_to_point.yaml', 'keep_tool_vertical.yaml'):
-        text = (CONFIG / 'skills' / name).read_text().replace('../scenes/', str(CONFIG / 'scenes') + '/')
+        text = (CONFIG / 'skills' / name).read_text()
+        text = text.replace('../scenes/', str(CONFIG / 'scenes') + '/')
         (skills / name).write_text(text)
     model = RobotModel.from_urdf(CONFIG / 'robots' / 'six_axis_arm.urdf')
     library = SkillLibrary(skills, model.joint_names)
