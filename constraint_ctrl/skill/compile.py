@@ -548,7 +548,6 @@ def _with_objective(rows_fn: ca.Function, layout: QpLayout, reg_diag: np.ndarray
     out = dict(zip(FUNCTION_OUTPUTS, res))
     hj, hv, w, p = out['hj'], out['hv'], out['weight'], args[-1]
     damping = p[damping_index]
-    n_x = layout.n_x
     G_x = ca.mtimes(hj.T, hj) + ca.diag(damping ** 2 * ca.DM(reg_diag))
     a_x = ca.mtimes(hj.T, hv)
     if layout.soft_ineq:

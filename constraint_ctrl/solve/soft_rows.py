@@ -33,7 +33,7 @@ The reduced QP has the hard columns only; the feasibility of the full QP depends
 """
 from __future__ import annotations
 
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 

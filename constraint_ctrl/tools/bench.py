@@ -354,5 +354,5 @@ def run(json_path: Path | None, *, quick: bool = False, scaling: bool = True,
     return report
 
 
-__all__ = ['Stats', 'bench_compile', 'bench_scaling', 'bench_skill', 'bench_soft_rows', 'generated_chain_urdf',
-           'generated_skill', 'run', 'two_level_example']
+__all__ = ['Stats', 'bench_compile', 'bench_scaling', 'bench_skill', 'bench_soft_rows',
+           'generated_chain_urdf', 'generated_skill', 'run', 'two_level_example']
