@@ -59,6 +59,7 @@ from ..runtime.realtime import RealtimeControl, check_priority, threads_named
 from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
 from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
+from ..solve.qp import QP_SOLVERS
 from ..transport.port import RECEIVE_THREADS
 from .common import config_dir, ros_arguments, serve, split_ros_args, transport_options
 from ..problem_log import ProblemLog
@@ -80,7 +81,7 @@ STARTUP_PARAMETERS = (*MODEL_PARAMETERS, 'skills_folder', 'joint_names', 'rate_h
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
                       'people.sources', 'people.timeout', *FRAMES_PARAMETERS,
                       'command_interfaces', 'hardware_id', 'diagnostics_rate_hz',
-                      'markers_rate_hz')
+                      'markers_rate_hz', 'qp_solver')
 #: Names of the node's own parameters and parameter groups (and those rclpy declares on every
 #: node): a skill named like one would mix its tunables into them, so it is refused at load.
 NODE_PARAMETER_GROUPS = tuple(sorted(
@@ -140,7 +141,13 @@ class ControllerNode:
                                        {s: person_timeout for s in sources})
         folder = Path(str(declare('skills_folder', str(cfg / 'skills'),
                                   'folder of skill files', read_only=True).value))
-        self.library = SkillLibrary(folder, self.model.joint_names,
+        # qp_solver: the QP solver of every skill (solve/qp.py), fixed at start-up
+        qp_solver = str(declare('qp_solver', QP_SOLVERS[0], 'QP solver of every skill: '
+                                + ', '.join(QP_SOLVERS), read_only=True).value)
+        if qp_solver not in QP_SOLVERS:
+            msg = f'parameter qp_solver must be one of {", ".join(QP_SOLVERS)}, got {qp_solver!r}'
+            raise ConstraintCtrlError(msg)
+        self.library = SkillLibrary(folder, self.model.joint_names, qp_solver=qp_solver,
                                     reserved=NODE_PARAMETER_GROUPS, model=self.model)
         report = self.library.reload()
         for line in report.log_lines():   # one failed file per line
