@@ -4,14 +4,23 @@ The node only moves data between the port (rclpy or direct DDS) and the middlewa
 ControlLoop. Interface (names relative to the node, default node name constraint_controller):
 
 - subscribes joint_states (sensor_msgs/JointState, matched by name), every topic a skill input
-  is mapped to (parameters inputs.<input>.topic/type/field/scale) and the person-position
-  topics in people.sources (geometry_msgs/PointStamped in base_frame);
+  is mapped to (parameters inputs.<input>.topic/type/field/scale/frame) and the
+  person-position topics in people.sources (geometry_msgs/PointStamped in any frame: put into
+  base_frame with tf, see nodes/points_in_base.py), and /tf, /tf_static (on rclpy through
+  tf2_ros's TransformListener); with robot_description_source 'topic' it takes its robot
+  model from robot_description (std_msgs/String, transient local) at start;
 - publishes ~/command (std_msgs/Float64MultiArray, joint velocities in the order of
-  joint_names), ~/joint_command (sensor_msgs/JointState: the same velocities with names, stamped
-  with the joint_states sample they answer), ~/events (std_msgs/String), ~/status
-  (diagnostic_msgs/DiagnosticArray at status_rate_hz);
-- serves ~/skills/<skill>/activate and ~/reload_skills (std_srvs/Trigger) and the standard
-  parameter services; each skill's tunables are parameters <skill>.<tunable>.
+  joint_names) and/or ~/position_command (joint positions, parameter command_interfaces; see
+  nodes/outputs.py), ~/joint_command (sensor_msgs/JointState: the same velocities (and
+  positions) with names, stamped with the joint_states sample they answer), ~/events
+  (std_msgs/String), ~/status and ~/rows (diagnostic_msgs/DiagnosticArray at status_rate_hz),
+  /diagnostics (about 1 Hz) and ~/markers (visualization_msgs/MarkerArray; nodes/status.py,
+  nodes/markers.py);
+- serves ~/skills/<skill>/activate, ~/hold and ~/reload_skills (std_srvs/Trigger) and the
+  standard parameter services; each skill's tunables are parameters <skill>.<tunable>.
+
+The node starts in the control loop's built-in hold (zero velocity, watchdog active; see
+runtime/loop.py) and returns to it on ~/hold or activate_skill = hold.
 
 A managed node (ROS 2 lifecycle, nodes/lifecycle.py; the standard services ~/change_state,
 ~/get_state, ~/get_available_states, ~/get_available_transitions and ~/transition_event):
@@ -50,32 +59,42 @@ import time
 import traceback
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
 
 from ..errors import ConstraintCtrlError, TransportError
-from ..model.kinematics import RobotModel
-from ..runtime.library import SkillLibrary
+from ..runtime.library import HOLD, SkillLibrary
 from ..runtime.loop import ControlLoop, InputSample, LoopOutput, Snapshot
 from ..runtime.realtime import RealtimeControl, check_priority, threads_named
 from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
 from ..runtime.watchdog_setup import build_watchdog
 from ..safety.watchdog import PersonSample
+from ..solve.qp import QP_SOLVERS
 from ..transport.port import RECEIVE_THREADS
 from .common import config_dir, ros_arguments, serve, split_ros_args, transport_options
 from .lifecycle import serve_lifecycle
 from ..problem_log import ProblemLog
 from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     joint_sample_problem, parse_input_mappings
-from .status import StatusWorker, build_status
+from .points_in_base import PARAMETERS as FRAMES_PARAMETERS
+from .points_in_base import open_points_in_base
+from .robot_source import PARAMETERS as MODEL_PARAMETERS
+from .robot_source import declare_model_source, load_robot_model, watch_robot_description
+from .markers import MarkerBuilder, MarkerJob, SkillShapes
+from .outputs import DEFAULT_COMMAND_INTERFACES, PositionTarget, parse_command_interfaces, \
+    position_message
+from .status import StatusWorker, build_rows, build_status
 
 NODE_NAME = 'constraint_controller'
 SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
-#: Parameters fixed at start-up (changing them needs a restart).
-STARTUP_PARAMETERS = ('robot_description_file', 'skills_folder', 'joint_names', 'rate_hz',
+#: Parameters read at configure: settable while the node is unconfigured, refused while configured.
+STARTUP_PARAMETERS = (*MODEL_PARAMETERS, 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
-                      'people.sources', 'people.timeout')
+                      'people.sources', 'people.timeout', *FRAMES_PARAMETERS,
+                      'command_interfaces', 'hardware_id', 'diagnostics_rate_hz',
+                      'markers_rate_hz', 'qp_solver')
 #: Names of the node's own parameters and parameter groups (and those rclpy declares on every
 #: node): a skill named like one would mix its tunables into them, so it is refused at load.
 NODE_PARAMETER_GROUPS = tuple(sorted(
@@ -117,6 +136,7 @@ class ControllerNode:
         self.loop: Any = None
         self.timer: Any = None
         self._status: StatusWorker | None = None
+        self._markers: StatusWorker | None = None
         self._node_parameters: set[str] = set()   # declared once, read at each configure
         self._declaring: set[str] = set()      # parameters the node is (re)declaring now
         self._user_set: set[str] = set()       # tunables set at launch or at run time
@@ -179,6 +199,10 @@ class ControllerNode:
 
     def deactivate(self) -> str | None:
         """Hold (the running skill stops at a tick boundary), then inactive: zero commands."""
+        if not self.loop.holding():    # the hold's tick still publishes (its 'holding' event)
+            ok, message = self.loop.request_hold(self._switch_timeout)
+            if not ok:
+                self.port.log('warn', f'deactivate: {message}; going inactive anyway')
         with self._tick_lock:
             self._hold()
             self.active = False
@@ -218,10 +242,10 @@ class ControllerNode:
         return None
 
     def _hold(self) -> None:
-        """Stop the running skill (tick lock held): zero velocity, watchdog still running.
-        (Until runtime/loop.py has its built-in hold: no skill active.)"""
-        if self.loop is not None:
-            self.loop.active = None
+        """Queue the loop's built-in hold for the next tick without waiting (safe with the
+        tick lock held): zero velocity, watchdog still running."""
+        if self.loop is not None and not self.loop.holding():
+            self.loop.request_hold()
 
     @staticmethod
     def _read_at_configure(name: str) -> bool:
@@ -249,13 +273,24 @@ class ControllerNode:
         self._node_parameters.add(name)
         return value
 
+    def _declare_view(self, name: str, value: Any, description: str = '',
+                      read_only: bool = True) -> Any:
+        """_param as port.declare_parameter answers (an object with .value), for the helpers
+        that declare node parameters (robot_source, points_in_base, outputs)."""
+        return SimpleNamespace(name=name, value=self._param(name, value, description,
+                                                            read_only))
+
     def _configure(self) -> None:
         port = self.port
         cfg = config_dir()
         declare = self._param
-        robot = str(declare('robot_description_file', str(cfg / 'robots' / 'six_axis_arm.urdf'),
-                            'URDF file of the robot'))
-        self.model = RobotModel.from_urdf(robot)
+        self.model_source = declare_model_source(self._declare_view,
+                                                 cfg / 'robots' / 'six_axis_arm.urdf')
+        self._load_model()
+        watch = watch_robot_description(port, self.model_source, self.loaded_model)
+        if watch is not None:
+            self._made.subscriptions.append(watch)
+        robot = self.loaded_model.origin
         names = list(declare('joint_names', list(self.model.joint_names),
                              'joint order of ~/command'))
         if sorted(names) != sorted(self.model.joint_names):
@@ -274,7 +309,9 @@ class ControllerNode:
         if self.tick_on not in ('timer', 'joint_states'):
             msg = f"parameter tick_on must be 'timer' or 'joint_states', got {self.tick_on!r}"
             raise ConstraintCtrlError(msg)
-        self.base_frame = str(declare('base_frame', 'base_link', 'frame of person positions'))
+        self.base_frame = str(declare('base_frame', self.model.base_link, 'tf frame of the '
+                                      "model's base link (default its root link): person "
+                                      'positions are put into it'))
         sources = [str(s) for s in declare('people.sources', [''],
                                            'PointStamped topics of person positions') if s]
         person_timeout = float(declare('people.timeout', 0.2, 's'))
@@ -289,8 +326,14 @@ class ControllerNode:
         if not folder.is_dir():
             msg = f'skills folder {folder} does not exist (parameter skills_folder)'
             raise ConstraintCtrlError(msg)
-        self.library = SkillLibrary(folder, self.model.joint_names,
-                                    reserved=NODE_PARAMETER_GROUPS)
+        # qp_solver: the QP solver of every skill (solve/qp.py), read at configure
+        qp_solver = str(declare('qp_solver', QP_SOLVERS[0], 'QP solver of every skill: '
+                                + ', '.join(QP_SOLVERS)))
+        if qp_solver not in QP_SOLVERS:
+            msg = f'parameter qp_solver must be one of {", ".join(QP_SOLVERS)}, got {qp_solver!r}'
+            raise ConstraintCtrlError(msg)
+        self.library = SkillLibrary(folder, self.model.joint_names, qp_solver=qp_solver,
+                                    reserved=NODE_PARAMETER_GROUPS, model=self.model)
         report = self.library.reload()
         for line in report.log_lines():   # one failed file per line
             port.log('info' if report.ok else 'warn', f'skills: {line}')
@@ -300,8 +343,9 @@ class ControllerNode:
         self._switch_timeout = max(3.0, 20 * self.dt)
         self._initial = str(declare('initial_skill', '', 'skill to activate at start'))
         declare('activate_skill', '', 'write-only (reads back empty): setting it activates that '
-                'skill, together with its tunables set in the same (atomic) call; the reply '
-                'comes after the first tick of the new skill, with its outcome', read_only=False)
+                'skill, together with its tunables set in the same (atomic) call, or the '
+                f'built-in hold ({HOLD}); the reply comes after the first tick of the new skill, '
+                'with its outcome', read_only=False)
         inputs = port.get_parameters_by_prefix('inputs')
         self.mappings = parse_input_mappings({k: v.value for k, v in inputs.items()})
         for key, param in inputs.items():   # mapped at configure only: read-only from now on
@@ -318,7 +362,6 @@ class ControllerNode:
         self._js_plans: dict[tuple[str, ...], list[tuple[int, int]]] = {}
         self._js_rejected = 0
         self._js_problems = ProblemLog(port.log)
-        self._person_problems = ProblemLog(port.log)
         self._js_stamp: float | None = None
         self._js_header = (0, 0)
         self._answered = (0, 0)   # stamp of the joint_states sample the current tick answers
@@ -332,10 +375,13 @@ class ControllerNode:
 
         t = port.types
         self._recorded_here = set()
-        self._pub_command = self._publisher(t.Float64MultiArray, '~/command', 'default')
-        self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'default')
+        self._setup_outputs(settings, status_rate)
         self._pub_events = self._publisher(t.String, '~/events', 'default')
         self._pub_status = self._publisher(t.DiagnosticArray, '~/status', 'default')
+        # frames hook: /tf and /tf_static (DDS) or tf2_ros (rclpy); persons and point inputs
+        self.points = open_points_in_base(port, self._declare_view, self.base_frame,
+                                          self._subscribe)
+        self._person_problems = self.points.person_faults
         self._subscribe(t.JointState, 'joint_states', self._on_joint_states)
         for mapping in self.mappings.values():
             msg_type = getattr(t, TYPE_ATTRIBUTE[mapping.ros_type])
@@ -346,6 +392,8 @@ class ControllerNode:
         self._services: dict[str, object] = {}
         self._made.services.append(port.create_service(
             t.Trigger, '~/reload_skills', self._guarded('~/reload_skills', self._on_reload)))
+        self._made.services.append(port.create_service(
+            t.Trigger, '~/hold', self._guarded('~/hold', self._on_hold)))
         for name in self.library.names():
             self._add_skill(name)
         # with --realtime the status thread runs one step below the tick: a normal-priority
@@ -353,6 +401,9 @@ class ControllerNode:
         # the tick behind it
         self._status = StatusWorker(
             self._publish_status, port.log, name=f'{NODE_NAME}-status',
+            on_start=None if self.realtime is None else lambda: self._enter_realtime(below=1))
+        self._markers = StatusWorker(
+            self._publish_markers, port.log, name=f'{NODE_NAME}-markers', what='~/markers',
             on_start=None if self.realtime is None else lambda: self._enter_realtime(below=1))
         self._add_bag_topics()
         with self._tick_lock:
@@ -370,9 +421,10 @@ class ControllerNode:
         port = self.port
         if timer is not None:
             port.destroy_timer(timer)
-        status, self._status = self._status, None
-        if status is not None:
-            status.close()
+        for worker in (self._status, self._markers):
+            if worker is not None:
+                worker.close()
+        self._status = self._markers = None
         if self.loop is not None:
             self._switch_delays.extend(self.loop.switch_delays)
         made, self._made = self._made, _Made()
@@ -390,6 +442,73 @@ class ControllerNode:
         self._user_set = set()
         self.loop = self.library = self.watchdog = self.model = None
 
+    def _load_model(self, receive: Any = None) -> None:
+        """The robot model from robot_description_file or the robot_description topic (see
+        nodes/robot_source.py): one step, so a configure transition can call it."""
+        self.loaded_model = load_robot_model(self.port, self.model_source, receive)
+        self.model = self.loaded_model.model
+
+    # ------------------------------------------------------------ outputs (issue 9.4)
+    def _setup_outputs(self, settings: dict[str, Any], status_rate: float) -> None:
+        """Command interfaces, ~/rows, /diagnostics and ~/markers (nodes/outputs.py,
+        status.py, markers.py); all read at configure."""
+        declare, t = self._declare_view, self.port.types
+        self.command_interfaces = parse_command_interfaces(declare(
+            'command_interfaces', DEFAULT_COMMAND_INTERFACES, 'velocity (~/command) and/or '
+            'position (~/position_command)', read_only=True).value)
+        self.hardware_id = str(declare('hardware_id', self.model.description.name or NODE_NAME,
+                                       'hardware_id in /diagnostics', read_only=True).value)
+        diagnostics_rate = float(declare('diagnostics_rate_hz', 1.0, '/diagnostics rate (Hz)',
+                                         read_only=True).value)
+        markers_rate = float(declare('markers_rate_hz', 5.0, '~/markers rate (Hz), 0 = off',
+                                     read_only=True).value)
+        if not (0.0 < diagnostics_rate <= status_rate) or not (0.0 <= markers_rate <= self.rate):
+            msg = (f'parameters diagnostics_rate_hz must be > 0 and at most status_rate_hz '
+                   f'({status_rate:g}), markers_rate_hz 0 (off) to rate_hz ({self.rate:g}); got '
+                   f'{diagnostics_rate:g} and {markers_rate:g}')
+            raise ConstraintCtrlError(msg)
+        self._diagnostics_every = max(1, round(status_rate / diagnostics_rate))
+        self._markers_every = max(1, round(self.rate / markers_rate)) if markers_rate else 0
+        self._status_count = 0
+        velocity = 'velocity' in self.command_interfaces
+        self._pub_command = (self._publisher(t.Float64MultiArray, '~/command', 'command')
+                             if velocity else None)
+        self._position: PositionTarget | None = None
+        if 'position' in self.command_interfaces:
+            self._position = PositionTarget(self._to_command, self.dt,
+                                            float(settings['joint_state_timeout']))
+            self._position_msg = position_message(t, self.joint_names)
+            self._pub_position = self._publisher(t.Float64MultiArray, '~/position_command',
+                                                 'command')
+        self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'command')
+        self._pub_rows = self._publisher(t.DiagnosticArray, '~/rows', 'default')
+        self._pub_diagnostics = self._publisher(t.DiagnosticArray, '/diagnostics', 'default')
+        self._pub_markers = None
+        if self._markers_every:
+            self._pub_markers = self._publisher(t.MarkerArray, '~/markers', 'default')
+            self._marker_builder = MarkerBuilder(self.port, self.base_frame,
+                                                 self._markers_every * self.dt)
+            self._skill_shapes = SkillShapes()
+
+    def _send_position(self, target: list[float] | None, joint: Any) -> None:
+        """On the tick: ~/position_command, and the same positions in ~/joint_command."""
+        joint.position = target if target is not None else []
+        if target is not None:
+            self._position_msg.data = target
+            self._publish(self._pub_position, '~/position_command', self._position_msg)
+
+    def _marker_job(self) -> MarkerJob:
+        """On the tick: copies of what ~/markers draws (the worker builds the message)."""
+        runner = self.loop.active
+        ran = runner is not None and runner.solver.last_status.value == 'ok'
+        return MarkerJob(self.watchdog.geometry(), runner.skill if ran else None,
+                         runner.solver.input_values() if ran else None, self.port.now_ns())
+
+    def _publish_markers(self, job: MarkerJob) -> None:
+        """On the marker thread (a StatusWorker)."""
+        shapes = self._skill_shapes.shapes(job.skill, job.skill_inputs)
+        self._publish(self._pub_markers, '~/markers', self._marker_builder.build(job, shapes))
+
     # ------------------------------------------------------------ plumbing
     # The bag names each topic as the port really used it: the fully qualified name after
     # remapping, from the publisher's or subscription's topic_name (rclpy's property, which the
@@ -402,24 +521,29 @@ class ControllerNode:
         self._bag_add(name, self.port.type_name(msg_type), qos)
         return pub
 
-    def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
-        if self._record_to is None:   # everything the tick reads: the control path
-            self._made.subscriptions.append(self.port.create_subscription(
-                msg_type, topic, callback, 'latest', control=True))
-            return
+    def _subscribe(self, msg_type: Any, topic: str, callback: Any, qos: str = 'latest') -> Any:
+        # 'latest': what the tick reads, the control path; other profiles (/tf, /tf_static)
+        # feed state the callbacks read, off the control path
+        control = qos == 'latest'
+        if self._record_to is None:
+            sub = self.port.create_subscription(msg_type, topic, callback, qos,
+                                                control=control)
+            self._made.subscriptions.append(sub)
+            return sub
         records_to: list[str] = []      # the bag topic, unless another subscription has it
 
         def recorded(msg: Any) -> None:
             if records_to:
                 self._record(records_to[0], msg)
             callback(msg)
-        sub = self.port.create_subscription(msg_type, topic, recorded, 'latest', control=True)
+        sub = self.port.create_subscription(msg_type, topic, recorded, qos, control=control)
         self._made.subscriptions.append(sub)
         name = str(sub.topic_name)
         if name not in self._recorded_here:
             self._recorded_here.add(name)
-            self._bag_add(name, self.port.type_name(msg_type), 'sensor')
+            self._bag_add(name, self.port.type_name(msg_type), 'sensor' if control else qos)
             records_to.append(name)
+        return sub
 
     def _open_recorder(self) -> None:
         """At the end of the first configure, so the bag folder appears once the node is
@@ -541,7 +665,8 @@ class ControllerNode:
     def _input_callback(self, mapping: InputMapping) -> Any:
         def callback(msg: Any) -> None:
             try:
-                value = mapping.extract(msg)
+                value = (self.points.input_value(mapping, msg) if mapping.frame
+                         else mapping.extract(msg))
             except (TypeError, ValueError):
                 value = float('nan')
             stamp = self._stamp(msg.header) if mapping.has_header else time.monotonic()
@@ -550,20 +675,12 @@ class ControllerNode:
         return callback
 
     def _person_callback(self, source: str) -> Any:
-        problems = self._person_problems
-        expected = ('', self.base_frame)
+        points = self.points
 
         def callback(msg: Any) -> None:
-            frame = msg.header.frame_id
-            if frame not in expected:
-                # counted and logged once per source (and once when it stops), not per message;
-                # the source goes stale, which the watchdog treats as a person anywhere
-                problems.problem(source, 'person positions in an unusable frame',
-                                 f'frame {frame!r}, expected {self.base_frame!r}; ignored (no '
-                                 'transform lookup here)')
-                return
-            problems.ok(source, f'person positions in {self.base_frame!r} again')
-            point = np.array([msg.point.x, msg.point.y, msg.point.z], dtype=float)
+            # in base_frame; NaN when it cannot be put there (no or too old transform): the
+            # watchdog then counts a person anywhere. Faults are counted and logged once.
+            point = points.person(source, msg)
             sample = PersonSample(source, point, self._stamp(msg.header))
             with self._lock:   # a new dict: a tick's snapshot keeps the one it took
                 self._people = {**self._people, source: sample}
@@ -611,6 +728,8 @@ class ControllerNode:
             if self._closing or not self.configured:   # released meanwhile
                 return
             snap = self._snapshot()
+            if self._position is not None:
+                self._position.take(snap)
             self._last_tick = snap.now
             if self.active and self._initial and snap.q is not None:
                 self.loop.request_activation(self._initial)
@@ -622,8 +741,7 @@ class ControllerNode:
                 self._send(out)
             else:
                 self._send_zero()
-                if self.loop.active is not None:   # a switch queued before deactivate
-                    self._hold()
+                self._hold()       # a switch queued just before deactivate does not stay
             if self._answered_arrival:
                 self._latency_ns[self._latency_count % self._latency_ns.size] = \
                     time.perf_counter_ns() - self._answered_arrival
@@ -631,6 +749,8 @@ class ControllerNode:
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
+            if self._markers_every and self._ticks % self._markers_every == 0:
+                self._markers.post(self._marker_job())
         except Exception:  # noqa: BLE001 - any failure in a tick must end in a zero command
             self._errors += 1
             try:
@@ -667,7 +787,10 @@ class ControllerNode:
 
     def _send(self, out: LoopOutput) -> None:
         array, joint = self._command_messages(out.command)
-        self._publish(self._pub_command, '~/command', array)
+        if self._position is not None:
+            self._send_position(self._position.target(out.command), joint)
+        if self._pub_command is not None:
+            self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
         for name in out.events:
             self._publish(self._pub_events, '~/events', self.port.types.String(data=name))
@@ -682,7 +805,10 @@ class ControllerNode:
 
     def _send_zero(self) -> None:
         array, joint = self._command_messages(np.zeros(self.model.n_joints))
-        self._publish(self._pub_command, '~/command', array)
+        if self._position is not None:
+            self._send_position(self._position.hold(), joint)
+        if self._pub_command is not None:
+            self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
 
     def _send_status(self, out: LoopOutput) -> None:
@@ -705,6 +831,7 @@ class ControllerNode:
                  'joint_states_rejected': str(self._js_rejected),
                  'joint_states_last_rejection': self._js_problems.last_reason,
                  'person_samples_ignored': str(self._person_problems.total),
+                 **self.points.report(),
                  'recorder': recorder.state if recorder is not None else 'off',
                  'recorder_written': str(recorder.written if recorder is not None else 0),
                  'recorder_dropped': str((recorder.dropped if recorder is not None else 0)
@@ -712,9 +839,14 @@ class ControllerNode:
                  'recorder_error': recorder.error if recorder is not None else '',
                  'samples_dropped': str(sum(f.dropped for f in faults)),
                  'callback_errors': str(sum(f.callback_errors for f in faults))}
-        msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
-                           extra)
+        stamp = self.port.now_ns()
+        msg = build_status(self.port, self.port.node_name, out, stamp, extra, self.hardware_id)
         self._publish(self._pub_status, '~/status', msg)
+        self._publish(self._pub_rows, '~/rows',
+                      build_rows(self.port, out.skill, rows, names, stamp, self.hardware_id))
+        if self._status_count % self._diagnostics_every == 0:
+            self._publish(self._pub_diagnostics, '/diagnostics', msg)
+        self._status_count += 1
 
     # ------------------------------------------------------------- skills
     def _guarded(self, what: str, handler: Any) -> Any:
@@ -803,7 +935,14 @@ class ControllerNode:
             return response
         return callback
 
+    def _on_hold(self, request: Any, response: Any) -> Any:
+        """~/hold: the built-in hold from the next tick on; the reply comes after that tick."""
+        response.success, response.message = self.loop.request_hold(self._switch_timeout)
+        return response
+
     def _cannot_activate(self, name: str) -> str | None:
+        if name == HOLD and self.configured:
+            return None                  # the built-in hold is always available
         if not self.active:
             return (f'the controller is not active (lifecycle state: '
                     f'{"inactive" if self.configured else "unconfigured"}); activate it '

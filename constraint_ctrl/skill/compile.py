@@ -68,7 +68,10 @@ HOLD_MARGIN = 1e-9
 HOLD_BAND = 1e-12
 
 #: Below this many Jacobian entries the whole tick function is flattened into one SX graph
-#: (fastest to evaluate); above it, G = H^T H stays a dense matrix product (fastest to build).
+#: (fastest to evaluate); above it the function returns the rows only, and the solver forms
+#: the level-1 objective G = H^T H + diag, a = H^T h with BLAS (``objective_by_solver``):
+#: CasADi's dense matrix product and the copies around it cost as much as the rows themselves
+#: on a large skill (measured: 48 joints x 200 rows, 415 of 850 us).
 EXPAND_LIMIT = 4000
 #: Most QP rows one skill may have (a vector function counts its components): about 10 s of
 #: compile time on a busy 2-core machine (measured: 2000 rows of position(tool_tip), 9 s).
@@ -175,6 +178,9 @@ class CompiledSkill:
     damping_param: int              # index of regularisation.damping in p
     lower_levels: tuple[LowerLevel, ...] = ()
     compile_seconds: float = 0.0
+    #: True when ``function`` returns every output but G and a (a large skill, EXPAND_LIMIT):
+    #: the solver forms them from hj, hv, the weights and the damping (solve/qp.py).
+    objective_by_solver: bool = False
 
     @property
     def n_q(self) -> int:
@@ -370,7 +376,9 @@ class _Builder:
                   self.t, self.dt, self.x_prev, p]
         rows_fn = ca.Function(f'rows_{spec.name}', inputs, outputs, list(FUNCTION_INPUTS),
                               list(FUNCTION_OUTPUTS[:-2]), {'cse': True})
-        fn = _with_objective(rows_fn, layout, reg_diag, damping, f'skill_{spec.name}')
+        by_solver = J.numel() > EXPAND_LIMIT
+        fn = rows_fn if by_solver else _with_objective(rows_fn, layout, reg_diag, damping,
+                                                       f'skill_{spec.name}')
         lower = tuple(_lower_level_function(tuple(rows), layout, index, reg_diag, damping,
                                             len(self.params.symbols), f'{spec.name}_level')
                       for index in range(1, len(layout.levels)))
@@ -381,7 +389,8 @@ class _Builder:
             unknown_names=tuple(f.name for f in spec.unknowns),
             input_names=tuple(i.name for i in spec.inputs),
             event_names=tuple(ev.name for ev in spec.events),
-            reg_diag=reg_diag, damping_param=damping, lower_levels=lower)
+            reg_diag=reg_diag, damping_param=damping, lower_levels=lower,
+            objective_by_solver=by_solver)
 
     def _constraint_rows(self, con: ConstraintSpec, scope: FormulaScope, path: str
                          ) -> list[tuple[ca.SX | None, ca.SX | None, ca.SX]]:
@@ -539,7 +548,6 @@ def _with_objective(rows_fn: ca.Function, layout: QpLayout, reg_diag: np.ndarray
     out = dict(zip(FUNCTION_OUTPUTS, res))
     hj, hv, w, p = out['hj'], out['hv'], out['weight'], args[-1]
     damping = p[damping_index]
-    n_x = layout.n_x
     G_x = ca.mtimes(hj.T, hj) + ca.diag(damping ** 2 * ca.DM(reg_diag))
     a_x = ca.mtimes(hj.T, hv)
     if layout.soft_ineq:
@@ -549,10 +557,7 @@ def _with_objective(rows_fn: ca.Function, layout: QpLayout, reg_diag: np.ndarray
     else:
         G, a = G_x, a_x
     outputs = list(res) + [ca.densify(G), ca.densify(a)]
-    fn = ca.Function(name, args, outputs, list(FUNCTION_INPUTS), list(FUNCTION_OUTPUTS))
-    if rows_fn.size1_out(2) * max(n_x, 1) <= EXPAND_LIMIT:
-        fn = fn.expand()
-    return fn
+    return ca.Function(name, args, outputs, list(FUNCTION_INPUTS), list(FUNCTION_OUTPUTS)).expand()
 
 
 def _lower_level_function(rows: tuple[RowInfo, ...], layout: QpLayout, index: int,

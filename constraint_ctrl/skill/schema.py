@@ -122,7 +122,7 @@ class SkillSpec:
     """A whole skill file, validated for structure; formulas are compiled later."""
 
     name: str
-    robot: Path                         # resolved URDF path
+    robot: Path | None = None           # resolved URDF path; None: the node's model
     source: str = '<string>'            # file the spec came from
     description: str = ''
     base_link: str | None = None

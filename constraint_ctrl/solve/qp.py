@@ -26,7 +26,8 @@ rows were not solved.
 
 Two QP solvers are available, on the same matrices: quadprog (Goldfarb-Idnani dual active set, the
 default) and DAQP (PyPI ``daqp``, a dual active-set solver for many inequalities), chosen with
-``qp_solver``.
+``qp_solver``. Either is called on the QP without the slack variables of the soft inequality
+rows when it has some (solve/soft_rows.py): the same solution, on a QP the size of the robot.
 """
 from __future__ import annotations
 
@@ -40,6 +41,7 @@ import quadprog
 
 from ..skill.compile import (FUNCTION_INPUTS, FUNCTION_OUTPUTS, LOWER_LEVEL_INPUTS,
                              LOWER_LEVEL_OUTPUTS, CompiledSkill, LowerLevel)
+from .soft_rows import SoftRowQp
 
 #: Outputs read as 2-D arrays (all others are vectors).
 MATRIX_OUTPUTS = frozenset({'J', 'hj', 'C', 'G', 'X'})
@@ -49,6 +51,9 @@ QP_SOLVERS = ('quadprog', 'daqp')
 DAQP_INF = 1e30
 #: DAQP's sense flag of an equality row.
 DAQP_EQUALITY = 5
+#: Soft inequality rows are solved without slack variables (solve/soft_rows.py) when their
+#: slacks add at least this much to the squared variable count, n_z^2 - n_x^2 (see _level_call).
+SLACK_ELIMINATION_MIN = 2000
 #: DAQP's primal feasibility tolerance: far below the 1e-6 agreement asked of the two solvers.
 DAQP_PRIMAL_TOL = 1e-10
 
@@ -111,7 +116,7 @@ class QpFailure(Exception):
 class _QuadprogCall:
     """quadprog.solve_qp(G, a, C, b, meq) -> (z, iterations, 1-based active columns)."""
 
-    def __init__(self, n_con: int, meq: int) -> None:
+    def __init__(self, n_con: int, meq: int, n_box: int = 0) -> None:
         self.meq = meq
 
     def __call__(self, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray
@@ -126,38 +131,65 @@ class _QuadprogCall:
 
 
 class _DaqpCall:
-    """The same QP with DAQP: H = G, f = -a, blower = b <= C^T z (<= b for the first meq)."""
+    """The same QP with DAQP: H = G, f = -a, b <= C^T z (== b for the first meq columns).
+
+    The last 2 * ``n_box`` columns of C are the box (lower sides, then upper sides, on the first
+    n_box variables): DAQP takes them as its simple bounds, which it handles without a row of A.
+    """
 
     EXIT_TEXT = {-1: 'infeasible', -2: 'cycling', -3: 'unbounded', -4: 'iteration limit',
                  -5: 'not convex', -6: 'overdetermined initial active set'}
 
-    def __init__(self, n_con: int, meq: int) -> None:
+    def __init__(self, n_con: int, meq: int, n_box: int = 0) -> None:
         import daqp  # imported here: an optional solver need not be installed for quadprog
 
         self._solve = daqp.solve
         self.meq = meq
-        self.upper = np.full(n_con, DAQP_INF)
-        self.sense = np.zeros(n_con, dtype=np.intc)
-        self.sense[:meq] = DAQP_EQUALITY
+        self.n_box = n_box
+        self.n_rows = n_con - 2 * n_box          # general columns: rows of DAQP's A
+        size = n_box + self.n_rows
+        self.upper = np.full(size, DAQP_INF)
+        self.lower = np.zeros(size)
+        self.sense = np.zeros(size, dtype=np.intc)
+        self.sense[n_box:n_box + meq] = DAQP_EQUALITY
         self.f = np.zeros(0)
+        # 1-based columns of C for DAQP's multipliers: a simple bound's lower or upper side
+        rows = np.arange(self.n_rows)
+        self._lower_col = np.concatenate([self.n_rows + np.arange(n_box), rows]) + 1
+        self._upper_col = np.concatenate([self.n_rows + n_box + np.arange(n_box), rows]) + 1
 
-    def __call__(self, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray
-                 ) -> tuple[np.ndarray, int, np.ndarray]:
+    def arguments(self, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray) -> tuple:
+        """daqp.solve's H, f, A, bupper, blower, sense for this QP (views and own buffers)."""
         if self.f.shape != a.shape:
             self.f = np.empty_like(a)
         np.negative(a, out=self.f)
+        if not (G.flags.c_contiguous or G.flags.f_contiguous):
+            G = np.ascontiguousarray(G)      # DAQP reads H as one block (G is symmetric)
+        nb, nr = self.n_box, self.n_rows
+        self.lower[:nb] = b[nr:nr + nb]
+        np.negative(b[nr + nb:], out=self.upper[:nb])
+        self.lower[nb:] = b[:nr]
         if self.meq:
-            self.upper[:self.meq] = b[:self.meq]
+            self.upper[nb:nb + self.meq] = b[:self.meq]
         # C is column-major (CasADi's layout), so C.T is the row-major A DAQP wants: no copy
-        z, _, flag, info = self._solve(G, self.f, C.T, self.upper, b, self.sense,
-                                       primal_tol=DAQP_PRIMAL_TOL)
+        return G, self.f, C[:, :nr].T, self.upper, self.lower, self.sense
+
+    def __call__(self, G: np.ndarray, a: np.ndarray, C: np.ndarray, b: np.ndarray
+                 ) -> tuple[np.ndarray, int, np.ndarray]:
+        z, _, flag, info = self._solve(*self.arguments(G, a, C, b), primal_tol=DAQP_PRIMAL_TOL)
         if flag < 1:
             status = SolveStatus.NOT_CONVEX if flag == -5 else SolveStatus.INFEASIBLE
             raise QpFailure(status, f'daqp: {self.EXIT_TEXT.get(flag, f"exit flag {flag}")}')
-        return z, int(info['iterations']), np.flatnonzero(info['lam']) + 1
+        lam = info['lam']
+        hit = np.flatnonzero(lam)
+        return z, int(info['iterations']), np.where(lam[hit] < 0.0, self._lower_col[hit],
+                                                    self._upper_col[hit])
 
 
-def _qp_call(name: str) -> Callable[[int, int], Callable[..., tuple[np.ndarray, int, np.ndarray]]]:
+QpCallMaker = Callable[[int, int, int], Callable[..., tuple[np.ndarray, int, np.ndarray]]]
+
+
+def _qp_call(name: str) -> QpCallMaker:
     if name == 'quadprog':
         return _QuadprogCall
     if name == 'daqp':
@@ -166,12 +198,27 @@ def _qp_call(name: str) -> Callable[[int, int], Callable[..., tuple[np.ndarray, 
     raise ValueError(msg)
 
 
+def _level_call(make_call: QpCallMaker, n_x: int, n_z: int, n_con: int, meq: int,
+                soft_cols: list[int], slack_of: list[int], slack_variables: bool
+                ) -> Callable[..., tuple[np.ndarray, int, np.ndarray]]:
+    """The QP call of one level: without the slack variables (soft_rows.py) when that pays.
+
+    The solvers' work per iteration grows with the square of the variable count, the reduced
+    QP's guesses cost a fixed amount of numpy work each: below ``SLACK_ELIMINATION_MIN`` extra
+    squared variables the plain QP with its slacks is as fast or faster (measured: 6 joints x
+    50 rows, 33 slacks, favour the plain QP; 24 x 50 the reduced one).
+    """
+    if soft_cols and not slack_variables and n_z ** 2 - n_x ** 2 >= SLACK_ELIMINATION_MIN:
+        return SoftRowQp(n_x, n_z, n_con, meq, np.array(soft_cols), np.array(slack_of),
+                         make_call, n_x)
+    return make_call(n_con, meq, n_x)
+
+
 class _LevelBuffers:
     """A lower level's compiled function bound to the buffers it reads and writes."""
 
-    def __init__(self, level: LowerLevel, read: dict[str, np.ndarray],
-                 make_call: Callable[[int, int], Callable[..., tuple[np.ndarray, int, np.ndarray]]]
-                 ) -> None:
+    def __init__(self, level: LowerLevel, read: dict[str, np.ndarray], make_call: QpCallMaker,
+                 skill: CompiledSkill, slack_variables: bool) -> None:
         self.level = level
         fn = level.function
         buf, self.evaluate = fn.buffer()
@@ -185,7 +232,11 @@ class _LevelBuffers:
             flat = np.zeros(rows * cols)
             buf.set_res(i, memoryview(flat))
             self.out[name] = flat.reshape((rows, cols), order='F') if name in ('G', 'C') else flat
-        self.qp = make_call(level.n_con, 0)
+        # the columns with a slack: this level's soft inequality rows (the held rows have none)
+        ineq = [i for i in level.rows if skill.rows[i].kind != 'equal']
+        soft = [c for c, row in enumerate(level.con_row) if row in ineq]
+        self.qp = _level_call(make_call, skill.n_x, level.n_z, level.n_con, 0, soft,
+                              [ineq.index(level.con_row[c]) for c in soft], slack_variables)
 
 
 class SkillSolver:
@@ -196,9 +247,13 @@ class SkillSolver:
     functions read the first function's output buffers directly too. ``diagnostics()``
     computes the per-row report from the last tick's buffers on demand, so the tick itself stays
     lean; call it before the next ``solve``. ``qp_solver`` picks the QP solver (``QP_SOLVERS``).
+    Soft inequality rows are solved without their slack variables (solve/soft_rows.py, the same
+    solution); ``slack_variables=True`` solves every QP with them, as written in the module
+    docstring (for comparisons).
     """
 
-    def __init__(self, skill: CompiledSkill, qp_solver: str = 'quadprog') -> None:
+    def __init__(self, skill: CompiledSkill, qp_solver: str = 'quadprog', *,
+                 slack_variables: bool = False) -> None:
         self.skill = skill
         make_call = _qp_call(qp_solver)
         self.qp_solver = qp_solver
@@ -220,19 +275,31 @@ class SkillSolver:
             source = {'q_now': 'q', 's_now': 's'}.get(name, name)
             buf.set_arg(i, memoryview(self._inputs[source]))
         self._flat: dict[str, np.ndarray] = {}
-        for i, name in enumerate(FUNCTION_OUTPUTS):
-            rows, cols = fn.size1_out(i), fn.size2_out(i)
-            flat = np.zeros(rows * cols)
-            buf.set_res(i, memoryview(flat))
+        n_z = skill.layout.n_z
+        for name in FUNCTION_OUTPUTS:
+            if skill.objective_by_solver and name in ('G', 'a'):
+                rows, cols = (n_z, n_z) if name == 'G' else (n_z, 1)   # formed by _objective
+                flat = np.zeros(rows * cols)
+            else:
+                i = fn.index_out(name)
+                rows, cols = fn.size1_out(i), fn.size2_out(i)
+                flat = np.zeros(rows * cols)
+                buf.set_res(i, memoryview(flat))
             self._flat[name] = flat
             # CasADi writes column-major: a Fortran-ordered view gives the matrix
             self._outputs[name] = flat.reshape((rows, cols), order='F') \
                 if name in MATRIX_OUTPUTS else flat
         self.p = self._inputs['p']
         self.p[:] = skill.default_params()
+        if skill.objective_by_solver:
+            self._evaluate = self._evaluate_and_form_objective(self._evaluate)
         lay = skill.layout
         self._is_eq = np.array([r.kind == 'equal' for r in skill.rows], dtype=bool)
-        self._qp = make_call(lay.n_con, lay.meq)
+        n_hard = lay.meq + len(lay.hard_lo) + len(lay.hard_hi)
+        soft_rows = list(lay.soft_lo) + list(lay.soft_hi)
+        self._qp = _level_call(make_call, lay.n_x, lay.n_z, lay.n_con, lay.meq,
+                               list(range(n_hard, n_hard + len(soft_rows))),
+                               [lay.soft_ineq.index(r) for r in soft_rows], slack_variables)
         # lower levels: X holds the solution of each level above as a column
         n_lower = len(skill.lower_levels)
         self._x_flat = np.zeros(lay.n_x * max(n_lower, 1))
@@ -243,13 +310,41 @@ class SkillSolver:
                     if name not in ('X', 'p')}
             read['X'] = self._x_flat[:lay.n_x * level.index]
             read['p'] = self.p
-            self._levels.append(_LevelBuffers(level, read, make_call))
+            self._levels.append(_LevelBuffers(level, read, make_call, skill, slack_variables))
         self._level_of_row = np.array([lay.levels.index(r.level) if not r.hard else 0
                                        for r in skill.rows], dtype=int)
         self.last_x = np.zeros(lay.n_x)
         self.last_iact = np.zeros(0, dtype=int)
         self.last_status = SolveStatus.OK
         self.last_levels_solved = 0
+
+    def _evaluate_and_form_objective(self, evaluate: Callable[[], None]) -> Callable[[], None]:
+        """The compiled call, then G and a of level 1 with BLAS (CompiledSkill.objective_by_solver):
+
+            G = [[H^T H + lambda^2 diag(r), 0], [0, diag(w_slack)]],  a = [H^T h, 0]
+
+        with H = hj, h = hv from the compiled function (solve/qp.py module docstring). Only the
+        joint block, its diagonal and the slack diagonal are written: the rest stays zero.
+        """
+        skill, out = self.skill, self._outputs
+        n_x = skill.n_x
+        G, a, hj, hv = out['G'], out['a'], out['hj'], out['hv']
+        g_flat, weight = self._flat['G'], self._flat['weight']
+        diag_x = np.arange(n_x) * (G.shape[0] + 1)
+        slack = n_x + np.arange(len(skill.layout.soft_ineq))
+        diag_slack = slack * (G.shape[0] + 1)
+        slack_rows = np.array(skill.layout.soft_ineq, dtype=np.intp)
+        reg, damping = skill.reg_diag, skill.damping_param
+        p = self.p
+        gx = G[:n_x, :n_x]
+
+        def evaluate_and_form() -> None:
+            evaluate()
+            gx[...] = hj.T @ hj
+            g_flat[diag_x] += p[damping] ** 2 * reg
+            g_flat[diag_slack] = weight[slack_rows]
+            a[:n_x] = hj.T @ hv
+        return evaluate_and_form
 
     # ------------------------------------------------------------ buffers
     @property
@@ -268,6 +363,13 @@ class SkillSolver:
         """Joint and unknown values at activation, read by start_value() in formulas."""
         self._inputs['q_start'][:] = q
         self._inputs['s_start'][:] = s
+
+    def input_values(self) -> dict[str, np.ndarray]:
+        """Copies of the function inputs of the last solve, by name (FUNCTION_INPUTS): what a
+        drawing of the skill's geometry evaluates (skill/geometry.py); call it on the tick.
+        q_now and s_now are q and s, as the function is fed them."""
+        return {name: self._inputs[{'q_now': 'q', 's_now': 's'}.get(name, name)].copy()
+                for name in FUNCTION_INPUTS}
 
     # -------------------------------------------------------------- solve
     def solve(self, q: np.ndarray, s: np.ndarray, u: np.ndarray, t: float, dt: float,

@@ -189,6 +189,10 @@ def test_bag_reads_back_with_rosbags(setup) -> None:
         assert topics['/joint_states'] == 'sensor_msgs/msg/JointState'
         assert topics[f'{NODE}/status'] == 'diagnostic_msgs/msg/DiagnosticArray'
         assert topics[f'{NODE}/events'] == 'std_msgs/msg/String'
+        # issue 9.4: the rows, /diagnostics and the markers are recorded like the rest
+        assert topics[f'{NODE}/rows'] == 'diagnostic_msgs/msg/DiagnosticArray'
+        assert topics['/diagnostics'] == 'diagnostic_msgs/msg/DiagnosticArray'
+        assert topics[f'{NODE}/markers'] == 'visualization_msgs/msg/MarkerArray'
         counts: dict[str, int] = {}
         events = []
         for conn, _, raw in reader.messages():
@@ -197,5 +201,6 @@ def test_bag_reads_back_with_rosbags(setup) -> None:
                 events.append(reader.deserialize(raw, conn.msgtype).data)
         assert counts[f'{NODE}/command'] > 100
         assert counts['/joint_states'] > 100
+        assert counts[f'{NODE}/markers'] >= 2 and counts[f'{NODE}/rows'] >= 2
         assert 'arrived' in events
     assert (bag / 'metadata.yaml').read_text().count('storage_identifier: mcap') == 1

@@ -3,8 +3,9 @@
 quadprog (Goldfarb-Idnani dual active set, in C from the Fortran original) and DAQP (PyPI `daqp`,
 a dual active-set method written independently) solve the very QPs the engine builds: the
 generated chains of the benchmark's scaling table (one and two priority levels, many soft
-inequality rows) at random states, and every skill of the package along a lockstep run. Their
-commands must agree to 1e-6 and their statuses must match.
+inequality rows; every cell of the table) at random states, and every skill of the package along
+a lockstep run. Their commands must agree to 1e-6 and their statuses must match (one cell is a
+known exception, APART).
 """
 from __future__ import annotations
 
@@ -23,8 +24,21 @@ pytest.importorskip('daqp')
 SKILLS = sorted((Path(__file__).resolve().parents[2] / 'config' / 'skills').glob('*.yaml'))
 
 
-@pytest.mark.parametrize(('joints', 'rows', 'levels'), [(6, 50, 1), (12, 50, 2), (24, 200, 1),
-                                                        (6, 200, 2)])
+#: Every cell of the benchmark's scaling table (tools/bench.py: bench_scaling).
+CELLS = [(j, r, lv) for j in (6, 12, 24, 48) for r in (10, 50, 200) for lv in (1, 2)]
+#: Cells where the two solvers' second levels differ by more than 1e-6 at these states: the
+#: lower level holds ~30 equality rows of level 1 in bands of 1e-12 on a 48-joint chain with
+#: links of 1 cm, and DAQP's primal tolerance (1e-10) moves its solution along the nearly
+#: singular directions of the held rows (seen: 7.7e-6 here, up to 2.4e-4 along a closed loop).
+#: Both solvers agree with themselves without slack variables to 1e-9
+#: (test_soft_rows_without_slacks.py); which of the two is nearer the exact lower level is not
+#: settled.
+APART = {(48, 200, 2)}
+
+
+@pytest.mark.parametrize(('joints', 'rows', 'levels'), [
+    pytest.param(*cell, marks=pytest.mark.xfail(strict=True, reason='see APART'))
+    if cell in APART else cell for cell in CELLS])
 def test_solvers_agree_on_generated_chains(tmp_path, joints, rows, levels) -> None:
     urdf = tmp_path / 'chain.urdf'
     urdf.write_text(generated_chain_urdf(joints))
@@ -39,7 +53,7 @@ def test_solvers_agree_on_generated_chains(tmp_path, joints, rows, levels) -> No
         b = two.solve(q, np.zeros(0), np.zeros(0), 0.0, 0.002, x_prev)
         assert a.status is b.status, (a.message, b.message)
         assert a.levels_solved == b.levels_solved == levels
-        np.testing.assert_allclose(a.x, b.x, atol=1e-6)
+        np.testing.assert_allclose(a.x, b.x, atol=1e-6, rtol=0)
         compared += int(np.abs(a.x).max() > 1e-6)
     assert compared >= 6    # real commands, not zeros
 
