@@ -199,7 +199,7 @@ class ControllerNode:
 
     def deactivate(self) -> str | None:
         """Hold (the running skill stops at a tick boundary), then inactive: zero commands."""
-        if not self.loop.holding():    # the hold's tick still publishes (its 'holding' event)
+        if not self.loop.holding:    # the hold's tick still publishes (its 'holding' event)
             ok, message = self.loop.request_hold(self._switch_timeout)
             if not ok:
                 self.port.log('warn', f'deactivate: {message}; going inactive anyway')
@@ -244,7 +244,7 @@ class ControllerNode:
     def _hold(self) -> None:
         """Queue the loop's built-in hold for the next tick without waiting (safe with the
         tick lock held): zero velocity, watchdog still running."""
-        if self.loop is not None and not self.loop.holding():
+        if self.loop is not None and not self.loop.holding:
             self.loop.request_hold()
 
     @staticmethod
