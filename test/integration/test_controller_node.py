@@ -9,6 +9,7 @@ recorded bag back with `rosbags` (an outside reader of rosbag2).
 from __future__ import annotations
 
 import os
+import random
 import shutil
 import signal
 import subprocess
@@ -115,13 +116,22 @@ def setup(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Robot, sub
         text = (ROOT / 'config' / 'skills' / name).read_text()
         (skills / name).write_text(text.replace('../robots/', str(ROOT / 'config' / 'robots') + '/'))
     bag = work / 'bag'
-    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    domain = str(random.randint(101, 200))      # its own, not one another module set
+    env = dict(os.environ, PYTHONPATH=str(ROOT), ROS_DOMAIN_ID=domain)
     proc = subprocess.Popen(
         [sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport', 'dds',
          '--record', str(bag), '--ros-args', '--params-file', str(ROOT / 'config' / 'controller.yaml'),
          '-p', f'skills_folder:={skills}', '-p', 'rate_hz:=250.0'],
         cwd=work, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
-    robot = Robot()
+    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
+    os.environ['ROS_DOMAIN_ID'] = domain
+    try:
+        robot = Robot()
+    finally:
+        if saved is None:
+            os.environ.pop('ROS_DOMAIN_ID', None)
+        else:
+            os.environ['ROS_DOMAIN_ID'] = saved
     try:
         yield robot, proc, bag
     finally:
