@@ -177,8 +177,9 @@ def test_failing_reload_keeps_the_running_skill(setup) -> None:
     reply = robot.trigger(f'{NODE}/reload_skills')
     assert not reply.success
     assert 'broken.yaml' in reply.message
-    time.sleep(0.5)
-    assert robot.moving(), 'the running skill stopped after a failed reload'
+    # eventually, not at a fixed time: on a loaded machine the watchdog may pause the arm for a
+    # late joint_states sample at any moment, and the skill then resumes
+    assert wait_until(robot.moving, 10.0), 'the running skill stopped after a failed reload'
     status = robot.status[-1].status[0]
     assert dict((kv.key, kv.value) for kv in status.values)['skill'] == 'keep_tool_vertical'
 
