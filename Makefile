@@ -5,9 +5,9 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test bench clean
+.PHONY: demo test lint bench clean
 
-$(STAMP): setup.py setup.cfg
+$(STAMP): setup.py setup.cfg pyproject.toml
 	$(PYTHON) -m venv $(VENV)
 	$(PY) -m pip install --quiet --upgrade pip
 	$(PY) -m pip install --quiet -e '.[test]'
@@ -16,8 +16,12 @@ $(STAMP): setup.py setup.cfg
 demo: $(STAMP)
 	$(VENV)/bin/constraint-ctrl demo --out out/demo
 
-test: $(STAMP)
+test: lint
 	$(PY) -m pytest -q test
+
+# ruff with the rules in pyproject.toml; part of `make test`
+lint: $(STAMP)
+	$(VENV)/bin/ruff check .
 
 bench: $(STAMP)
 	$(VENV)/bin/constraint-ctrl bench --json out/bench.json

@@ -9,7 +9,8 @@ PACKAGE = 'constraint_ctrl'
 setup(
     name=PACKAGE,
     version='0.1.0',
-    description='Runtime constraint-based robot control: task functions, a QP per tick, a watchdog.',
+    description=('Runtime constraint-based robot control: task functions, a QP per tick, '
+                 'a watchdog.'),
     packages=find_packages(include=[PACKAGE, PACKAGE + '.*']),
     data_files=[
         ('share/ament_index/resource_index/packages', ['resource/' + PACKAGE]),
@@ -40,7 +41,8 @@ setup(
         'tqdm>=4.60',
     ],
     extras_require={
-        'test': ['pytest>=7.3', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6', 'pytransform3d>=3'],
+        'test': ['pytest>=7.3', 'hypothesis>=6', 'pin>=2.7', 'osqp>=0.6', 'pytransform3d>=3',
+                 'ruff>=0.6'],
     },
     zip_safe=False,
     maintainer='constraint_ctrl developers',

@@ -27,11 +27,13 @@ def _check(args: argparse.Namespace) -> int:
 
     Exit code: 0 all clean, 1 warnings or errors found, 2 a file could not be loaded.
     """
+    from .model.kinematics import RobotModel
     from .tools.check import check_file
+    robot = RobotModel.from_urdf(args.robot) if args.robot else None
     status = 0
     for path in args.skills:
         try:
-            report = check_file(Path(path), rate_hz=args.rate)
+            report = check_file(Path(path), rate_hz=args.rate, robot=robot)
         except ConstraintCtrlError as err:
             print(f'error: {err}', file=sys.stderr)
             status = 2
@@ -47,7 +49,8 @@ def _simulate(args: argparse.Namespace) -> int:
     summary, written = simulate_file(Path(args.skill), args.duration, Path(args.out),
                                      dt=args.tick, progress=not args.quiet,
                                      params_file=Path(args.params_file) if args.params_file
-                                     else None, qp_solver=args.qp_solver)
+                                     else None, qp_solver=args.qp_solver,
+                                     robot=Path(args.robot) if args.robot else None)
     cons = summary['constraints']
     assert isinstance(cons, dict)
     print(f"simulated {summary['skill']} for {args.duration} s "
@@ -176,6 +179,10 @@ def _run_node(command: str, argv: list[str]) -> int:
     return int(module.run(argv) or 0)
 
 
+ROBOT_HELP = ('URDF of the robot for skills that name none (no robot: in the file; the '
+              "controller compiles them against its own model); a skill's own robot: wins")
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog='constraint-ctrl', description=__doc__.splitlines()[0])
     parser.add_argument('--debug', action='store_true',
@@ -188,6 +195,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument('--rate', type=float, default=500.0, metavar='HZ',
                    help="control rate the behaviours are checked against (default: the node's "
                         'rate_hz, 500)')
+    p.add_argument('--robot', metavar='FILE', help=ROBOT_HELP)
     p.set_defaults(func=_check)
 
     p = sub.add_parser('simulate', help='lockstep kinematic simulation of one skill')
@@ -203,6 +211,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument('--quiet', action='store_true', help='no progress bar')
     p.add_argument('--qp-solver', choices=QP_SOLVER_CHOICES, default='quadprog',
                    help='QP solver of every level (same matrices, same answers)')
+    p.add_argument('--robot', metavar='FILE', help=ROBOT_HELP)
     p.set_defaults(func=_simulate)
 
     p = sub.add_parser('bench', help='measure tick cost, scaling, watchdog and end-to-end latency')

@@ -4,7 +4,8 @@ from __future__ import annotations
 import argparse
 import gc
 import sys
-from typing import Any, Callable
+from typing import Any
+from collections.abc import Callable
 from pathlib import Path
 
 from ..transport.port import DISTRO_CHOICES, TRANSPORTS

@@ -4,14 +4,23 @@ The node only moves data between the port (rclpy or direct DDS) and the middlewa
 ControlLoop. Interface (names relative to the node, default node name constraint_controller):
 
 - subscribes joint_states (sensor_msgs/JointState, matched by name), every topic a skill input
-  is mapped to (parameters inputs.<input>.topic/type/field/scale) and the person-position
-  topics in people.sources (geometry_msgs/PointStamped in base_frame);
+  is mapped to (parameters inputs.<input>.topic/type/field/scale/frame) and the
+  person-position topics in people.sources (geometry_msgs/PointStamped in any frame: put into
+  base_frame with tf, see nodes/points_in_base.py), and /tf, /tf_static (on rclpy through
+  tf2_ros's TransformListener); with robot_description_source 'topic' it takes its robot
+  model from robot_description (std_msgs/String, transient local) at start;
 - publishes ~/command (std_msgs/Float64MultiArray, joint velocities in the order of
-  joint_names), ~/joint_command (sensor_msgs/JointState: the same velocities with names, stamped
-  with the joint_states sample they answer), ~/events (std_msgs/String), ~/status
-  (diagnostic_msgs/DiagnosticArray at status_rate_hz);
-- serves ~/skills/<skill>/activate and ~/reload_skills (std_srvs/Trigger) and the standard
-  parameter services; each skill's tunables are parameters <skill>.<tunable>.
+  joint_names) and/or ~/position_command (joint positions, parameter command_interfaces; see
+  nodes/outputs.py), ~/joint_command (sensor_msgs/JointState: the same velocities (and
+  positions) with names, stamped with the joint_states sample they answer), ~/events
+  (std_msgs/String), ~/status and ~/rows (diagnostic_msgs/DiagnosticArray at status_rate_hz),
+  /diagnostics (about 1 Hz) and ~/markers (visualization_msgs/MarkerArray; nodes/status.py,
+  nodes/markers.py);
+- serves ~/skills/<skill>/activate, ~/hold and ~/reload_skills (std_srvs/Trigger) and the
+  standard parameter services; each skill's tunables are parameters <skill>.<tunable>.
+
+The node starts in the control loop's built-in hold (zero velocity, watchdog active; see
+runtime/loop.py) and returns to it on ~/hold or activate_skill = hold.
 
 Joint states are judged per joint: a valid sample refreshes exactly the model joints it names,
 and every joint must be fresh for the watchdog to let the arm move; malformed samples are
@@ -44,8 +53,7 @@ from typing import Any
 import numpy as np
 
 from ..errors import ConstraintCtrlError, TransportError
-from ..model.kinematics import RobotModel
-from ..runtime.library import SkillLibrary
+from ..runtime.library import HOLD, SkillLibrary
 from ..runtime.loop import ControlLoop, InputSample, LoopOutput, Snapshot
 from ..runtime.realtime import RealtimeControl, check_priority, threads_named
 from ..runtime.watchdog_setup import DEFAULTS as WATCHDOG_DEFAULTS
@@ -56,14 +64,23 @@ from .common import config_dir, ros_arguments, serve, split_ros_args, transport_
 from ..problem_log import ProblemLog
 from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     joint_sample_problem, parse_input_mappings
-from .status import StatusWorker, build_status
+from .points_in_base import PARAMETERS as FRAMES_PARAMETERS
+from .points_in_base import open_points_in_base
+from .robot_source import PARAMETERS as MODEL_PARAMETERS
+from .robot_source import declare_model_source, load_robot_model, watch_robot_description
+from .markers import MarkerBuilder, MarkerJob, SkillShapes
+from .outputs import DEFAULT_COMMAND_INTERFACES, PositionTarget, parse_command_interfaces, \
+    position_message
+from .status import StatusWorker, build_rows, build_status
 
 NODE_NAME = 'constraint_controller'
 SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
 #: Parameters fixed at start-up (changing them needs a restart).
-STARTUP_PARAMETERS = ('robot_description_file', 'skills_folder', 'joint_names', 'rate_hz',
+STARTUP_PARAMETERS = (*MODEL_PARAMETERS, 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
-                      'people.sources', 'people.timeout')
+                      'people.sources', 'people.timeout', *FRAMES_PARAMETERS,
+                      'command_interfaces', 'hardware_id', 'diagnostics_rate_hz',
+                      'markers_rate_hz')
 #: Names of the node's own parameters and parameter groups (and those rclpy declares on every
 #: node): a skill named like one would mix its tunables into them, so it is refused at load.
 NODE_PARAMETER_GROUPS = tuple(sorted(
@@ -84,9 +101,11 @@ class ControllerNode:
         self._tick_lock = threading.Lock()
         cfg = config_dir()
         declare = port.declare_parameter
-        robot = str(declare('robot_description_file', str(cfg / 'robots' / 'six_axis_arm.urdf'),
-                            'URDF file of the robot', read_only=True).value)
-        self.model = RobotModel.from_urdf(robot)
+        self.model_source = declare_model_source(declare, cfg / 'robots' / 'six_axis_arm.urdf')
+        self._load_model()
+        self._description_watch = watch_robot_description(port, self.model_source,
+                                                           self.loaded_model)
+        robot = self.loaded_model.origin
         names = list(declare('joint_names', list(self.model.joint_names),
                              'joint order of ~/command', read_only=True).value)
         if sorted(names) != sorted(self.model.joint_names):
@@ -106,8 +125,9 @@ class ControllerNode:
         if self.tick_on not in ('timer', 'joint_states'):
             msg = f"parameter tick_on must be 'timer' or 'joint_states', got {self.tick_on!r}"
             raise ConstraintCtrlError(msg)
-        self.base_frame = str(declare('base_frame', 'base_link', 'frame of person positions',
-                                      read_only=True).value)
+        self.base_frame = str(declare('base_frame', self.model.base_link, 'tf frame of the '
+                                      "model's base link (default its root link): person "
+                                      'positions are put into it', read_only=True).value)
         sources = [str(s) for s in declare('people.sources', [''],
                                            'PointStamped topics of person positions',
                                            read_only=True).value if s]
@@ -121,7 +141,7 @@ class ControllerNode:
         folder = Path(str(declare('skills_folder', str(cfg / 'skills'),
                                   'folder of skill files', read_only=True).value))
         self.library = SkillLibrary(folder, self.model.joint_names,
-                                    reserved=NODE_PARAMETER_GROUPS)
+                                    reserved=NODE_PARAMETER_GROUPS, model=self.model)
         report = self.library.reload()
         for line in report.log_lines():   # one failed file per line
             port.log('info' if report.ok else 'warn', f'skills: {line}')
@@ -132,8 +152,9 @@ class ControllerNode:
         self._initial = str(declare('initial_skill', '', 'skill to activate at start',
                                     read_only=True).value)
         declare('activate_skill', '', 'write-only (reads back empty): setting it activates that '
-                'skill, together with its tunables set in the same (atomic) call; the reply '
-                'comes after the first tick of the new skill, with its outcome')
+                'skill, together with its tunables set in the same (atomic) call, or the '
+                f'built-in hold ({HOLD}); the reply comes after the first tick of the new skill, '
+                'with its outcome')
         inputs = port.get_parameters_by_prefix('inputs')
         self.mappings = parse_input_mappings({k: v.value for k, v in inputs.items()})
         for key, param in inputs.items():   # mapped at start-up only: read-only from now on
@@ -156,7 +177,6 @@ class ControllerNode:
         self._js_plans: dict[tuple[str, ...], list[tuple[int, int]]] = {}
         self._js_rejected = 0
         self._js_problems = ProblemLog(port.log)
-        self._person_problems = ProblemLog(port.log)
         self._js_stamp: float | None = None
         self._js_header = (0, 0)
         self._answered = (0, 0)   # stamp of the joint_states sample the current tick answers
@@ -179,10 +199,12 @@ class ControllerNode:
         self._bag_topics: dict[str, tuple[str, str]] = {}  # name used -> (type, qos profile)
         self._bag_names: dict[str, str] = {}               # publisher's topic -> name used
         self._record_errors = 0
-        self._pub_command = self._publisher(t.Float64MultiArray, '~/command', 'default')
-        self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'default')
+        self._setup_outputs(settings, status_rate)
         self._pub_events = self._publisher(t.String, '~/events', 'default')
         self._pub_status = self._publisher(t.DiagnosticArray, '~/status', 'default')
+        # frames hook: /tf and /tf_static (DDS) or tf2_ros (rclpy); persons and point inputs
+        self.points = open_points_in_base(port, declare, self.base_frame, self._subscribe)
+        self._person_problems = self.points.person_faults
         self._subscribe(t.JointState, 'joint_states', self._on_joint_states)
         for mapping in self.mappings.values():
             msg_type = getattr(t, TYPE_ATTRIBUTE[mapping.ros_type])
@@ -193,6 +215,7 @@ class ControllerNode:
         self._services: dict[str, object] = {}
         port.create_service(t.Trigger, '~/reload_skills',
                             self._guarded('~/reload_skills', self._on_reload))
+        port.create_service(t.Trigger, '~/hold', self._guarded('~/hold', self._on_hold))
         for name in self.library.names():
             self._add_skill(name)
         port.set_parameter_validator(self._validate_parameters)
@@ -203,11 +226,81 @@ class ControllerNode:
         self._status = StatusWorker(
             self._publish_status, port.log, name=f'{NODE_NAME}-status',
             on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
+        self._markers = StatusWorker(
+            self._publish_markers, port.log, name=f'{NODE_NAME}-markers', what='~/markers',
+            on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
         self.timer = port.create_timer(self.dt, self._on_timer, control=True)
         self._open_recorder()
         port.log('info', f'{NODE_NAME} ready: {len(self.library.names())} skills, '
                  f'{self.rate:g} Hz, tick on {self.tick_on}, transport '
                  f'{type(port).__name__}')
+
+    def _load_model(self, receive: Any = None) -> None:
+        """The robot model from robot_description_file or the robot_description topic (see
+        nodes/robot_source.py): one step, so a configure transition can call it."""
+        self.loaded_model = load_robot_model(self.port, self.model_source, receive)
+        self.model = self.loaded_model.model
+
+    # ------------------------------------------------------------ outputs (issue 9.4)
+    def _setup_outputs(self, settings: dict[str, Any], status_rate: float) -> None:
+        """Command interfaces, ~/rows, /diagnostics and ~/markers (nodes/outputs.py,
+        status.py, markers.py); all read at start-up."""
+        declare, t = self.port.declare_parameter, self.port.types
+        self.command_interfaces = parse_command_interfaces(declare(
+            'command_interfaces', DEFAULT_COMMAND_INTERFACES, 'velocity (~/command) and/or '
+            'position (~/position_command)', read_only=True).value)
+        self.hardware_id = str(declare('hardware_id', self.model.description.name or NODE_NAME,
+                                       'hardware_id in /diagnostics', read_only=True).value)
+        diagnostics_rate = float(declare('diagnostics_rate_hz', 1.0, '/diagnostics rate (Hz)',
+                                         read_only=True).value)
+        markers_rate = float(declare('markers_rate_hz', 5.0, '~/markers rate (Hz), 0 = off',
+                                     read_only=True).value)
+        if not (0.0 < diagnostics_rate <= status_rate) or not (0.0 <= markers_rate <= self.rate):
+            msg = (f'parameters diagnostics_rate_hz must be > 0 and at most status_rate_hz '
+                   f'({status_rate:g}), markers_rate_hz 0 (off) to rate_hz ({self.rate:g}); got '
+                   f'{diagnostics_rate:g} and {markers_rate:g}')
+            raise ConstraintCtrlError(msg)
+        self._diagnostics_every = max(1, round(status_rate / diagnostics_rate))
+        self._markers_every = max(1, round(self.rate / markers_rate)) if markers_rate else 0
+        self._status_count = 0
+        velocity = 'velocity' in self.command_interfaces
+        self._pub_command = (self._publisher(t.Float64MultiArray, '~/command', 'command')
+                             if velocity else None)
+        self._position: PositionTarget | None = None
+        if 'position' in self.command_interfaces:
+            self._position = PositionTarget(self._to_command, self.dt,
+                                            float(settings['joint_state_timeout']))
+            self._position_msg = position_message(t, self.joint_names)
+            self._pub_position = self._publisher(t.Float64MultiArray, '~/position_command',
+                                                 'command')
+        self._pub_joint_command = self._publisher(t.JointState, '~/joint_command', 'command')
+        self._pub_rows = self._publisher(t.DiagnosticArray, '~/rows', 'default')
+        self._pub_diagnostics = self._publisher(t.DiagnosticArray, '/diagnostics', 'default')
+        self._pub_markers = None
+        if self._markers_every:
+            self._pub_markers = self._publisher(t.MarkerArray, '~/markers', 'default')
+            self._marker_builder = MarkerBuilder(self.port, self.base_frame,
+                                                 self._markers_every * self.dt)
+            self._skill_shapes = SkillShapes()
+
+    def _send_position(self, target: list[float] | None, joint: Any) -> None:
+        """On the tick: ~/position_command, and the same positions in ~/joint_command."""
+        joint.position = target if target is not None else []
+        if target is not None:
+            self._position_msg.data = target
+            self._publish(self._pub_position, '~/position_command', self._position_msg)
+
+    def _marker_job(self) -> MarkerJob:
+        """On the tick: copies of what ~/markers draws (the worker builds the message)."""
+        runner = self.loop.active
+        ran = runner is not None and runner.solver.last_status.value == 'ok'
+        return MarkerJob(self.watchdog.geometry(), runner.skill if ran else None,
+                         runner.solver.input_values() if ran else None, self.port.now_ns())
+
+    def _publish_markers(self, job: MarkerJob) -> None:
+        """On the marker thread (a StatusWorker)."""
+        shapes = self._skill_shapes.shapes(job.skill, job.skill_inputs)
+        self._publish(self._pub_markers, '~/markers', self._marker_builder.build(job, shapes))
 
     # ------------------------------------------------------------ plumbing
     # The bag names each topic as the port really used it: the fully qualified name after
@@ -220,21 +313,26 @@ class ControllerNode:
         self._bag_topics.setdefault(name, (self.port.type_name(msg_type), qos))
         return pub
 
-    def _subscribe(self, msg_type: Any, topic: str, callback: Any) -> None:
-        if self._record_to is None:   # everything the tick reads: the control path
-            self.port.create_subscription(msg_type, topic, callback, 'latest', control=True)
-            return
+    def _subscribe(self, msg_type: Any, topic: str, callback: Any, qos: str = 'latest') -> Any:
+        # 'latest': what the tick reads, the control path; other profiles (/tf, /tf_static)
+        # feed state the callbacks read, off the control path
+        control = qos == 'latest'
+        if self._record_to is None:
+            return self.port.create_subscription(msg_type, topic, callback, qos,
+                                                 control=control)
         records_to: list[str] = []      # the bag topic, unless another subscription has it
 
         def recorded(msg: Any) -> None:
             if records_to:
                 self._record(records_to[0], msg)
             callback(msg)
-        sub = self.port.create_subscription(msg_type, topic, recorded, 'latest', control=True)
+        sub = self.port.create_subscription(msg_type, topic, recorded, qos, control=control)
         name = str(sub.topic_name)
         if name not in self._bag_topics:
-            self._bag_topics[name] = (self.port.type_name(msg_type), 'sensor')
+            self._bag_topics[name] = (self.port.type_name(msg_type),
+                                      'sensor' if control else qos)
             records_to.append(name)
+        return sub
 
     def _open_recorder(self) -> None:
         """Last step of start-up, so a node that fails to start leaves no bag folder behind."""
@@ -340,7 +438,8 @@ class ControllerNode:
     def _input_callback(self, mapping: InputMapping) -> Any:
         def callback(msg: Any) -> None:
             try:
-                value = mapping.extract(msg)
+                value = (self.points.input_value(mapping, msg) if mapping.frame
+                         else mapping.extract(msg))
             except (TypeError, ValueError):
                 value = float('nan')
             stamp = self._stamp(msg.header) if mapping.has_header else time.monotonic()
@@ -349,20 +448,12 @@ class ControllerNode:
         return callback
 
     def _person_callback(self, source: str) -> Any:
-        problems = self._person_problems
-        expected = ('', self.base_frame)
+        points = self.points
 
         def callback(msg: Any) -> None:
-            frame = msg.header.frame_id
-            if frame not in expected:
-                # counted and logged once per source (and once when it stops), not per message;
-                # the source goes stale, which the watchdog treats as a person anywhere
-                problems.problem(source, 'person positions in an unusable frame',
-                                 f'frame {frame!r}, expected {self.base_frame!r}; ignored (no '
-                                 'transform lookup here)')
-                return
-            problems.ok(source, f'person positions in {self.base_frame!r} again')
-            point = np.array([msg.point.x, msg.point.y, msg.point.z], dtype=float)
+            # in base_frame; NaN when it cannot be put there (no or too old transform): the
+            # watchdog then counts a person anywhere. Faults are counted and logged once.
+            point = points.person(source, msg)
             sample = PersonSample(source, point, self._stamp(msg.header))
             with self._lock:   # a new dict: a tick's snapshot keeps the one it took
                 self._people = {**self._people, source: sample}
@@ -410,6 +501,8 @@ class ControllerNode:
             if self._closing:            # close() held the lock meanwhile
                 return
             snap = self._snapshot()
+            if self._position is not None:
+                self._position.take(snap)
             self._last_tick = snap.now
             if self._initial and snap.q is not None:
                 self.loop.request_activation(self._initial)
@@ -423,6 +516,8 @@ class ControllerNode:
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
+            if self._markers_every and self._ticks % self._markers_every == 0:
+                self._markers.post(self._marker_job())
         except Exception:  # noqa: BLE001 - any failure in a tick must end in a zero command
             self._errors += 1
             try:
@@ -459,7 +554,10 @@ class ControllerNode:
 
     def _send(self, out: LoopOutput) -> None:
         array, joint = self._command_messages(out.command)
-        self._publish(self._pub_command, '~/command', array)
+        if self._position is not None:
+            self._send_position(self._position.target(out.command), joint)
+        if self._pub_command is not None:
+            self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
         for name in out.events:
             self._publish(self._pub_events, '~/events', self.port.types.String(data=name))
@@ -474,7 +572,10 @@ class ControllerNode:
 
     def _send_zero(self) -> None:
         array, joint = self._command_messages(np.zeros(self.model.n_joints))
-        self._publish(self._pub_command, '~/command', array)
+        if self._position is not None:
+            self._send_position(self._position.hold(), joint)
+        if self._pub_command is not None:
+            self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
 
     def _send_status(self, out: LoopOutput) -> None:
@@ -497,6 +598,7 @@ class ControllerNode:
                  'joint_states_rejected': str(self._js_rejected),
                  'joint_states_last_rejection': self._js_problems.last_reason,
                  'person_samples_ignored': str(self._person_problems.total),
+                 **self.points.report(),
                  'recorder': recorder.state if recorder is not None else 'off',
                  'recorder_written': str(recorder.written if recorder is not None else 0),
                  'recorder_dropped': str((recorder.dropped if recorder is not None else 0)
@@ -504,9 +606,14 @@ class ControllerNode:
                  'recorder_error': recorder.error if recorder is not None else '',
                  'samples_dropped': str(sum(f.dropped for f in faults)),
                  'callback_errors': str(sum(f.callback_errors for f in faults))}
-        msg = build_status(self.port, self.port.node_name, out, rows, names, self.port.now_ns(),
-                           extra)
+        stamp = self.port.now_ns()
+        msg = build_status(self.port, self.port.node_name, out, stamp, extra, self.hardware_id)
         self._publish(self._pub_status, '~/status', msg)
+        self._publish(self._pub_rows, '~/rows',
+                      build_rows(self.port, out.skill, rows, names, stamp, self.hardware_id))
+        if self._status_count % self._diagnostics_every == 0:
+            self._publish(self._pub_diagnostics, '/diagnostics', msg)
+        self._status_count += 1
 
     # ------------------------------------------------------------- skills
     def _guarded(self, what: str, handler: Any) -> Any:
@@ -595,7 +702,14 @@ class ControllerNode:
             return response
         return callback
 
+    def _on_hold(self, request: Any, response: Any) -> Any:
+        """~/hold: the built-in hold from the next tick on; the reply comes after that tick."""
+        response.success, response.message = self.loop.request_hold(self._switch_timeout)
+        return response
+
     def _cannot_activate(self, name: str) -> str | None:
+        if name == HOLD:
+            return None                  # the built-in hold is always available
         loaded = self.library.get(name)
         if loaded is None:
             return f'skill {name!r} is not loaded (loaded: {", ".join(self.library.names())})'
@@ -799,6 +913,7 @@ class ControllerNode:
         """After spin() returned (callbacks no longer run on either transport): zero, close."""
         self._closing = True
         self._status.close()
+        self._markers.close()
         with self._tick_lock:
             for _ in range(3):
                 self._send_zero()

@@ -39,6 +39,10 @@ TYPE_ATTRIBUTE = {
     'geometry_msgs/msg/PointStamped': 'PointStamped',
     'std_msgs/msg/Float64': 'Float64',
 }
+#: Keys of one input's mapping (inputs.<input>.<key>).
+MAPPING_KEYS = ('topic', 'type', 'field', 'scale', 'frame', 'transform_timeout')
+POINT_TYPE = 'geometry_msgs/msg/PointStamped'
+POINT_FIELDS = ('point.x', 'point.y', 'point.z')
 #: How far in the future (s) a header stamp may be before it is not trusted.
 FUTURE_TOLERANCE = 0.005
 #: Most names a joint_states sample may carry; a larger one is rejected before any per-name
@@ -58,6 +62,12 @@ class InputMapping:
     ros_type: str
     field: tuple[str, ...]
     scale: float = 1.0
+    #: PointStamped only: frame the point is transformed into before ``field`` is taken
+    #: ('' = the field as received); see nodes/points_in_base.py
+    frame: str = ''
+    #: s: how much older than the sample the transform data may be (None: the node's
+    #: people.transform_timeout)
+    transform_timeout: float | None = None
 
     def extract(self, msg: Any) -> float:
         value = msg
@@ -76,14 +86,16 @@ def parse_input_mappings(params: dict[str, Any]) -> dict[str, InputMapping]:
     for key, value in params.items():
         name, _, attr = key.partition('.')
         if not attr:
-            msg = (f'parameter inputs.{key}: expected inputs.<input>.<topic|type|field|scale>')
+            msg = (f'parameter inputs.{key}: expected inputs.<input>.<key> with a key of '
+                   f'{", ".join(MAPPING_KEYS)}')
             raise TransportError(msg)
         grouped.setdefault(name, {})[attr] = value
     out = {}
     for name, attrs in grouped.items():
-        unknown = sorted(set(attrs) - {'topic', 'type', 'field', 'scale'})
+        unknown = sorted(set(attrs) - set(MAPPING_KEYS))
         if unknown:
-            msg = f'parameter inputs.{name}: unknown keys {unknown} (topic, type, field, scale)'
+            msg = (f'parameter inputs.{name}: unknown keys {unknown} '
+                   f'({", ".join(MAPPING_KEYS)})')
             raise TransportError(msg)
         if 'topic' not in attrs:
             msg = f'parameter inputs.{name}.topic is missing'
@@ -99,8 +111,26 @@ def parse_input_mappings(params: dict[str, Any]) -> dict[str, InputMapping]:
                 not math.isfinite(scale):
             msg = f'parameter inputs.{name}.scale: expected a finite number, got {scale!r}'
             raise TransportError(msg)
+        frame = str(attrs.get('frame', ''))
+        if frame and ros_type != POINT_TYPE:
+            msg = (f'parameter inputs.{name}.frame: only a {POINT_TYPE} input can be '
+                   f'transformed into a frame; its type is {ros_type}')
+            raise TransportError(msg)
+        if frame and field not in POINT_FIELDS:
+            msg = (f'parameter inputs.{name}.field: with frame set, the field must be '
+                   f'point.x, point.y or point.z, got {field!r}')
+            raise TransportError(msg)
+        timeout = attrs.get('transform_timeout')
+        if timeout is not None and (isinstance(timeout, bool) or
+                                    not isinstance(timeout, (int, float)) or
+                                    not math.isfinite(timeout) or timeout <= 0):
+            msg = (f'parameter inputs.{name}.transform_timeout: expected a number of seconds '
+                   f'> 0, got {timeout!r}')
+            raise TransportError(msg)
         out[name] = InputMapping(name=name, topic=str(attrs['topic']), ros_type=ros_type,
-                                 field=tuple(field.split('.')), scale=float(scale))
+                                 field=tuple(field.split('.')), scale=float(scale),
+                                 frame=frame,
+                                 transform_timeout=None if timeout is None else float(timeout))
     return out
 
 
@@ -152,5 +182,6 @@ def capture_time(stamp_sec: int, stamp_nanosec: int, recv_ros_ns: int, recv_mono
     return recv_mono - max(age, 0.0)
 
 
-__all__ = ['INPUT_TYPES', 'InputMapping', 'JOINT_SAMPLE_PROBLEMS', 'MAX_JOINT_NAMES', 'TYPE_ATTRIBUTE', 'capture_time',
-           'check_field', 'joint_sample_problem', 'parse_input_mappings']
+__all__ = ['INPUT_TYPES', 'InputMapping', 'JOINT_SAMPLE_PROBLEMS', 'MAX_JOINT_NAMES',
+           'TYPE_ATTRIBUTE', 'capture_time', 'check_field', 'joint_sample_problem',
+           'parse_input_mappings']

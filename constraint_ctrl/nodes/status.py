@@ -1,14 +1,21 @@
-"""The controller's ~/status message (diagnostic_msgs/DiagnosticArray).
+"""The controller's diagnostics: ~/status and /diagnostics, and the per-row values on ~/rows.
 
-Three statuses, so standard diagnostics tools can show them side by side:
+~/status (at status_rate_hz) and /diagnostics (about 1 Hz, for the standard diagnostic
+aggregator) carry the same diagnostic_msgs/DiagnosticArray with two statuses, named as
+diagnostic_updater names its tasks ('<node name>: <task>') and with hardware_id set:
 - '<node>: controller': active skill, solve status and time, missed ticks, the recorder
   (`recorder`: off, recording, failed or closed; `recorder_written`, `recorder_dropped`,
-  `recorder_error`);
-- '<node>: watchdog': state, reason, speed scale, min separation, protective distance;
-- '<node>: rows': per row of the active skill '<row>.value', '.error', '.slack', '.active',
-  '.solved' (false when the row's priority level could not be solved this tick).
-Level: OK while moving normally, WARN when reduced or stopping, ERROR when stopped by a fault
-or when the solve failed.
+  `recorder_error`); level OK, ERROR when the solve failed;
+- '<node>: watchdog': state, reason, speed scale, min separation, protective distance; level
+  follows the watchdog: OK normal, WARN reduced or stopping, ERROR stopped (a fault or a stop).
+
+~/rows (diagnostic_msgs/DiagnosticArray, at status_rate_hz): one status per row of the active
+skill, named '<skill>: <row>', with the values 'value', 'error', 'slack', 'active', 'solved'
+(false when the row's priority level could not be solved this tick); level OK when solved, WARN
+when not. Why this type: among the standard messages (ROS 2 common_interfaces, which rosbags'
+type store holds) only diagnostic_msgs carries values with a name each; the numeric arrays
+(std_msgs/Float64MultiArray) name dimensions, not elements, and sensor_msgs/JointState's fields
+mean joint positions, velocities and efforts.
 """
 from __future__ import annotations
 
@@ -20,7 +27,7 @@ from typing import Any
 
 import numpy as np
 
-from ..runtime.loop import LoopOutput
+from ..runtime.loop import HOLD, LoopOutput
 from ..safety.states import State
 from ..solve.qp import RowReport
 
@@ -31,17 +38,28 @@ def _fmt(value: float) -> str:
     return f'{value:.6g}'
 
 
-def build_status(port: Any, node: str, out: LoopOutput, rows: RowReport | None,
-                 row_names: list[str], stamp_ns: int, extra: dict[str, str]) -> Any:
+def watchdog_level(state: State) -> int:
+    """OK normal, WARN reduced or stopping, ERROR stopped."""
+    if state is State.STOPPED:
+        return ERROR
+    if state in (State.REDUCED, State.STOPPING):
+        return WARN
+    return OK
+
+
+def _header(t: Any, stamp_ns: int) -> Any:
+    sec, nanosec = divmod(stamp_ns, 1_000_000_000)
+    return t.Header(stamp=t.Time(sec=int(sec), nanosec=int(nanosec)), frame_id='')
+
+
+def build_status(port: Any, node: str, out: LoopOutput, stamp_ns: int, extra: dict[str, str],
+                 hardware_id: str) -> Any:
+    """The DiagnosticArray of ~/status and /diagnostics (see the module docstring)."""
     t = port.types
     wd = out.watchdog
     tick = out.tick
-    level = OK
-    if wd.state in (State.REDUCED, State.STOPPING):
-        level = WARN
-    if wd.state is State.STOPPED or (tick is not None and not tick.ok):
-        level = ERROR
     solve = tick.status.value if tick is not None else 'idle'
+    controller_level = ERROR if tick is not None and not tick.ok else OK
     controller_values = {
         'skill': out.skill or '',
         'solve_status': solve,
@@ -58,30 +76,42 @@ def build_status(port: Any, node: str, out: LoopOutput, rows: RowReport | None,
         'protective_distance': _fmt(wd.protective_distance),
         'command_norm': _fmt(float(np.linalg.norm(wd.command))),
     }
-    row_values: dict[str, str] = {}
-    if rows is not None:
-        for i, name in enumerate(row_names):
-            row_values[f'{name}.value'] = _fmt(float(rows.value[i]))
-            row_values[f'{name}.error'] = _fmt(float(rows.error[i]))
-            row_values[f'{name}.slack'] = _fmt(float(rows.slack[i]))
-            row_values[f'{name}.active'] = 'true' if rows.active[i] else 'false'
-            row_values[f'{name}.solved'] = 'true' if rows.solved[i] else 'false'
 
     def status(suffix: str, lvl: int, message: str, values: dict[str, str]) -> Any:
         return t.DiagnosticStatus(
             level=port.diagnostic_level(lvl), name=f'{node}: {suffix}', message=message,
-            hardware_id=node,
+            hardware_id=hardware_id,
             values=[t.KeyValue(key=k, value=v) for k, v in values.items()])
 
-    sec, nanosec = divmod(stamp_ns, 1_000_000_000)
-    header = t.Header(stamp=t.Time(sec=int(sec), nanosec=int(nanosec)), frame_id='')
     skill_text = f'{out.skill}: {solve}' if out.skill else 'no skill active'
-    return t.DiagnosticArray(header=header, status=[
-        status('controller', level, skill_text, controller_values),
-        status('watchdog', level, f'{wd.state.value}: {wd.reason}', watchdog_values),
-        status('rows', OK if rows is not None else WARN,
-               f'{len(row_names)} rows' if rows is not None else 'no rows', row_values),
+    if out.skill == HOLD:
+        skill_text = 'holding: zero velocity, watchdog active'
+    return t.DiagnosticArray(header=_header(t, stamp_ns), status=[
+        status('controller', controller_level, skill_text, controller_values),
+        status('watchdog', watchdog_level(wd.state), f'{wd.state.value}: {wd.reason}',
+               watchdog_values),
     ])
+
+
+def build_rows(port: Any, skill: str | None, rows: RowReport | None, row_names: list[str],
+               stamp_ns: int, hardware_id: str) -> Any:
+    """The DiagnosticArray of ~/rows: one status per row (empty when no skill ran)."""
+    t = port.types
+    ok, warn = port.diagnostic_level(OK), port.diagnostic_level(WARN)
+    statuses = []
+    if rows is not None and skill:
+        for i, name in enumerate(row_names):
+            solved = bool(rows.solved[i])
+            statuses.append(t.DiagnosticStatus(
+                level=ok if solved else warn, name=f'{skill}: {name}',
+                message='' if solved else 'its priority level was not solved this tick',
+                hardware_id=hardware_id, values=[
+                    t.KeyValue(key='value', value=_fmt(float(rows.value[i]))),
+                    t.KeyValue(key='error', value=_fmt(float(rows.error[i]))),
+                    t.KeyValue(key='slack', value=_fmt(float(rows.slack[i]))),
+                    t.KeyValue(key='active', value='true' if rows.active[i] else 'false'),
+                    t.KeyValue(key='solved', value='true' if solved else 'false')]))
+    return t.DiagnosticArray(header=_header(t, stamp_ns), status=statuses)
 
 
 class StatusWorker:
@@ -93,18 +123,20 @@ class StatusWorker:
     hands over only what it alone can read consistently (its LoopOutput and the rows of that
     solve, taken in the tick) with ``post`` and goes on. If the worker is still busy when the
     next status is due, the newer one replaces the waiting one: a status is a snapshot.
-    ``publish(out, rows, names)`` failing is logged (the first time, then at most once a
-    minute) and counted in ``errors``; the worker goes on.
+    ``publish(*job)`` failing is logged (the first time, then at most once a minute) and
+    counted in ``errors``; the worker goes on. The controller runs two: ~/status (with ~/rows
+    and /diagnostics) and ~/markers.
     """
 
-    def __init__(self, publish: Callable[[Any, Any, list[str]], None],
-                 log: Callable[[str, str], None], name: str = 'status',
+    def __init__(self, publish: Callable[..., None],
+                 log: Callable[[str, str], None], name: str = 'status', what: str = '~/status',
                  on_start: Callable[[], None] | None = None) -> None:
         self._publish = publish
+        self.what = what              # what it publishes, for its log line
         self._on_start = on_start
         self._log = log
         self._wake = threading.Condition()
-        self._pending: tuple[Any, Any, list[str]] | None = None
+        self._pending: tuple[Any, ...] | None = None
         self._running = True
         self.errors = 0
         self.replaced = 0
@@ -112,11 +144,12 @@ class StatusWorker:
         self._thread = threading.Thread(target=self._run, name=name, daemon=True)
         self._thread.start()
 
-    def post(self, out: Any, rows: Any, names: list[str]) -> None:
+    def post(self, *job: Any) -> None:
+        """Hand over the arguments of one ``publish`` call (replacing one still waiting)."""
         with self._wake:
             if self._pending is not None:
                 self.replaced += 1
-            self._pending = (out, rows, names)
+            self._pending = job
             self._wake.notify()
 
     def _run(self) -> None:
@@ -136,7 +169,7 @@ class StatusWorker:
                 now = time.monotonic()
                 if now - self._last_log >= 60.0:
                     self._last_log = now
-                    self._log('error', f'~/status failed ({self.errors} so far):\n'
+                    self._log('error', f'{self.what} failed ({self.errors} so far):\n'
                               + traceback.format_exc())
 
     def close(self, timeout: float = 2.0) -> None:
@@ -148,4 +181,4 @@ class StatusWorker:
             self._thread.join(timeout)
 
 
-__all__ = ['StatusWorker', 'build_status']
+__all__ = ['ERROR', 'OK', 'WARN', 'StatusWorker', 'build_rows', 'build_status', 'watchdog_level']

@@ -1,11 +1,15 @@
 """The sequencer's state machine, free of any middleware: events and time in, actions out.
 
 States of the plan: waiting (not started), running, paused (the controller's watchdog holds the
-arm stopped: the step's timeout does not run), done, aborted. A step's done_when event only
+arm stopped: the step's timeout does not run), done, aborted, interrupted (the sequencer was
+stopped by a signal). A step's done_when event only
 counts once its skill's activation has been confirmed and only if it was received after the
 confirmation, so an event of the previous skill (events carry no skill name) cannot end the next
 step. The price: a done event the new skill raises within the activation's round trip (a few ms)
 is missed, so give done events a hold_for.
+
+A duration step is done once it has been running for its duration (time since the step
+started, pauses not counted, as for a timeout); it needs no event and has no timeout.
 """
 from __future__ import annotations
 
@@ -28,7 +32,7 @@ class Activate:
 
 @dataclass(frozen=True, slots=True)
 class Finish:
-    outcome: str      # 'done' or 'aborted'
+    outcome: str      # 'done', 'aborted' or 'interrupted'
     reason: str
 
 
@@ -80,7 +84,8 @@ class PlanRunner:
         return Activate(step, index)
 
     def activated(self, now: float) -> None:
-        """The controller confirmed the switch at ``now``; earlier events belong to the old skill."""
+        """The controller confirmed the switch at ``now``; earlier events belong to the old
+        skill."""
         self.armed = True
         self.armed_at = now
 
@@ -88,8 +93,16 @@ class PlanRunner:
         return self._end('aborted', f'step {self.step.name if self.step else "?"}: '
                          f'activation failed: {reason}', now)
 
+    def refused(self, reason: str, now: float) -> Finish:
+        """The plan cannot start (the controller cannot be asked): aborted without a step."""
+        return self._end('aborted', reason, now)
+
+    def interrupted(self, reason: str, now: float) -> Finish:
+        """The sequencer was stopped from outside; the running step ends 'interrupted'."""
+        return self._end('interrupted', reason, now)
+
     def on_event(self, name: str, now: float) -> Activate | Finish | None:
-        if self.state in ('done', 'aborted', 'waiting'):
+        if self.state in ('done', 'aborted', 'interrupted', 'waiting'):
             return None
         if name in STOP_EVENTS:
             self._watchdog_stopped = True
@@ -104,7 +117,8 @@ class PlanRunner:
                 self._resume(now)
             return None
         step = self.step
-        if step is not None and self.armed and now >= self.armed_at and name == step.done_when:
+        if step is not None and self.armed and now >= self.armed_at and \
+                step.done_when is not None and name == step.done_when:
             self._close_step('done', now)
             return self._advance(step.next, now)
         return None
@@ -127,7 +141,12 @@ class PlanRunner:
                                  f'stopped for more than {self.plan.watchdog_wait:g} s', now)
             return None
         moving = now - record.started - record.paused_s
-        if moving > step.timeout:
+        if step.duration is not None:
+            if self.armed and moving >= step.duration:
+                self._close_step('done', now)
+                return self._advance(step.next, now)
+            return None
+        if step.timeout is not None and moving > step.timeout:
             self._close_step('timeout', now)
             if step.on_timeout == 'abort':
                 return self._end('aborted', f'step {step.name}: no {step.done_when!r} within '
@@ -151,7 +170,7 @@ class PlanRunner:
 
     def _end(self, outcome: str, reason: str, now: float) -> Finish:
         if self.records and self.records[-1].ended is None:
-            self._close_step(outcome if outcome == 'aborted' else 'done', now)
+            self._close_step(outcome, now)
         self.state = outcome
         self.finish = Finish(outcome, reason)
         return self.finish

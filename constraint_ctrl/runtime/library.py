@@ -3,12 +3,16 @@
 A reload looks at every ``*.yaml`` file of the skills folder, loads and compiles the new or
 changed ones (by content digest) and keeps the previous version of any file that fails, so a bad
 edit never takes a working skill away. All skills must drive the controller's robot (same joint
-names), because the command is published in one fixed joint order.
+names), because the command is published in one fixed joint order. A skill without ``robot:``
+compiles against the controller's own model (``model``: from its URDF file or the
+robot_description topic); a link or joint it names that the model lacks fails the file at the
+formula's line, like any unknown name.
 
 A skill's name becomes the prefix of its parameters (``<skill>.<tunable>``) and of its
 activation service, so names the node uses itself (``reserved``: its parameters and parameter
 groups such as ``watchdog`` or ``inputs``) are refused at load, located at the file's ``skill``
-field. A skill listed in ``keep`` (the running one) whose file disappeared stays loaded until a
+field; so is ``hold`` (HOLD), the name of the control loop's built-in hold, whatever the
+node. A skill listed in ``keep`` (the running one) whose file disappeared stays loaded until a
 later reload, so the running skill and its parameters never vanish under the controller.
 """
 from __future__ import annotations
@@ -25,6 +29,11 @@ from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
 from ..skill.robot import robot_model
 from .runner import SkillRunner
+
+#: The control loop's built-in hold (runtime/loop.py): zero velocity with the watchdog active.
+#: Not a skill file: `activate_skill` and the ~/hold service accept it, so no skill may be
+#: named so.
+HOLD = 'hold'
 
 
 @dataclass(slots=True)
@@ -85,9 +94,11 @@ class SkillLibrary:
     """Skills by name. ``reload`` may run on any thread; lookups are cheap and thread-safe."""
 
     def __init__(self, folder: Path, joint_names: tuple[str, ...],
-                 qp_solver: str = 'quadprog', reserved: Collection[str] = ()) -> None:
+                 qp_solver: str = 'quadprog', reserved: Collection[str] = (),
+                 model: RobotModel | None = None) -> None:
         """``qp_solver``: 'quadprog' (default) or 'daqp', the QP solver of every skill;
-        ``reserved``: names a skill may not have (see the module docstring)."""
+        ``reserved``: names a skill may not have (see the module docstring); ``model``: the
+        controller's robot, for skills without ``robot:`` (None: such skills are refused)."""
         self.folder = Path(folder)
         self.joint_names = tuple(joint_names)
         self.qp_solver = qp_solver
@@ -95,7 +106,8 @@ class SkillLibrary:
         self._skills: dict[str, LoadedSkill] = {}
         self._by_path: dict[Path, str] = {}
         self._lock = threading.Lock()
-        self._models: dict[tuple[Path, str | None], RobotModel] = {}
+        self.model = model
+        self._models: dict[tuple[Path | None, str | None], RobotModel] = {}
 
     def names(self) -> list[str]:
         with self._lock:
@@ -109,20 +121,27 @@ class SkillLibrary:
         """Load and compile one file; raises ConstraintCtrlError with the file's location."""
         data = path.read_bytes()
         spec = load_skill(path)
+        if spec.name == HOLD:
+            raise spec.error(f'skill name {HOLD!r} is the controller\'s built-in hold (zero '
+                             'velocity, watchdog active; ~/hold, activate_skill hold); rename '
+                             'the skill', 'skill')
         if spec.name in self.reserved:
             raise spec.error(f'skill name {spec.name!r} is used by the controller itself (its '
                              f'parameters or parameter groups: '
                              f'{", ".join(sorted(self.reserved))}); rename the skill',
                              'skill')
-        key = (spec.robot.resolve(), spec.base_link)
+        key = (None if spec.robot is None else spec.robot.resolve(), spec.base_link)
         model = self._models.get(key)
         if model is None:
-            model = robot_model(spec)   # URDF and base_link errors located in the file
+            # URDF and base_link errors located in the file
+            model = robot_model(spec, self.model)
             self._models[key] = model
         if set(model.joint_names) != set(self.joint_names):
-            msg = (f'{path}: robot {spec.robot.name} has joints {list(model.joint_names)}, '
-                   f'but this controller drives {list(self.joint_names)}')
-            raise ConstraintCtrlError(msg)
+            robot = 'the controller\'s robot' if spec.robot is None else \
+                f'robot {spec.robot.name}'
+            raise spec.error(f'{robot} has joints {list(model.joint_names)}, but this '
+                             f'controller drives {list(self.joint_names)}',
+                             'skill' if spec.robot is None else 'robot')
         compiled = compile_skill(spec, model)
         return LoadedSkill(path=path, digest=hashlib.sha256(data).hexdigest(),
                            compiled=compiled, runner=SkillRunner(compiled, self.qp_solver))
@@ -201,4 +220,4 @@ class SkillLibrary:
         return report
 
 
-__all__ = ['LoadedSkill', 'ReloadReport', 'SkillLibrary']
+__all__ = ['HOLD', 'LoadedSkill', 'ReloadReport', 'SkillLibrary']

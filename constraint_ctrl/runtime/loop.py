@@ -10,6 +10,17 @@ published (its acceleration limits keep the command continuous). A switch is ans
 the new skill's first tick: if that tick cannot produce a command from fresh inputs, the
 switch counts as failed, the requester is told why and the watchdog stops the arm.
 
+**Hold** is a state of the loop itself, not a skill: no skill runs, the loop asks for zero
+velocity and the watchdog still runs every tick (its faults, speed and separation checks and
+state reports go on; a person still stops the arm). The loop starts in hold and stays there
+until a skill is activated; ``request_hold`` (or ``request_activation(HOLD)``) returns to it at
+a tick boundary and is answered after that tick, like an activation. The command is shaped by
+the watchdog as any command is: from the last one it goes to zero within the acceleration
+limit (each joint's speed only decreases, never changes sign), then stays exactly zero, so a
+hold can never move the arm. The tick that enters hold (and the first tick, where the loop
+starts in it) reports the event ``holding`` (HOLDING_EVENT); ``LoopOutput.skill`` is HOLD
+while holding.
+
 A reloaded file of the running skill is switched in the same way (``request_reload_switch``):
 at a tick boundary, from the last command, with its clock, unknowns, start pose and event
 states carried over when its unknowns are unchanged (else restarted from its start values).
@@ -19,16 +30,18 @@ from __future__ import annotations
 import threading
 import time
 from dataclasses import dataclass, field
-from typing import Mapping, Sequence
+from collections.abc import Mapping, Sequence
 
 import numpy as np
 
 from ..safety.states import State
 from ..safety.watchdog import PersonSample, Watchdog, WatchdogInput, WatchdogOutput
-from .library import SkillLibrary
+from .library import HOLD, SkillLibrary
 from .runner import SkillRunner, TickResult
 
 _NO_INPUTS = np.empty(0)   # the input vector of a skill without inputs (never written)
+#: Event of the tick that enters hold (see the module docstring).
+HOLDING_EVENT = 'holding'
 
 
 @dataclass(frozen=True, slots=True)
@@ -57,7 +70,7 @@ class Snapshot:
 @dataclass(slots=True)
 class LoopOutput:
     command: np.ndarray                       # model joint order, what to publish
-    skill: str | None
+    skill: str | None                         # the running skill, or HOLD while holding
     tick: TickResult | None
     watchdog: WatchdogOutput
     events: list[str]
@@ -67,8 +80,9 @@ class LoopOutput:
 class _Request:
     """A switch asked for by another thread; ``done`` is set once a tick has run its outcome.
 
-    ``kind`` is 'activate' (switch to ``name``) or 'reload' (the running skill ``name`` takes
-    its reloaded version). ``params`` are tunable values by name, applied with the switch.
+    ``kind`` is 'activate' (switch to ``name``), 'reload' (the running skill ``name`` takes
+    its reloaded version) or 'hold' (to the built-in hold). ``params`` are tunable values by
+    name, applied with the switch.
     """
 
     def __init__(self, name: str, params: Mapping[str, float] | None = None,
@@ -94,7 +108,8 @@ class ControlLoop:
         self.watchdog = watchdog
         self.dt = dt
         self.person_sources = tuple(person_sources)
-        self.active: SkillRunner | None = None
+        self.active: SkillRunner | None = None     # None: holding (the loop starts so)
+        self._hold_reported = False                 # 'holding' sent for the current hold
         self._lock = threading.Lock()
         self._switch: _Request | None = None
         self._replace: _Request | None = None
@@ -104,7 +119,17 @@ class ControlLoop:
         #: seconds from each activation request to the tick that ran the new skill first
         self.switch_delays: list[float] = []
 
+    @property
+    def holding(self) -> bool:
+        """True while no skill runs (at start, and after a hold took effect)."""
+        return self.active is None
+
     # ------------------------------------------------------ other threads
+    def request_hold(self, timeout: float | None = None) -> tuple[bool, str]:
+        """Hold from the next tick on (see the module docstring); with ``timeout``, wait until
+        that tick ran. It replaces a switch not yet taken, and a later switch replaces it."""
+        return self._queue_switch(_Request(HOLD, kind='hold'), timeout)
+
     def request_activation(self, name: str, timeout: float | None = None,
                            params: Mapping[str, float] | None = None) -> tuple[bool, str]:
         """Ask for ``name`` to become active at the next tick; wait for the outcome.
@@ -114,12 +139,18 @@ class ControlLoop:
         switch). ``params`` (tunable name -> value of that skill) are applied in the same tick,
         just before the switch, so a new goal never reaches the skill that is still running;
         if the switch fails they are put back. Without ``timeout`` it returns at once with
-        (True, 'requested').
+        (True, 'requested'). ``name`` HOLD asks for the hold (it has no tunables).
         """
-        request = _Request(name, params)
+        if name == HOLD:
+            if params:
+                return False, f'the hold has no tunables (got {sorted(params)})'
+            return self.request_hold(timeout)
+        return self._queue_switch(_Request(name, params), timeout)
+
+    def _queue_switch(self, request: _Request, timeout: float | None) -> tuple[bool, str]:
         with self._lock:
             if self._switch is not None:
-                self._switch.finish(False, f'superseded by a request for {name!r}')
+                self._switch.finish(False, f'superseded by a request for {request.name!r}')
             self._switch = request
         return self._wait(request, timeout)
 
@@ -195,7 +226,8 @@ class ControlLoop:
         if request is not None:
             if pending is not None:
                 pending.finish(False, f'superseded by a switch to {request.name!r}')
-            pending = self._activate(request, snap)
+            pending = self._hold(request) if request.kind == 'hold' \
+                else self._activate(request, snap)
         events: list[str] = []
         tick: TickResult | None = None
         runner = self.active
@@ -204,8 +236,11 @@ class ControlLoop:
         input_stamps: dict[str, float] = {}
         input_timeouts: dict[str, float] = {}
         finite = True
-        if runner is None:
+        if runner is None:             # hold: zero, shaped by the watchdog like any command
             command = np.zeros_like(self._last_command)
+            if not self._hold_reported:
+                events.append(HOLDING_EVENT)
+                self._hold_reported = True
         else:
             spec = runner.skill.spec
             u = _NO_INPUTS                  # read only: the solver copies it into its buffer
@@ -231,7 +266,7 @@ class ControlLoop:
                 solver_ok, status = False, 'no joint positions' if snap.q is None \
                     else 'non-finite or missing skill input'
         problem = None
-        if pending is not None:
+        if pending is not None and pending.kind != 'hold':
             problem = _first_tick_problem(runner, tick, status, snap)
         switch_ok = pending is not None and problem is None
         if pending is not None:
@@ -252,7 +287,7 @@ class ControlLoop:
         activated = None
         if pending is not None:
             activated = self._finish(pending, problem)
-        return LoopOutput(command=out.command, skill=runner.name if runner else None,
+        return LoopOutput(command=out.command, skill=runner.name if runner else HOLD,
                           tick=tick, watchdog=out, events=events, activated=activated)
 
     def _activate(self, request: _Request, snap: Snapshot) -> _Request | None:
@@ -275,7 +310,15 @@ class ControlLoop:
             solver.set_param(indices[name], value)
         runner.activate(snap.q, self._last_command)
         self.active = runner
+        self._hold_reported = False
         self.switch_delays.append(max(0.0, time.monotonic() - request.asked_at))
+        return request
+
+    def _hold(self, request: _Request) -> _Request:
+        """Enter hold at this tick boundary. A hold always works (it needs no input): it counts
+        as a successful switch, so it also ends a stop latched by a failed one."""
+        self.active = None
+        self._hold_reported = False        # this tick reports 'holding', even if held already
         return request
 
     def _take_reloaded(self, request: _Request, snap: Snapshot) -> _Request | None:
@@ -302,6 +345,10 @@ class ControlLoop:
         """Answer a switch after its first tick; the name for ``activated`` on success."""
         delay_ms = (time.monotonic() - request.asked_at) * 1000
         if problem is None:
+            if request.kind == 'hold':
+                request.finish(True, f'holding: zero velocity asked from this tick on '
+                                     f'({delay_ms:.2f} ms after the request), watchdog active')
+                return None
             if request.kind == 'reload':
                 request.finish(True, f'{request.name} (running) switched to the reloaded '
                                      f'version: {request.message}')
@@ -352,4 +399,4 @@ def _first_tick_problem(runner: SkillRunner | None, tick: TickResult | None, sta
     return '; '.join(parts) or None
 
 
-__all__ = ['ControlLoop', 'InputSample', 'LoopOutput', 'Snapshot']
+__all__ = ['HOLD', 'HOLDING_EVENT', 'ControlLoop', 'InputSample', 'LoopOutput', 'Snapshot']

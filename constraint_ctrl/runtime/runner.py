@@ -59,7 +59,8 @@ class EventTracker:
 
 
 class SkillRunner:
-    """State of one skill while it is active; built when the skill is loaded, reset on activation."""
+    """State of one skill while it is active; built when the skill is loaded, reset on
+    activation."""
 
     def __init__(self, skill: CompiledSkill, qp_solver: str = 'quadprog') -> None:
         self.skill = skill
@@ -78,7 +79,8 @@ class SkillRunner:
         return self.skill.spec.name
 
     def activate(self, q: np.ndarray, joint_velocity: np.ndarray) -> None:
-        """Start from the skill's unknowns at their start values, its clock at 0, continuing the last command.
+        """Start from the skill's unknowns at their start values, its clock at 0, continuing the
+        last command.
 
         ``q`` is remembered as the start pose that start_value() in formulas refers to.
         """

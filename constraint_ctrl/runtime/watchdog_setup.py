@@ -7,7 +7,8 @@ sphere: a person's separation is measured to its surface.
 from __future__ import annotations
 
 from dataclasses import replace
-from typing import Any, Mapping
+from typing import Any
+from collections.abc import Mapping
 
 import numpy as np
 

@@ -229,6 +229,18 @@ class SeparationMonitor:
                 (self.standstill, self._a2, self._quarter_b2, self._half_b))
 
     @property
+    def people(self) -> np.ndarray:
+        """Person positions of the last ``measure``, (m, 3) m (a view: copy to keep it)."""
+        if self.n_people == 0 or self._kernel is None:
+            return np.zeros((0, 3))
+        return self._kernel.people
+
+    @property
+    def separations(self) -> np.ndarray:
+        """Separations of the last ``measure``, (k, m) m (a view: copy to keep it)."""
+        return self._sep
+
+    @property
     def too_close(self) -> bool:
         """Some pair is at or inside S_p(0): permitted speed 0, so a stop is required."""
         return self.min_separation <= self.standstill

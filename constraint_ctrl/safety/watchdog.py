@@ -152,6 +152,31 @@ class WatchdogConfig:
 
 
 @dataclass(frozen=True, eq=False)
+class WatchdogGeometry:
+    """What the last ``step`` measured, for drawing it (copies; see ``Watchdog.geometry``).
+
+    Attributes:
+        points: centres of the monitored spheres in the base frame, (k, 3) m; None when the
+            robot's position was unknown in that step.
+        radii: sphere radii, (k,) m.
+        people: person positions the step used, (m, 3) m (possibly fewer rows than sources).
+        protective_distances: per person, S_p of its closest monitored sphere at that sphere's
+            published speed towards the person, (m,) m; the watchdog keeps that sphere's
+            surface at least this far from the person (plus what the person may have walked
+            since the capture, ``walked``).
+        walked: per person, human speed x data age, (m,) m.
+        state: the watchdog state after the step.
+    """
+
+    points: np.ndarray | None
+    radii: np.ndarray
+    people: np.ndarray
+    protective_distances: np.ndarray
+    walked: np.ndarray
+    state: State
+
+
+@dataclass(frozen=True, eq=False)
 class PersonSample:
     """Position(s) of people from one source, in the robot base frame (m), shape (3,) or (m, 3).
 
@@ -385,6 +410,8 @@ class Watchdog:
         for m in range(1, self._people_buf.shape[0] + 1):   # no kernel build inside a tick
             self._monitor.prepare(m)
         self._vel: np.ndarray | None = None
+        self._last_points: np.ndarray | None = None   # the points of the last step (a view)
+        self._last_moved = self._no_moved
         self._sep_factor = 1.0
         self._reduced_mode = config.reduced_mode
         self._in_zone = False
@@ -501,6 +528,8 @@ class Watchdog:
                                       f'monitored point kinematics gave NaN or inf at '
                                       f'q={q.tolist()}', {}))
                 jac = None
+        self._last_points = p if jac is not None else None
+        self._last_moved = moved
         if jac is not None:
             monitor.measure(p.T, people, moved)
             if monitor.too_close:
@@ -562,6 +591,29 @@ class Watchdog:
         self._last_now = now
         return WatchdogOutput(out.copy(), state, self._reason, speed_scale,
                               monitor.min_separation, pd, transitions)
+
+    def geometry(self) -> WatchdogGeometry:
+        """Copies of what the last ``step`` measured, for drawing it (allocates: call it at a
+        low rate, on the tick that ran the step, before the next one)."""
+        m = self._monitor
+        radii = m.radii[:, 0].copy()
+        if self._last_points is None:
+            return WatchdogGeometry(None, radii, np.zeros((0, 3)), np.zeros(0), np.zeros(0),
+                                    self._state)
+        points = np.array(self._last_points.T)
+        n_people = m.n_people
+        people = np.zeros((0, 3))
+        distances = np.zeros(n_people)
+        if n_people:
+            people = np.array(m.people)
+            closest = np.argmin(m.separations, axis=0)     # per person: its closest sphere
+            speeds = (m.directed_speeds(self._vel) if self._vel is not None
+                      else np.zeros((len(radii), n_people)))
+            for j in range(n_people):
+                distances[j] = protective_distance(float(speeds[closest[j], j]),
+                                                   self.config.separation)
+        return WatchdogGeometry(points, radii, people, distances,
+                                np.array(self._last_moved[:n_people]), self._state)
 
     def _too_close_fault(self) -> Fault:
         m = self._monitor

@@ -32,7 +32,7 @@ L QP calls, with no matrix work in numpy between them.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Sequence
+from collections.abc import Sequence
 
 import casadi as ca
 import numpy as np
@@ -130,7 +130,8 @@ class QpLayout:
     soft_hi: tuple[int, ...]
     meq: int
     n_con: int
-    con_row: np.ndarray = field(repr=False)  # (n_con,) row index of each constraint column, -1 = box
+    # (n_con,) row index of each constraint column, -1 = box
+    con_row: np.ndarray = field(repr=False)
 
     @property
     def n_z(self) -> int:

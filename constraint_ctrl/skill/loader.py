@@ -12,7 +12,8 @@ The skill file format (our own)::
 
     skill: follow_flange                 # identifier, required
     description: Keep the tool at a stand-off above the flange while moving along it.
-    robot: ../robots/six_axis_arm.urdf   # required; relative to this file's folder
+    robot: ../robots/six_axis_arm.urdf   # optional; relative to this file's folder; without
+                                         # it the skill drives the controller's robot model
     base_link: base_link                 # optional; default: the URDF's root link
     inputs:                              # scalar sensor signals, keyed by name
       range_left: {unit: m, rate_hz: 100, timeout: 0.05}
@@ -233,7 +234,7 @@ def _compose(text: str, source: str) -> Node:
         msg = f'not valid YAML: {exc}'
         raise SkillError(msg, file=source, line=1, field=DOCUMENT) from None
     if root is None or (isinstance(root, ScalarNode) and root.tag == _TAG + 'null'):
-        msg = "the file is empty; expected a mapping with at least 'skill' and 'robot'"
+        msg = "the file is empty; expected a mapping with at least 'skill' and 'constraints'"
         raise SkillError(msg, file=source, line=1, field=DOCUMENT)
     return root
 
@@ -565,9 +566,10 @@ class _Reader:
     # -- sections -----------------------------------------------------------------------------
 
     def skill(self, root: Node) -> SkillSpec:
-        top = self.fields(_Field(DOCUMENT, _line(root), root), _TOP_KEYS, ('skill', 'robot'))
-        spec: dict[str, object] = {'name': self.name(top['skill']),
-                                   'robot': self.existing_file(top['robot'], 'robot')}
+        top = self.fields(_Field(DOCUMENT, _line(root), root), _TOP_KEYS, ('skill',))
+        spec: dict[str, object] = {'name': self.name(top['skill'])}
+        if 'robot' in top:        # without: the controller's model (or check --robot FILE)
+            spec['robot'] = self.existing_file(top['robot'], 'robot')
         if 'description' in top:
             spec['description'] = self.text(top['description'])
         if 'base_link' in top:

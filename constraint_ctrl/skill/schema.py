@@ -8,7 +8,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal, Mapping
+from typing import Literal
+from collections.abc import Mapping
 
 from ..errors import SkillError
 
@@ -121,7 +122,7 @@ class SkillSpec:
     """A whole skill file, validated for structure; formulas are compiled later."""
 
     name: str
-    robot: Path                         # resolved URDF path
+    robot: Path | None = None           # resolved URDF path; None: the node's model
     source: str = '<string>'            # file the spec came from
     description: str = ''
     base_link: str | None = None

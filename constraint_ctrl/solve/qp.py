@@ -33,7 +33,7 @@ from __future__ import annotations
 import time
 from dataclasses import dataclass
 from enum import Enum
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 import quadprog
@@ -60,7 +60,7 @@ class SolveStatus(str, Enum):
     INFEASIBLE = 'infeasible'          # the hard rows and limits cannot all hold
     BAD_INPUT = 'bad_input'            # NaN or inf among q, s, inputs, time or the last command
     BAD_OUTPUT = 'bad_output'          # the skill's formulas produced NaN/inf, or the QP did
-    NOT_CONVEX = 'not_convex'          # G lost positive definiteness (should not happen: damping > 0)
+    NOT_CONVEX = 'not_convex'          # G lost positive definiteness (not with damping > 0)
 
 
 @dataclass(slots=True)
@@ -268,6 +268,13 @@ class SkillSolver:
         """Joint and unknown values at activation, read by start_value() in formulas."""
         self._inputs['q_start'][:] = q
         self._inputs['s_start'][:] = s
+
+    def input_values(self) -> dict[str, np.ndarray]:
+        """Copies of the function inputs of the last solve, by name (FUNCTION_INPUTS): what a
+        drawing of the skill's geometry evaluates (skill/geometry.py); call it on the tick.
+        q_now and s_now are q and s, as the function is fed them."""
+        return {name: self._inputs[{'q_now': 'q', 's_now': 's'}.get(name, name)].copy()
+                for name in FUNCTION_INPUTS}
 
     # -------------------------------------------------------------- solve
     def solve(self, q: np.ndarray, s: np.ndarray, u: np.ndarray, t: float, dt: float,

@@ -12,7 +12,7 @@ import platform
 import time
 from dataclasses import dataclass, replace
 from pathlib import Path
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 import quadprog

@@ -26,8 +26,10 @@ import casadi as ca
 import numpy as np
 
 from ..errors import ConstraintCtrlError
+from ..model.kinematics import RobotModel
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
+from ..skill.robot import robot_model
 from ..skill.schema import SkillSpec
 from ..skill.stability import delay_ticks, first_order_limit, second_order_limit
 from ..solve.qp import SkillSolver, SolveStatus
@@ -65,13 +67,17 @@ class CheckReport:
 NODE_RATE_HZ = 500.0
 
 
-def check_file(path: Path, rate_hz: float = NODE_RATE_HZ) -> CheckReport:
-    """Load, compile and inspect one skill file. Loading errors propagate (SkillError)."""
+def check_file(path: Path, rate_hz: float = NODE_RATE_HZ,
+               robot: RobotModel | None = None) -> CheckReport:
+    """Load, compile and inspect one skill file. Loading errors propagate (SkillError).
+
+    ``robot``: the model for a skill without ``robot:`` (check --robot FILE); a skill that
+    names its robot uses its own."""
     if not (math.isfinite(rate_hz) and rate_hz > 0):
         msg = f'--rate must be a finite number > 0 (Hz), got {rate_hz!r}'
         raise ConstraintCtrlError(msg)
     spec = load_skill(path)
-    skill = compile_skill(spec)
+    skill = compile_skill(spec, robot_model(spec, robot))
     return check_compiled(skill, rate_hz)
 
 

@@ -2,8 +2,10 @@
 
 Starts the simulated cell, the controller (recording a rosbag2) and the sequencer as three
 separate processes talking over ROS 2 topics and services (direct Cyclone DDS on loopback by
-default), shows the sequencer's progress, stops everything when the plan ends, then evaluates
-the run (tools/demo_report.py) into OUT: summary.json, summary.md and PNG plots.
+default), shows the sequencer's progress, lets the controller run on for HOLD_WATCH_S after the
+plan ended (the plan ends in the controller's hold: the recording must show the arm standing
+still, not a skill left running), stops everything, then evaluates the run
+(tools/demo_report.py) into OUT: summary.json, summary.md and PNG plots.
 
 All three processes run on one ROS_DOMAIN_ID chosen at random, so two demos (or a demo and a
 test) on one machine do not hear each other. From Python, `run_demo(..., placement=...)` can
@@ -14,6 +16,7 @@ each, see README "Running on more than one machine").
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import random
 import shutil
@@ -39,6 +42,11 @@ START_BUDGET = 120.0
 #: an operator entering the zone would change the state but not the motion; 15 mm/s makes the
 #: slowdown visible before the separation stop.
 DEMO_REDUCED_SPEED = 0.015
+#: Wall-clock seconds the controller keeps running after the sequencer exits, so the bag and the
+#: simulator's record show what the arm does after the plan (it must hold still).
+HOLD_WATCH_S = 1.5
+#: Written to OUT: when the demo told the controller to stop (wall clock, s since the epoch).
+TIMES_FILE = 'demo_times.json'
 
 
 #: Parameters the demo sets over config/controller.yaml (status at 50 Hz for the plots).
@@ -175,7 +183,10 @@ def run_demo(out: Path, transport: str = 'dds', plan: Path | None = None,
                     seq.send_signal(signal.SIGINT)
                     break
         seq.wait(30)
+        if ctrl.poll() is None:
+            time.sleep(HOLD_WATCH_S)
     finally:
+        (out / TIMES_FILE).write_text(json.dumps({'controller_stop_wall': time.time()}) + '\n')
         _stop(ctrl, 'controller')
         _stop(sim, 'simulator')
     # a duration, not a time: every time the demo shows counts from the plan's start

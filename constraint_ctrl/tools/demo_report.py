@@ -3,7 +3,15 @@
 Sources, all in the demo's output folder:
 - steps.json: the sequencer's step times and outcome;
 - sim_truth.npz: the simulator's true state at 100 Hz (not the noisy measurements);
-- bag/: the controller's rosbag2 (status with the watchdog's view, events), read with rosbags.
+- bag/: the controller's rosbag2 (status with the watchdog's view, events, commands), read
+  with rosbags;
+- demo_times.json: when the demo told the controller to stop (after HOLD_WATCH_S of hold).
+
+The plan ends in the controller's hold: after its last step the controller must report hold
+(event ``holding``, ``skill: hold`` on ~/status), the last command before the demo stopped the
+controller must be exactly zero (the shutdown's own zero commands, recorded after it, do not
+count), and the simulator's true joint positions must stay put once the zero command is in
+force.
 
 The separation criterion is checked on the true state, independently of the watchdog's own
 numbers: the monitored points are recomputed from the true joint positions, their speed toward
@@ -32,6 +40,15 @@ SETTLE = 1.0              # s at the start of following excluded from the RMS (c
 SEAT_LIMIT = 20.0         # s of simulated time
 STANDOFF_RMS_LIMIT = 0.0005
 MOVING = 0.001            # m/s: a monitored point faster than this counts as moving
+#: s after the ``holding`` event from which every ~/status must say hold (a status built by an
+#: earlier tick may still be on its way; the status thread publishes it off the tick)
+HOLD_STATUS_GRACE = 0.1
+#: s after the first zero command for it to be in force in the simulator (its command latency
+#: is far below this)
+HOLD_SETTLE = 0.1
+#: rad: the true joints may move this much once the zero command is in force; the simulator is
+#: kinematic and integrates exactly, so zero velocity leaves them exactly where they are
+HOLD_STILL_LIMIT = 1e-9
 
 
 @dataclass
@@ -46,22 +63,41 @@ class Status:
     reason: list[str]
 
 
-def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]]]:
+def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]],
+                                              list[tuple[float, float]]]:
+    """(status, events, commands): ~/status, the rows of ~/rows (matched to it by header
+    stamp: the node stamps both of one status period alike), ~/events, and ~/command as (time,
+    largest absolute joint velocity). Bags from before ~/rows carry the rows in ~/status
+    ('<node>: rows', keys '<row>.<what>')."""
     from rosbags.highlevel import AnyReader
     from rosbags.typesys import Stores, get_typestore
     times, skills, states, scale, sep, prot, rows = [], [], [], [], [], [], []
     reasons: list[str] = []
     events: list[tuple[float, str]] = []
+    commands: list[tuple[float, float]] = []
+    row_sets: dict[tuple[int, int], dict[str, str]] = {}
+    status_stamps: list[tuple[int, int]] = []
     with AnyReader([bag], default_typestore=get_typestore(Stores.ROS2_JAZZY)) as reader:
-        wanted = [c for c in reader.connections
-                  if c.topic.endswith('/status') or c.topic.endswith('/events')]
+        wanted = [c for c in reader.connections if c.topic.endswith(('/status', '/events',
+                                                                     '/rows', '/command'))]
         for conn, stamp, raw in reader.messages(connections=wanted):
             msg = reader.deserialize(raw, conn.msgtype)
             t = stamp * 1e-9 - t0
             if conn.topic.endswith('/events'):
                 events.append((t, msg.data))
                 continue
-            ctrl, wd, row = ({kv.key: kv.value for kv in s.values} for s in msg.status)
+            if conn.topic.endswith('/command'):
+                data = np.asarray(msg.data, dtype=float)
+                commands.append((t, float(np.abs(data).max()) if data.size else 0.0))
+                continue
+            key = (msg.header.stamp.sec, msg.header.stamp.nanosec)
+            if conn.topic.endswith('/rows'):
+                row_sets[key] = {f'{s.name.partition(": ")[2]}.{kv.key}': kv.value
+                                 for s in msg.status for kv in s.values}
+                continue
+            by_name = {s.name.rpartition(': ')[2]: {kv.key: kv.value for kv in s.values}
+                       for s in msg.status}
+            ctrl, wd = by_name.get('controller', {}), by_name.get('watchdog', {})
             times.append(t)
             skills.append(ctrl.get('skill', ''))
             states.append(wd.get('state', ''))
@@ -69,9 +105,53 @@ def _read_bag(bag: Path, t0: float) -> tuple[Status, list[tuple[float, str]]]:
             scale.append(float(wd.get('speed_scale', 'nan')))
             sep.append(float(wd.get('min_separation', 'nan')))
             prot.append(float(wd.get('protective_distance', 'nan')))
-            rows.append(row)
+            rows.append(by_name.get('rows', {}))
+            status_stamps.append(key)
+    if row_sets:
+        rows = [row_sets.get(key, {}) for key in status_stamps]
     return Status(np.array(times), skills, states, np.array(scale), np.array(sep),
-                  np.array(prot), rows, reasons), events
+                  np.array(prot), rows, reasons), events, commands
+
+
+def ended_in_hold(plan_end: float | None, stop: float | None, events: list[tuple[float, str]],
+                  status: Status | None, commands: list[tuple[float, float]],
+                  t: np.ndarray, q: np.ndarray) -> dict[str, Any]:
+    """After the plan (plan clock, s): the hold event, the status, the last command before the
+    controller was stopped, and the true joint motion once the zero command was in force."""
+    result: dict[str, Any] = {'passed': False, 'holding_at_s': None,
+                              'statuses_after_hold': 0, 'statuses_not_hold': 0,
+                              'last_command_max_abs': None, 'true_joint_motion_rad': None,
+                              'still_samples': 0}
+    if plan_end is None or stop is None:
+        result['why'] = 'no plan end or no stop time'
+        return result
+    # events are stamped a little after the sequencer saw the step end; 50 ms of clock slack
+    held = [tt for tt, name in events if name == 'holding' and tt >= plan_end - 0.05]
+    if not held:
+        result['why'] = 'no holding event after the plan'
+        return result
+    hold_at = held[0]
+    result['holding_at_s'] = round(hold_at, 3)
+    if status is not None:
+        after = [i for i, tt in enumerate(status.time) if hold_at + HOLD_STATUS_GRACE < tt < stop]
+        result['statuses_after_hold'] = len(after)
+        result['statuses_not_hold'] = sum(status.skill[i] != 'hold' for i in after)
+    before_stop = [(tt, v) for tt, v in commands if tt < stop]
+    if before_stop:
+        result['last_command_max_abs'] = before_stop[-1][1]
+    zero = [tt for tt, v in before_stop if tt >= hold_at and v == 0.0]
+    if zero:
+        still = (t >= zero[0] + HOLD_SETTLE) & (t < stop)
+        result['still_samples'] = int(still.sum())
+        if still.any():
+            ref = q[still][0]
+            result['true_joint_motion_rad'] = float(np.abs(q[still] - ref).max())
+    result['passed'] = bool(
+        result['statuses_after_hold'] > 0 and result['statuses_not_hold'] == 0
+        and result['last_command_max_abs'] == 0.0 and result['still_samples'] >= 10
+        and result['true_joint_motion_rad'] is not None
+        and result['true_joint_motion_rad'] <= HOLD_STILL_LIMIT)
+    return result
 
 
 def _true_separation(truth: Any, sim_time: np.ndarray) -> dict[str, np.ndarray]:
@@ -106,7 +186,8 @@ def evaluate(out: Path) -> dict[str, Any]:
     truth = dict(np.load(out / 'sim_truth.npz'))
     t0 = steps.get('t0_wall') or float(truth['wall_time'][0])
     t = truth['wall_time'] - t0
-    status, events = _read_bag(out / 'bag', t0) if (out / 'bag').exists() else (None, [])
+    status, events, commands = _read_bag(out / 'bag', t0) if (out / 'bag').exists() \
+        else (None, [], [])
     step_times = {s['name']: (s['started_s'], s['ended_s']) for s in steps['steps']}
 
     # seating: when (since the plan started) and how much simulated time that took
@@ -165,6 +246,12 @@ def evaluate(out: Path) -> dict[str, Any]:
         'samples_below_protective_distance_while_moving': int(violations.sum()),
         'watchdog_min_separation_m': float(np.nanmin(status.min_separation)) if status else None,
     }
+    ends = [s['ended_s'] for s in steps['steps'] if s.get('ended_s') is not None]
+    times_file = out / 'demo_times.json'
+    stop = (json.loads(times_file.read_text())['controller_stop_wall'] - t0
+            if times_file.exists() else None)
+    hold = ended_in_hold(max(ends) if ends else None, stop, events, status, commands, t,
+                         truth['q'])
     criteria = {
         'seated_within_20_s': {'passed': seat_moving is not None and seat_moving <= SEAT_LIMIT,
                                'value': seat_moving, 'limit': SEAT_LIMIT},
@@ -182,6 +269,12 @@ def evaluate(out: Path) -> dict[str, Any]:
             'passed': bool(operator_stop) and bool(resumed) and steps['outcome'] == 'done',
             'value': {'stopped_at_s': operator_stop, 'resumed_at_s': resumed[:1],
                       'plan': steps['outcome']}},
+        'ended_in_hold': {
+            'passed': hold['passed'],
+            'value': {'holding_at_s': hold['holding_at_s'],
+                      'last_command': hold['last_command_max_abs'],
+                      'true_joint_motion_rad': hold['true_joint_motion_rad']},
+            'limit': HOLD_STILL_LIMIT},
     }
     labels = {
         'seated_within_20_s': 'gear seated within 20 s of simulated time after the plan '
@@ -193,6 +286,9 @@ def evaluate(out: Path) -> dict[str, Any]:
             'separation never below S_p while moving (smallest margin, m)',
         'stopped_for_operator_then_resumed_and_finished':
             'stopped for the operator, resumed, finished',
+        'ended_in_hold': 'after the plan: the controller holds (event and ~/status), the last '
+                         'command before it was stopped is exactly zero, the true joints stand '
+                         'still (largest motion, rad)',
     }
     for key, label in labels.items():
         criteria[key]['label'] = label
@@ -207,12 +303,79 @@ def evaluate(out: Path) -> dict[str, Any]:
         'following': standoff,
         'separation': separation,
         'watchdog_transitions': transitions,
+        'after_plan': hold,
         'criteria': criteria,
     }
+    summary['markers_frame'] = (marker_png(out / 'bag', t0, status, out / 'markers.png')
+                                if (out / 'bag').exists() else None)
     (out / 'summary.json').write_text(json.dumps(summary, indent=2) + '\n')
     (out / 'summary.md').write_text(_markdown(summary))
     _plots(out, t, truth, status, step_times, sep)
     return summary
+
+
+def marker_views(msg: Any) -> list[dict[str, Any]]:
+    """A visualization_msgs/MarkerArray as plain values (plots.marker_figure's input)."""
+    views = []
+    for m in msg.markers:
+        p, o, sc, c = m.pose.position, m.pose.orientation, m.scale, m.color
+        views.append({'ns': m.ns, 'type': int(m.type), 'action': int(m.action), 'text': m.text,
+                      'position': (p.x, p.y, p.z), 'orientation': (o.x, o.y, o.z, o.w),
+                      'scale': (sc.x, sc.y, sc.z), 'colour': (c.r, c.g, c.b, c.a),
+                      'points': [(q.x, q.y, q.z) for q in m.points]})
+    return views
+
+
+def _closest_approach(msg: Any) -> float:
+    """Smallest distance from a drawn person to a monitored sphere's surface in one
+    MarkerArray (inf without people or spheres), from the markers themselves."""
+    spheres = [(np.array([m.pose.position.x, m.pose.position.y, m.pose.position.z]),
+                m.scale.x / 2.0) for m in msg.markers if m.ns == 'monitored_spheres']
+    people = [np.array([m.pose.position.x, m.pose.position.y, m.pose.position.z])
+              for m in msg.markers if m.ns == 'people']
+    return min((float(np.linalg.norm(p - c)) - r for p in people for c, r in spheres),
+               default=float('inf'))
+
+
+def marker_png(bag: Path, t0: float, status: Status | None, path: Path) -> dict[str, Any] | None:
+    """One frame of the recorded ~/markers as a PNG: the frame in which a person came
+    closest to a monitored sphere after the plan started (measured on the drawn markers), else
+    the last frame. None when no frame was recorded."""
+    from rosbags.highlevel import AnyReader
+    from rosbags.typesys import Stores, get_typestore
+
+    from .plots import marker_figure, save
+    best: tuple[float, float, Any] | None = None
+    last: tuple[float, Any] | None = None
+    frames = 0
+    with AnyReader([bag], default_typestore=get_typestore(Stores.ROS2_JAZZY)) as reader:
+        conns = [c for c in reader.connections if c.topic.endswith('/markers')]
+        for conn, stamp, raw in reader.messages(connections=conns):
+            t = stamp * 1e-9 - t0
+            if t < 0.0:
+                continue
+            msg = reader.deserialize(raw, conn.msgtype)
+            frames += 1
+            last = (t, msg)
+            gap = _closest_approach(msg)
+            if np.isfinite(gap) and (best is None or gap < best[0]):
+                best = (gap, t, msg)
+    if last is None:
+        return None
+    if best is not None:
+        gap, t, msg = best
+        why = f'a person nearest a monitored sphere: {gap:.3f} m from its surface'
+    else:
+        (t, msg), why = last, 'the last frame; no person drawn'
+    views = marker_views(msg)
+    states = sorted({v['text'] for v in views if v['ns'] == 'monitored_spheres'})
+    skill = next((sk for tt, sk in zip(status.time, status.skill) if tt >= t), '') \
+        if status is not None else ''
+    title = (f'~/markers, one frame at {t:.2f} s since the plan started\n({why})\n'
+             f'watchdog {", ".join(states) or "unknown"}; skill {skill or "none"}')
+    save(marker_figure(views, title), path)
+    return {'time_s': round(t, 3), 'file': path.name, 'markers': len(views), 'why': why,
+            'frames_recorded': frames}
 
 
 def _markdown(s: dict[str, Any]) -> str:
@@ -242,8 +405,11 @@ def _markdown(s: dict[str, Any]) -> str:
               'below S_p while moving: '
               f"{s['separation']['samples_below_protective_distance_while_moving']}",
               'Watchdog transitions: ' + ', '.join(f'{n[9:]} at {t:.2f} s'
-                                                  for t, n in s['watchdog_transitions']), '',
-              '| criterion | passed | value |', '|---|---|---|']
+                                                  for t, n in s['watchdog_transitions'])]
+    frame = s.get('markers_frame')
+    lines += ['', f"Markers: one frame of ~/markers at {frame['time_s']:.2f} s ({frame['why']}) "
+                  f"in {frame['file']}" if frame else 'Markers: no ~/markers in the bag']
+    lines += ['', '| criterion | passed | value |', '|---|---|---|']
     for name, c in s['criteria'].items():
         lines.append(f"| {c.get('label', name)} | {'yes' if c['passed'] else 'NO'} | "
                      f"{_short(c['value'])} |")
@@ -423,7 +589,7 @@ def demo_figures(t: np.ndarray, truth: dict[str, np.ndarray], status: Status | N
                                    title_fontsize=7)
             axes[-1].set_xlabel(xlabel)
             rows = label_steps(axes[0], spans)
-            title_above_steps(axes[0], 'Errors and slacks of the active skill from ~/status: '
+            title_above_steps(axes[0], 'Errors and slacks of the active skill from ~/rows: '
                               'largest row of each constraint\n(values <= '
                               f'{LOG_FLOOR:g}, e.g. a bound not reached, are not drawn)', rows)
             figures['constraints.png'] = fig

@@ -16,7 +16,8 @@ tests and inspected before they are written.
 from __future__ import annotations
 
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Iterable, Sequence
+from typing import TYPE_CHECKING, Any
+from collections.abc import Iterable, Sequence
 
 import numpy as np
 
@@ -289,12 +290,114 @@ def plot_replay(trace: ReplayTrace, rows: RecordedRows, joint_names: Sequence[st
             for name, fig in replay_figures(trace, rows, joint_names, skill).items()]
 
 
+def _quaternion_matrix(x: float, y: float, z: float, w: float) -> np.ndarray:
+    """Rotation matrix of a unit quaternion (x, y, z, w), as geometry_msgs orders it."""
+    return np.array([
+        [1 - 2 * (y * y + z * z), 2 * (x * y - z * w), 2 * (x * z + y * w)],
+        [2 * (x * y + z * w), 1 - 2 * (x * x + z * z), 2 * (y * z - x * w)],
+        [2 * (x * z - y * w), 2 * (y * z + x * w), 1 - 2 * (x * x + y * y)]])
+
+
+def _sphere(ax: Axes, centre: np.ndarray, radius: float, colour: Sequence[float], *,
+            wire: bool) -> None:
+    u, v = np.meshgrid(np.linspace(0, 2 * np.pi, 25), np.linspace(0, np.pi, 13))
+    x = centre[0] + radius * np.cos(u) * np.sin(v)
+    y = centre[1] + radius * np.sin(u) * np.sin(v)
+    z = centre[2] + radius * np.cos(v)
+    if wire:
+        ax.plot_wireframe(x, y, z, color=colour[:3], alpha=0.35, linewidth=0.5)
+    else:
+        ax.plot_surface(x, y, z, color=colour[:3], alpha=max(0.3, colour[3]), linewidth=0)
+
+
+def _cube(ax: Axes, centre: np.ndarray, rotation: np.ndarray, size: np.ndarray,
+          colour: Sequence[float]) -> np.ndarray:
+    from mpl_toolkits.mplot3d.art3d import Poly3DCollection
+    signs = np.array([[sx, sy, sz] for sx in (-1, 1) for sy in (-1, 1) for sz in (-1, 1)])
+    corners = centre + (signs * size / 2.0) @ rotation.T
+    faces = [[0, 1, 3, 2], [4, 5, 7, 6], [0, 1, 5, 4], [2, 3, 7, 6], [0, 2, 6, 4], [1, 3, 7, 5]]
+    ax.add_collection3d(Poly3DCollection([corners[f] for f in faces], alpha=0.25,
+                                         facecolor=colour[:3], edgecolor=colour[:3]))
+    return corners
+
+
+def marker_figure(markers: Sequence[dict[str, Any]], title: str) -> Figure:
+    """One frame of ~/markers in 3D (what RViz would show, without RViz).
+
+    ``markers``: plain values per marker ('ns', 'type' as visualization_msgs numbers, 'text',
+    'position' (3,), 'orientation' (x, y, z, w), 'scale' (3,), 'colour' (r, g, b, a), 'points'
+    [(3,)]); DELETEALL entries are skipped. Spheres of the monitored points are drawn solid in
+    their state colour, each person's protective distance as a wire sphere, constraint lines and
+    segments as lines (one style each, named in the legend), planes and boxes as faces.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    from matplotlib.patches import Patch
+    sphere_t, cube_t, line_list_t = 2, 1, 5
+    fig = Figure(figsize=(10.0, 8.0), layout='constrained')
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot(projection='3d')
+    extent: list[np.ndarray] = []
+    handles: list[Any] = []
+    named: set[str] = set()
+    lines = [m for m in markers if m['type'] == line_list_t]
+    line_styles = iter(styles(len(lines)))
+    for m in markers:
+        if m.get('action', 0) == 3:
+            continue
+        centre = np.asarray(m['position'], dtype=float)
+        colour = tuple(m['colour'])
+        if m['type'] == sphere_t:
+            radius = float(m['scale'][0]) / 2.0
+            wire = m['ns'] == 'protective_distance'
+            _sphere(ax, centre, radius, colour, wire=wire)
+            extent += [centre - radius, centre + radius]
+            label = {'monitored_spheres': f'monitored sphere (watchdog {m["text"]})',
+                     'people': 'person',
+                     'protective_distance': f'protective separation distance S_p '
+                                            f'(radius {radius:.3f} m)'}.get(
+                m['ns'], f'{m["text"]} (point)')
+            if label not in named:
+                named.add(label)
+                handles.append(Patch(facecolor=colour[:3], alpha=0.6 if not wire else 0.3,
+                                     label=label))
+        elif m['type'] == cube_t:
+            rotation = _quaternion_matrix(*m['orientation'])
+            corners = _cube(ax, centre, rotation, np.asarray(m['scale'], dtype=float), colour)
+            extent += [corners.min(axis=0), corners.max(axis=0)]
+            label = f'{m["text"]} ({"plane" if min(m["scale"]) < 0.01 else "box"})'
+            if label not in named:
+                named.add(label)
+                handles.append(Patch(facecolor=colour[:3], alpha=0.3, label=label))
+        elif m['type'] == line_list_t:
+            pts = np.asarray(m['points'], dtype=float).reshape(-1, 3)
+            style = next(line_styles)
+            (line,) = ax.plot(pts[:, 0], pts[:, 1], pts[:, 2], lw=1.6,
+                              label=f'{m["text"]} (line)', **style)
+            handles.append(line)
+            extent += [pts.min(axis=0), pts.max(axis=0)]
+    if extent:
+        lo, hi = np.min(extent, axis=0), np.max(extent, axis=0)
+        middle, half = (lo + hi) / 2.0, max(float((hi - lo).max()) / 2.0, 0.1)
+        ax.set_xlim(middle[0] - half, middle[0] + half)
+        ax.set_ylim(middle[1] - half, middle[1] + half)
+        ax.set_zlim(middle[2] - half, middle[2] + half)
+    ax.set_box_aspect((1.0, 1.0, 1.0))
+    ax.set_xlabel('x (m)')
+    ax.set_ylabel('y (m)')
+    ax.set_zlabel('z (m)')
+    ax.set_title(title, fontsize=9)
+    if handles:
+        ax.legend(handles=handles, loc='upper left', bbox_to_anchor=(1.02, 1.0), fontsize=7)
+    return fig
+
+
 def lines_of(ax: Axes) -> Iterable[Any]:
     """The data lines of a panel (for the rule checks)."""
     return [line for line in ax.get_lines() if not line.get_label().startswith('_')]
 
 
 __all__ = ['COLOURS', 'LOG_FLOOR', 'WATCHDOG_LEVELS', 'above_floor', 'figure', 'label_steps',
-           'legend_outside', 'marker_styles', 'plot_replay', 'plot_simulation',
+           'legend_outside', 'marker_figure', 'marker_styles', 'plot_replay', 'plot_simulation',
            'replay_figures', 'save',
            'shade_steps', 'simulation_figures', 'state_panel', 'styles', 'title_above_steps']

@@ -42,7 +42,8 @@ import json
 import math
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Mapping
+from typing import Any
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 
@@ -85,6 +86,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p.add_argument('--node', default=None,
                    help='recorded node name, e.g. /constraint_controller (default: found in '
                    'the bag)')
+    p.add_argument('--robot', type=Path, metavar='FILE',
+                   help="the robot's URDF (default: the parameter robot_description_file); "
+                   "needed when the node took its model from the robot_description topic")
     p.add_argument('--out', type=Path, default=Path('out/replay'), help='output folder')
 
 
@@ -239,9 +243,39 @@ def _capture(header: Any, log_ns: int) -> float:
     return capture_time(header.stamp.sec, header.stamp.nanosec, log_ns, log_ns * 1e-9)
 
 
+class _BagFrames:
+    """The node's own frames code (TopicFrames + PointsInBase) fed from the bag's /tf and
+    /tf_static in log order, so persons and point inputs in other frames are transformed (or
+    fail) as the node did when they arrived."""
+
+    TOPICS = ('/tf', '/tf_static')
+
+    def __init__(self, base_frame: str, timeout_s: float) -> None:
+        from types import SimpleNamespace
+
+        from ..nodes.frames import TopicFrames
+        from ..nodes.points_in_base import CACHE_TIME, PointsInBase
+        self.clock_ns = 0
+        self.feed: dict[str, Any] = {}
+        port = SimpleNamespace(types=SimpleNamespace(TFMessage=None),
+                               now_ns=lambda: self.clock_ns)
+        frames = TopicFrames(port, cache_time_s=CACHE_TIME, max_age_s=timeout_s,
+                             subscribe=lambda _type, topic, callback, _qos:
+                             self.feed.__setitem__(topic, callback))
+        self.points = PointsInBase(frames, base_frame, timeout_s, lambda _level, _text: None)
+
+    def preload(self, reader: Any, before_ns: int) -> None:
+        """Every /tf and /tf_static message logged before the window's span."""
+        conns = [c for c in reader.connections if c.topic in self.TOPICS]
+        if not conns:             # (no connections given means all of them to rosbags)
+            return
+        for conn, _t, raw in reader.messages(connections=conns, stop=before_ns):
+            self.feed[conn.topic](reader.deserialize(raw, conn.msgtype))
+
+
 def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
                  mappings: Mapping[str, Any], person_sources: Iterable[str],
-                 base_frame: str) -> Samples:
+                 base_frame: str, transform_timeout: float = 0.1) -> Samples:
     """Joint states, mapped inputs, person positions and commands from the window's span."""
     begin = int(index.command_ns[window.first]) - int(LOOKBACK * 1e9)
     end = int(index.command_ns[window.last]) + 1
@@ -252,12 +286,14 @@ def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
     inputs: dict[str, list[tuple[int, float, float]]] = {m: [] for m in mappings}
     people: dict[str, list[tuple[int, np.ndarray, float]]] = {s: [] for s in person_sources}
     by_topic: dict[str, list[Any]] = {}
-    for name, mapping in mappings.items():
+    for mapping in mappings.values():
         by_topic.setdefault(mapping.topic, []).append(mapping)
     cmd_ns, cmd, answered = [], [], []
+    frames = _BagFrames(base_frame, transform_timeout)
     with _open(index.path) as reader:
+        frames.preload(reader, begin)
         wanted = {f'{index.node}/command', f'{index.node}/joint_command', '/joint_states',
-                  *by_topic, *people}
+                  *by_topic, *people, *_BagFrames.TOPICS}
         conns = [c for c in reader.connections if c.topic in wanted]
         missing = sorted(set(by_topic) - {c.topic for c in conns})
         if missing:
@@ -269,6 +305,9 @@ def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
                 continue
             msg = reader.deserialize(raw, conn.msgtype)
             topic = conn.topic
+            frames.clock_ns = t       # the node's ROS time at arrival (an unset stamp: now)
+            if topic in frames.feed:
+                frames.feed[topic](msg)
             if topic == '/joint_states':
                 names, positions = list(msg.name), list(msg.position)
                 if len(names) != len(positions):
@@ -290,16 +329,14 @@ def read_samples(index: BagIndex, window: Window, joint_names: tuple[str, ...],
             elif topic == f'{index.node}/joint_command':
                 answered.append((t, msg.header.stamp.sec * 1_000_000_000
                                  + msg.header.stamp.nanosec))
-            elif topic in people:
-                frame = msg.header.frame_id
-                if frame not in ('', base_frame):
-                    continue          # the node ignores it (no transform lookup)
-                people[topic].append((t, np.array([msg.point.x, msg.point.y, msg.point.z]),
+            elif topic in people:      # NaN where the node could not transform it either
+                people[topic].append((t, frames.points.person(topic, msg).copy(),
                                       _capture(msg.header, t)))
             if topic in by_topic:
                 for mapping in by_topic[topic]:
                     try:
-                        value = mapping.extract(msg)
+                        value = (frames.points.input_value(mapping, msg) if mapping.frame
+                                 else mapping.extract(msg))
                     except (TypeError, ValueError):
                         value = math.nan
                     stamp = _capture(msg.header, t) if mapping.has_header else t * 1e-9
@@ -348,11 +385,63 @@ class RecordedRows:
 
 
 def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float) -> RecordedRows:
-    """Rows of ``skill`` from ~/status (DiagnosticArray '<node>: rows', keys '<row>.<what>').
+    """Rows of ``skill`` the node published, with the watchdog state of the same moments.
 
-    The one place that knows where recorded row values live: if they move to a topic of their
-    own, only this function changes.
+    The one place that knows where recorded row values live: ~/rows (DiagnosticArray, one
+    status '<skill>: <row>' per row with keys 'value', 'error', 'slack', ...), with the state
+    from ~/status; bags recorded before ~/rows existed carry them in ~/status ('<node>: rows',
+    keys '<row>.<what>').
     """
+    with _open(index.path) as reader:
+        topics = {c.topic for c in reader.connections}
+    if f'{index.node}/rows' in topics:
+        return _rows_topic(index, skill, begin_s, end_s)
+    return _rows_in_status(index, skill, begin_s, end_s)
+
+
+def _series(times: list[float], raw: list[dict[str, str]], states: list[str]) -> RecordedRows:
+    values: dict[str, dict[str, np.ndarray]] = {}
+    keys = sorted({k for r in raw for k in r})
+    for key in keys:
+        row, _, what = key.rpartition('.')
+        if what not in ('error', 'slack', 'value'):
+            continue
+        series = np.array([float(r.get(key, 'nan')) for r in raw])
+        values.setdefault(row, {})[what] = series
+    return RecordedRows(np.array(times), values, states)
+
+
+def _rows_topic(index: BagIndex, skill: str, begin_s: float, end_s: float) -> RecordedRows:
+    times: list[float] = []
+    raw: list[dict[str, str]] = []
+    states: list[str] = []
+    state = ''
+    prefix = f'{skill}: '
+    with _open(index.path) as reader:
+        conns = [c for c in reader.connections
+                 if c.topic in (f'{index.node}/rows', f'{index.node}/status')]
+        start = index.start_ns + int(begin_s * 1e9)
+        stop = index.start_ns + int(end_s * 1e9) + 1
+        for conn, t, data in reader.messages(connections=conns, start=start, stop=stop):
+            msg = reader.deserialize(data, conn.msgtype)
+            if conn.topic.endswith('/status'):
+                for s in msg.status:
+                    if s.name.rpartition(': ')[2] == 'watchdog':
+                        state = {kv.key: kv.value for kv in s.values}.get('state', '')
+                continue
+            rows = {s.name[len(prefix):]: {kv.key: kv.value for kv in s.values}
+                    for s in msg.status if s.name.startswith(prefix)}
+            if not rows:
+                continue
+            times.append(float(index.seconds(t)))
+            raw.append({f'{row}.{key}': value for row, kv in rows.items()
+                        for key, value in kv.items()})
+            states.append(state)
+    return _series(times, raw, states)
+
+
+def _rows_in_status(index: BagIndex, skill: str, begin_s: float, end_s: float
+                    ) -> RecordedRows:
     times: list[float] = []
     raw: list[dict[str, str]] = []
     states: list[str] = []
@@ -369,15 +458,7 @@ def read_recorded_rows(index: BagIndex, skill: str, begin_s: float, end_s: float
             times.append(float(index.seconds(t)))
             raw.append(by_name.get('rows', {}))
             states.append(by_name.get('watchdog', {}).get('state', ''))
-    values: dict[str, dict[str, np.ndarray]] = {}
-    keys = sorted({k for r in raw for k in r})
-    for key in keys:
-        row, _, what = key.rpartition('.')
-        if what not in ('error', 'slack', 'value'):
-            continue
-        series = np.array([float(r.get(key, 'nan')) for r in raw])
-        values.setdefault(row, {})[what] = series
-    return RecordedRows(np.array(times), values, states)
+    return _series(times, raw, states)
 
 
 # -------------------------------------------------------------------------------- the replay
@@ -394,6 +475,7 @@ class NodeSettings:
     person_timeout: float
     watchdog: dict[str, Any]
     inputs: dict[str, Any]
+    transform_timeout: float = 0.1
 
 
 def node_settings(params_file: Path | None, overrides: Mapping[str, Any], node: str
@@ -409,6 +491,10 @@ def node_settings(params_file: Path | None, overrides: Mapping[str, Any], node: 
         if node_key_matches(key, node):
             params.update(values)
     params.update(overrides)
+    if params.get('robot_description_source') == 'topic' and \
+            'robot_description_file' not in params:
+        raise ReplayError('the node took its robot model from the robot_description topic; '
+                          "give the robot's URDF with --robot FILE")
     robot = Path(str(params.get('robot_description_file', cfg / 'robots' / 'six_axis_arm.urdf')))
     from ..model.kinematics import RobotModel
     model_joints = RobotModel.from_urdf(robot).joint_names
@@ -426,7 +512,8 @@ def node_settings(params_file: Path | None, overrides: Mapping[str, Any], node: 
     return NodeSettings(robot, joints, float(params.get('rate_hz', 500.0)),
                         str(params.get('base_frame', 'base_link')), sources,
                         float(params.get('people.timeout', 0.2)),
-                        {**DEFAULTS, **watchdog}, mappings)
+                        {**DEFAULTS, **watchdog}, mappings,
+                        float(params.get('people.transform_timeout', 0.1)))
 
 
 class _OneSkill:
@@ -469,7 +556,7 @@ def replay(index: BagIndex, window: Window, skill_path: Path, settings: NodeSett
     from ..safety.watchdog import PersonSample
 
     model = RobotModel.from_urdf(settings.robot)
-    library = SkillLibrary(skill_path.parent, model.joint_names)
+    library = SkillLibrary(skill_path.parent, model.joint_names, model=model)
     loaded = library.load_file(skill_path.resolve())
     compiled = loaded.compiled
     for name, value in tunables.items():
@@ -495,7 +582,7 @@ def replay(index: BagIndex, window: Window, skill_path: Path, settings: NodeSett
                               {s: settings.person_timeout for s in settings.person_sources})
     loop = ControlLoop(_OneSkill(loaded), watchdog, dt, person_sources=settings.person_sources)
     samples = read_samples(index, window, model.joint_names, mappings, settings.person_sources,
-                           settings.base_frame)
+                           settings.base_frame, settings.transform_timeout)
     to_command = np.array([model.joint_names.index(j) for j in settings.joint_names])
     first_ns = int(index.command_ns[window.first])
     k0 = int(np.searchsorted(samples.command_ns, first_ns))
@@ -598,6 +685,8 @@ def run_replay(args: argparse.Namespace) -> int:
     tunables = parse_assignments(args.tunables, '--set')
     node_params = parse_assignments(args.node_params, '--param')
     index = index_bag(args.bag, args.node)
+    if getattr(args, 'robot', None) is not None:
+        node_params['robot_description_file'] = str(args.robot)
     settings = node_settings(args.params, node_params, index.node)
     spec = load_skill(args.skill)
     window = choose_window(index, spec.name, args.activation, args.start, args.stop)

@@ -26,7 +26,8 @@ import math
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Mapping
+from typing import Any
+from collections.abc import Mapping
 
 import numpy as np
 
@@ -39,6 +40,7 @@ from ..runtime.watchdog_setup import DEFAULTS, build_watchdog, points_function
 from ..safety.watchdog import PersonSample
 from ..skill.compile import CompiledSkill, compile_skill
 from ..skill.loader import load_skill
+from ..skill.robot import robot_model
 from .watchdog_stages import StageRecorder
 
 #: The most ticks one run may have (the trace of every tick is kept in memory for the plots).
@@ -280,7 +282,7 @@ def run(skill: CompiledSkill, duration: float, dt: float = 0.002, *,
     n = check_arguments(duration, dt)
     plant = ScenePlant(skill) if skill.spec.offline.scene is not None else ExactPlant(skill)
     # The node's model: its URDF in the URDF's root frame, as the node loads it.
-    model = RobotModel.from_urdf(skill.spec.robot)
+    model = RobotModel(skill.model.description)
     sources = [name for name, _ in plant.people()]
     watchdog = build_watchdog(model, dt, settings.watchdog,
                               {source: settings.people_timeout for source in sources})
@@ -440,17 +442,20 @@ def write_outputs(skill: CompiledSkill, trace: Trace, summary: dict[str, object]
 
 def simulate_file(path: Path, duration: float, out_dir: Path, dt: float | None = None,
                   progress: bool = True, params_file: Path | None = None,
-                  qp_solver: str = 'quadprog'
+                  qp_solver: str = 'quadprog', robot: Path | None = None
                   ) -> tuple[dict[str, object], list[Path]]:
     """Check the arguments, load, run and write report.json and the plots into ``out_dir``.
 
     ``dt`` None: the node's tick, 1 / rate_hz (500 Hz, or the parameters file's rate_hz).
+    ``robot``: URDF for a skill without ``robot:`` (simulate --robot FILE).
     """
     settings = node_settings(params_file)
     dt = 1.0 / settings.rate_hz if dt is None else dt
     n = check_arguments(duration, dt, out_dir)
     spec = load_skill(path)
-    skill = compile_skill(spec)
+    skill = compile_skill(spec, robot_model(
+        spec, RobotModel.from_urdf(robot) if robot is not None and spec.robot is None
+        else None))
     values = n * trace_values_per_tick(skill)
     if values > MAX_TRACE_VALUES:
         msg = (f'{n:,} ticks of this skill ({trace_values_per_tick(skill)} numbers each) would '

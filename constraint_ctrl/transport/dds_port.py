@@ -278,6 +278,25 @@ class DdsPort:
         self._announcer.update(readers=(reader,))
         return DdsSubscription(reader, fqn)
 
+    def wait_for_message(self, msg_type: Any, topic: str, qos: str,
+                         timeout_s: float) -> tuple[Any | None, str]:
+        """A temporary reader polled every 20 ms (no spin needed); deleted afterwards."""
+        fqn, dds_topic = self._topic(msg_type, topic)
+        tag = type_hash_tag(ros_type_of(msg_type), self.distro)
+        reader = DataReader(self._participant, dds_topic, reader_qos(profile(qos), tag))
+        decode = codec_of(msg_type).decode
+        deadline = time.monotonic() + max(0.0, timeout_s)
+        try:
+            while True:
+                for data, info in dds_raw.take(reader, 1):
+                    if info.valid_data:
+                        return decode(data), fqn
+                if time.monotonic() >= deadline or self._stop.is_set():
+                    return None, fqn
+                time.sleep(0.02)
+        finally:
+            delete_entity(reader)
+
     # --- services --------------------------------------------------------------------------
 
     def _add_service(self, srv_type: Any, name: str, callback: Callable[[Any, Any], Any],

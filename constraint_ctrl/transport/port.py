@@ -108,6 +108,12 @@ class Port(Protocol):
         the port runs on one thread of its own that nothing else queues on (rclpy: a hidden
         node with its own executor; DDS: the topic thread already is such a thread)."""
 
+    def wait_for_message(self, msg_type: Any, topic: str, qos: str,
+                         timeout_s: float) -> tuple[Any | None, str]:
+        """(one message or None after timeout_s, the topic's fully qualified name), taken by
+        a temporary subscription without spin(): for a latched (transient local) sample such
+        as robot_description before the node spins (rclpy: rclpy.wait_for_message)."""
+
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> object:
         """callback(request, response) fills and returns the response."""

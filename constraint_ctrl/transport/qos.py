@@ -12,6 +12,9 @@ node that fell behind works on the newest sample instead of through a backlog.
 transform_listener.py, Humble and Jazzy: QoSProfile(depth=100, VOLATILE / TRANSIENT_LOCAL,
 KEEP_LAST), reliable by QoSProfile's default); 'robot_description' is what
 robot_state_publisher offers on that topic (rclcpp::QoS(1).transient_local(), reliable).
+'command' is for commands to a robot driver or a forward command controller: reliable, keep
+last 1, volatile, so a late or slow reader gets the newest command and never a queue of old
+ones (a position target from 10 ticks ago would pull the arm back).
 """
 from __future__ import annotations
 
@@ -36,6 +39,7 @@ PROFILES: dict[str, QosProfile] = {
     'latest': QosProfile(depth=1, reliable=False, transient_local=False),
     'default': QosProfile(depth=10, reliable=True, transient_local=False),
     'status': QosProfile(depth=1, reliable=True, transient_local=True),
+    'command': QosProfile(depth=1, reliable=True, transient_local=False),
     'services': QosProfile(depth=10, reliable=True, transient_local=False),
     'parameters': QosProfile(depth=1000, reliable=True, transient_local=False),
     'tf': QosProfile(depth=100, reliable=True, transient_local=False),

@@ -288,6 +288,21 @@ class RclpyPort:
         return self.node.create_subscription(msg_type, topic, guarded, _qos(qos),
                                              callback_group=self._topic_group)
 
+    def wait_for_message(self, msg_type: Any, topic: str, qos: str,
+                         timeout_s: float) -> tuple[Any | None, str]:
+        # rclpy.wait_for_message (Jazzy: keyword qos_profile; Humble's has no QoS argument
+        # and would miss a transient local sample, hence refused there)
+        from rclpy.wait_for_message import wait_for_message
+        name = self.node.resolve_topic_name(topic)
+        try:
+            ok, msg = wait_for_message(msg_type, self.node, topic, qos_profile=_qos(qos),
+                                       time_to_wait=timeout_s)
+        except TypeError as err:
+            msg = (f'waiting for {name} needs rclpy.wait_for_message with qos_profile '
+                   f'(ROS 2 Jazzy or newer): {err}')
+            raise TransportError(msg) from None
+        return (msg if ok else None), name
+
     def create_service(self, srv_type: Any, name: str,
                        callback: Callable[[Any, Any], Any]) -> Any:
         return self.node.create_service(

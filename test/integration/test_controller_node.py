@@ -10,14 +10,14 @@ from __future__ import annotations
 
 import os
 import random
-import shutil
 import signal
 import subprocess
 import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any
+from collections.abc import Callable, Iterator
 
 import numpy as np
 import pytest
@@ -108,19 +108,22 @@ class Robot:
 
 
 @pytest.fixture(scope='module')
-def setup(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Robot, subprocess.Popen, Path]]:
+def setup(tmp_path_factory: pytest.TempPathFactory
+          ) -> Iterator[tuple[Robot, subprocess.Popen, Path]]:
     work = tmp_path_factory.mktemp('node')
     skills = work / 'skills'
     skills.mkdir()
     for name in ('move_to_point.yaml', 'keep_tool_vertical.yaml'):
         text = (ROOT / 'config' / 'skills' / name).read_text()
-        (skills / name).write_text(text.replace('../robots/', str(ROOT / 'config' / 'robots') + '/'))
+        robots = str(ROOT / 'config' / 'robots') + '/'
+        (skills / name).write_text(text.replace('../robots/', robots))
     bag = work / 'bag'
     domain = str(random.randint(101, 200))      # its own, not one another module set
     env = dict(os.environ, PYTHONPATH=str(ROOT), ROS_DOMAIN_ID=domain)
     proc = subprocess.Popen(
         [sys.executable, '-m', 'constraint_ctrl.cli', 'run', '--transport', 'dds',
-         '--record', str(bag), '--ros-args', '--params-file', str(ROOT / 'config' / 'controller.yaml'),
+         '--record', str(bag), '--ros-args',
+         '--params-file', str(ROOT / 'config' / 'controller.yaml'),
          '-p', f'skills_folder:={skills}', '-p', 'rate_hz:=250.0'],
         cwd=work, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
@@ -200,6 +203,10 @@ def test_bag_reads_back_with_rosbags(setup) -> None:
         assert topics['/joint_states'] == 'sensor_msgs/msg/JointState'
         assert topics[f'{NODE}/status'] == 'diagnostic_msgs/msg/DiagnosticArray'
         assert topics[f'{NODE}/events'] == 'std_msgs/msg/String'
+        # issue 9.4: the rows, /diagnostics and the markers are recorded like the rest
+        assert topics[f'{NODE}/rows'] == 'diagnostic_msgs/msg/DiagnosticArray'
+        assert topics['/diagnostics'] == 'diagnostic_msgs/msg/DiagnosticArray'
+        assert topics[f'{NODE}/markers'] == 'visualization_msgs/msg/MarkerArray'
         counts: dict[str, int] = {}
         events = []
         for conn, _, raw in reader.messages():
@@ -208,5 +215,6 @@ def test_bag_reads_back_with_rosbags(setup) -> None:
                 events.append(reader.deserialize(raw, conn.msgtype).data)
         assert counts[f'{NODE}/command'] > 100
         assert counts['/joint_states'] > 100
+        assert counts[f'{NODE}/markers'] >= 2 and counts[f'{NODE}/rows'] >= 2
         assert 'arrived' in events
     assert (bag / 'metadata.yaml').read_text().count('storage_identifier: mcap') == 1

@@ -16,7 +16,8 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any
+from collections.abc import Callable, Iterator
 
 import numpy as np
 import pytest

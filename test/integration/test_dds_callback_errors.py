@@ -8,7 +8,8 @@ from __future__ import annotations
 import os
 import random
 import threading
-from typing import Any, Iterator
+from typing import Any
+from collections.abc import Iterator
 
 import pytest
 

@@ -78,3 +78,15 @@ def test_outputs_are_written(demo) -> None:
                  'separation.png'):
         assert (out / name).stat().st_size > 1000, name
     assert (out / 'bag' / 'metadata.yaml').exists()
+
+
+def test_the_plan_ends_in_hold(demo) -> None:
+    """Issue 9: after the plan's last step the last skill kept running (joint_1 drifted).
+    Now the controller holds: reported, zero command, the true joints stand still."""
+    _, summary, _ = demo
+    after = summary['after_plan']
+    last_end = max(s['ended_s'] for s in summary['steps'])
+    assert after['holding_at_s'] is not None and after['holding_at_s'] >= last_end - 0.05
+    assert after['statuses_after_hold'] >= 10 and after['statuses_not_hold'] == 0   # 50 Hz
+    assert after['last_command_max_abs'] == 0.0
+    assert after['still_samples'] >= 10 and after['true_joint_motion_rad'] <= 1e-9

@@ -23,7 +23,8 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Callable, Iterator
+from typing import Any
+from collections.abc import Callable, Iterator
 
 import numpy as np
 import pytest
@@ -337,7 +338,10 @@ def test_bag_topic_names_follow_remapping(cell, tmp_path: Path) -> None:
     counts, _, wrenches = _read_bag(bag, keep='/cell1/tool/wrench')
     assert set(counts) == {'/robot/joint_states', '/cell1/tool/wrench', f'/cell1/{NODE}/command',
                            f'/cell1/{NODE}/joint_command', f'/cell1/{NODE}/events',
-                           f'/cell1/{NODE}/status'}
+                           f'/cell1/{NODE}/status', f'/cell1/{NODE}/rows',
+                           f'/cell1/{NODE}/markers', '/diagnostics',   # /diagnostics: absolute
+                           # the frame tree the node subscribes (issue 9.3): absolute names
+                           '/tf', '/tf_static'}
     assert counts['/robot/joint_states'] > 0 and counts[f'/cell1/{NODE}/command'] > 0
     numbers = [m.wrench.force.x for m in wrenches]
     assert numbers and len(set(numbers)) == len(numbers), 'a wrench was recorded twice'

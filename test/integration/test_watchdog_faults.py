@@ -31,7 +31,8 @@ import sys
 import threading
 import time
 from pathlib import Path
-from typing import Any, Iterator
+from typing import Any
+from collections.abc import Iterator
 
 import numpy as np
 import pytest
@@ -64,7 +65,8 @@ constraints:
   - name: sweep
     function: position(tool_tip)
     kind: equal
-    target: vector(0.45 + 0.05 * sin(2 * pi * time / 2), 0.05 * cos(2 * pi * time / 2), 0.35 + offset)
+    target: vector(0.45 + 0.05 * sin(2 * pi * time / 2), 0.05 * cos(2 * pi * time / 2),
+                   0.35 + offset)
     behaviour: {{order: 1, gain: 4.0}}
     weight: 100.0
   - name: tool_down

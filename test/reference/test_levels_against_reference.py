@@ -126,7 +126,9 @@ def independent_levels(solver: SkillSolver) -> np.ndarray:
                 # a held row with no component left in the null space: x_ref decides it
                 assert low - 1e-8 <= shift <= up + 1e-8
                 return
-            A.append(a); lb.append(low - shift); ub.append(up - shift)
+            A.append(a)
+            lb.append(low - shift)
+            ub.append(up - shift)
 
         if not number:
             for i in held_eq:

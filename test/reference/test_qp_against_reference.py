@@ -3,7 +3,8 @@
 Independent formulation: from the rows (J, lo, hi, weight) and the box bounds the skill function
 returns, the problem is written again here from its definition and handed to OSQP (PyPI `osqp`,
 an ADMM solver unrelated to quadprog's active-set method). The optimality conditions
-(Karush-Kuhn-Tucker: stationarity, primal and dual feasibility, complementary slackness; any
+(Karush-Kuhn-Tucker: stationarity, primal and dual feasibility, complementary slackness
+any
 convex optimisation text, e.g. Boyd & Vandenberghe, Convex Optimization, sec. 5.5.3) are checked
 on quadprog's own multipliers.
 """
@@ -38,7 +39,8 @@ def _mixed_skill():
 
 
 def _independent(solver: SkillSolver) -> tuple[np.ndarray, float]:
-    """Solve the same problem, written from its definition, with OSQP; return x and cost."""
+    """Solve the same problem, written from its definition, with OSQP
+    return x and cost."""
     skill = solver.skill
     out = solver.outputs
     J, lo, hi, w = out['J'], out['lo'], out['hi'], out['weight']
@@ -53,7 +55,7 @@ def _independent(solver: SkillSolver) -> tuple[np.ndarray, float]:
     P[n:, n:] = np.diag(w[soft_in])
     qv = np.zeros(n + m)
     qv[:n] = -J[soft_eq].T @ (w[soft_eq] * lo[soft_eq])
-    A, l, u = [], [], []
+    A, lo_rows, up_rows = [], [], []
     for i, r in enumerate(rows):
         a = np.zeros(n + m)
         a[:n] = J[i]
@@ -61,19 +63,30 @@ def _independent(solver: SkillSolver) -> tuple[np.ndarray, float]:
             # lo - s <= J x and J x <= hi + s written as two rows with the slack
             k = n + soft_in.index(i)
             if np.isfinite(lo[i]):
-                a1 = a.copy(); a1[k] = 1.0
-                A.append(a1); l.append(lo[i]); u.append(np.inf)
+                a1 = a.copy()
+                a1[k] = 1.0
+                A.append(a1)
+                lo_rows.append(lo[i])
+                up_rows.append(np.inf)
             if np.isfinite(hi[i]):
-                a2 = a.copy(); a2[k] = -1.0
-                A.append(a2); l.append(-np.inf); u.append(hi[i])
+                a2 = a.copy()
+                a2[k] = -1.0
+                A.append(a2)
+                lo_rows.append(-np.inf)
+                up_rows.append(hi[i])
         elif r.hard:
-            A.append(a); l.append(lo[i]); u.append(hi[i])
+            A.append(a)
+            lo_rows.append(lo[i])
+            up_rows.append(hi[i])
     for j in range(n):
-        a = np.zeros(n + m); a[j] = 1.0
-        A.append(a); l.append(out['box_lo'][j]); u.append(out['box_hi'][j])
+        a = np.zeros(n + m)
+        a[j] = 1.0
+        A.append(a)
+        lo_rows.append(out['box_lo'][j])
+        up_rows.append(out['box_hi'][j])
     prob = osqp.OSQP()
-    prob.setup(sp.csc_matrix(np.triu(P)), qv, sp.csc_matrix(np.array(A)), np.array(l),
-               np.array(u), eps_abs=1e-11, eps_rel=1e-11, max_iter=200000, polishing=True,
+    prob.setup(sp.csc_matrix(np.triu(P)), qv, sp.csc_matrix(np.array(A)), np.array(lo_rows),
+               np.array(up_rows), eps_abs=1e-11, eps_rel=1e-11, max_iter=200000, polishing=True,
                verbose=False)
     res = prob.solve(raise_error=False)
     assert res.info.status == 'solved', res.info.status

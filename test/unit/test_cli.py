@@ -40,7 +40,8 @@ def one_error_line(capsys: pytest.CaptureFixture[str]) -> str:
     (['--duration', '1e9'], 'at most 1,000,000 ticks'),
     (['--duration', '10', '--tick', '1e-9'], 'at most 1,000,000 ticks'),
 ])
-def test_simulate_refuses_bad_numbers_in_one_line(tmp_path: Path, capsys: pytest.CaptureFixture[str],
+def test_simulate_refuses_bad_numbers_in_one_line(tmp_path: Path,
+                                                  capsys: pytest.CaptureFixture[str],
                                                   options: list[str], words: str) -> None:
     code = cli.main(['simulate', str(SKILL), '--out', str(tmp_path / 'out'), '--quiet',
                      *options])

@@ -9,7 +9,7 @@ import pytest
 
 from constraint_ctrl.model.kinematics import RobotModel
 from constraint_ctrl.runtime.library import SkillLibrary
-from constraint_ctrl.runtime.loop import ControlLoop, InputSample, Snapshot
+from constraint_ctrl.runtime.loop import HOLD, ControlLoop, Snapshot
 from constraint_ctrl.runtime.watchdog_setup import build_watchdog
 from constraint_ctrl.safety.states import State
 
@@ -25,7 +25,8 @@ def loop(tmp_path: Path) -> ControlLoop:
     (tmp_path / 'robots').mkdir()
     shutil.copy(CONFIG / 'robots' / 'six_axis_arm.urdf', tmp_path / 'robots')
     for name in ('move_to_point.yaml', 'keep_tool_vertical.yaml'):
-        text = (CONFIG / 'skills' / name).read_text().replace('../scenes/', str(CONFIG / 'scenes') + '/')
+        text = (CONFIG / 'skills' / name).read_text()
+        text = text.replace('../scenes/', str(CONFIG / 'scenes') + '/')
         (skills / name).write_text(text)
     model = RobotModel.from_urdf(CONFIG / 'robots' / 'six_axis_arm.urdf')
     library = SkillLibrary(skills, model.joint_names)
@@ -50,7 +51,7 @@ def _run(loop: ControlLoop, q: np.ndarray, t0: float, seconds: float,
 
 def test_activation_applies_at_the_next_tick_and_the_skill_arrives(loop: ControlLoop) -> None:
     q, t, outs = _run(loop, START, 0.0, 0.1)
-    assert all(o.skill is None for o in outs) and not outs[-1].command.any()
+    assert all(o.skill == HOLD for o in outs) and not outs[-1].command.any()
     loop.request_activation('move_to_point')
     q, t, outs = _run(loop, q, t, 4.0)
     assert outs[0].activated == 'move_to_point'
@@ -125,7 +126,7 @@ def test_a_request_no_tick_took_is_withdrawn_and_never_switches_later(loop: Cont
                                           params={'goal_z': 0.4})
     assert not ok and 'nothing was switched' in message
     q, t, outs = _run(loop, q, t, 0.05)
-    assert all(o.skill is None and o.activated is None for o in outs)
+    assert all(o.skill == HOLD and o.activated is None for o in outs)
     runner = loop.library.get('move_to_point').runner
     assert runner.solver.p[runner.skill.param_index('goal_z')] != 0.4
 

@@ -10,7 +10,6 @@ Expected lines are counted from the generated texts.
 """
 from __future__ import annotations
 
-import textwrap
 from pathlib import Path
 
 import pytest

@@ -39,9 +39,12 @@ def scope() -> FormulaScope:
     return FormulaScope(MODEL, names, [MODEL.q], [Q_NOW], [Q_START])
 
 
+IDENTITY = np.eye(4)   # default pose of frames a and b (read only)
+
+
 def evaluate(text: str, q: np.ndarray | None = None, time: float = 0.0, x: float = 0.0,
              a=(0.0, 0.0, 0.0), b=(0.0, 0.0, 0.0), p=(0.0, 0.0, 0.0),
-             frame_a=np.eye(4), frame_b=np.eye(4), q_now: np.ndarray | None = None) -> np.ndarray:
+             frame_a=IDENTITY, frame_b=IDENTITY, q_now: np.ndarray | None = None) -> np.ndarray:
     q = np.zeros(MODEL.n_joints) if q is None else q
     q_now = q if q_now is None else q_now
     result = compile_formula(text, scope())

@@ -315,10 +315,10 @@ CASES = {
           a: {rate: 10}  # <-
         """, 'inputs.a.rate', "unknown key 'rate' in inputs.a; did you mean 'rate_hz'"),
     # A missing key is reported where the mapping that lacks it starts.
-    'missing_robot': case("""\
-        skill: s  # <-
-        description: no robot
-        """, 'robot', "missing required key 'robot'", header=''),
+    # (robot: is optional since issue 9.3: the skill then drives the controller's model)
+    'missing_skill': case("""\
+        description: no name  # <-
+        """, 'skill', "missing required key 'skill'", header=''),
     'missing_constraint_name': case("""\
         constraints:
           - function: x  # <-

@@ -172,7 +172,7 @@ def assert_valid(spec: SkillSpec, text: str) -> None:
     assert all(positive(v) for v in spec.regularisation.joint_weights.values())
     assert set(spec.offline.inputs) <= {i.name for i in spec.inputs}
     assert all(math.isfinite(v) for v in spec.offline.start.values())
-    assert spec.robot.is_file()
+    assert spec.robot is None or spec.robot.is_file()   # robot: is optional (issue 9.3)
     assert all(1 <= line <= line_count(text) for line in spec.locations.values())
 
 

@@ -12,7 +12,7 @@ from __future__ import annotations
 import math
 import time
 from pathlib import Path
-from typing import Iterator
+from collections.abc import Iterator
 
 import numpy as np
 import pytest

@@ -361,3 +361,20 @@ def test_setup_has_no_deprecated_tests_require() -> None:
     setup = _setup_keywords()
     assert 'tests_require' not in setup
     assert 'test' in setup['extras_require']
+
+
+def test_make_test_runs_the_linter_with_the_projects_rules() -> None:
+    """`make test` (the README's and CI's test command) runs ruff first, with the rule set of
+    pyproject.toml [tool.ruff] (ruff's documented configuration table), and ruff is among the
+    test extras so a fresh clone's venv has it."""
+    import tomllib
+    config = tomllib.loads((ROOT / 'pyproject.toml').read_text())['tool']['ruff']
+    assert {'E', 'F', 'W', 'B'} <= set(config['lint']['select'])
+    makefile = (ROOT / 'Makefile').read_text()
+    test_rule = re.search(r'^test:(.*)$', makefile, flags=re.M)
+    lint_rule = re.search(r'^lint:.*\n\t(.*)$', makefile, flags=re.M)
+    assert test_rule is not None and 'lint' in test_rule.group(1).split()
+    assert lint_rule is not None and lint_rule.group(1).split()[0].endswith('ruff')
+    extras = ast.literal_eval(re.search(r"'test': (\[.*?\])", (ROOT / 'setup.py').read_text(),
+                                        flags=re.S).group(1))
+    assert any(e.startswith('ruff') for e in extras)

@@ -99,6 +99,36 @@ def test_optional_fields_and_jumps(tmp_path: Path) -> None:
                                  next='third', on_timeout='second')
     assert plan.steps[2].set == {'gain': -2.0}    # tunables may be negative or zero
     assert plan.index('third') == 2
+    assert all(s.duration is None for s in plan.steps)
+
+
+def test_duration_steps_and_the_hold(tmp_path: Path) -> None:
+    """A step may end after a duration instead of an event (no done_when, no timeout), and
+    may name the controller's built-in hold like a skill."""
+    path = write(tmp_path, """\
+        plan: dwell_demo
+        steps:
+          - {name: press, skill: reach, duration: 2.5, set: {goal_x: 0.4}}
+          - name: settle    # <-
+            skill: hold
+            duration: 1
+          - {name: lift, skill: reach, done_when: arrived, timeout: 4}
+        """)
+    plan = load_plan(path)
+    press, settle, lift = plan.steps
+    assert press == Step(name='press', skill='reach', done_when=None, timeout=None,
+                         set={'goal_x': 0.4}, duration=2.5)
+    assert (settle.skill, settle.duration, settle.done_when, settle.timeout) == \
+        ('hold', 1.0, None, None)
+    assert type(settle.duration) is float
+    assert (lift.done_when, lift.timeout, lift.duration) == ('arrived', 4.0, None)
+    assert [s.index for s in plan.steps] == [0, 1, 2]
+    # a step's fields are located for errors found later (the check against the controller)
+    error = plan.error('no such skill', 'steps[1].skill')
+    assert (error.file, error.line, error.field) == (str(path), marked_line(path) + 1,
+                                                     'steps[1].skill')
+    # a field without a line of its own falls back to its step's line
+    assert plan.error('x', 'steps[1].set.goal').line == marked_line(path)
 
 
 # --- every error path is located ----------------------------------------------------------------
@@ -117,9 +147,26 @@ CASES: dict[str, tuple[str, str, str]] = {
     'missing plan': ('steps:   # <-\n' + STEP, 'plan', r"'plan' is required"),
     'missing steps': ('plan: demo   # <-\ncontroller: /c\n', 'steps', r"'steps' is required"),
     'missing done_when': (HEAD + '  - name: a   # <-\n    skill: reach\n    timeout: 5\n',
-                          'steps[0]', r"'done_when' is required"),
+                          'steps[0]', r"'done_when' \(an event\) or 'duration' \(seconds\) is "
+                          r"required"),
     'missing timeout': (HEAD + STEP + '  - {name: b, skill: s, done_when: e}   # <-\n',
-                        'steps[1]', r"'timeout' is required"),
+                        'steps[1]', r"'timeout' is required with done_when"),
+    'duration and done_when': (HEAD + STEP + '    duration: 2   # <-\n', 'steps[0].duration',
+                               r'either on an event \(done_when\) or after a duration, not both'),
+    'duration and timeout': (HEAD + '  - {name: a, skill: s, duration: 2, timeout: 3}   # <-\n',
+                             'steps[0].timeout', r'a duration step ends by itself; timeout'),
+    'duration and on_timeout': (HEAD + '  - name: a\n    skill: s\n    duration: 2\n'
+                                '    on_timeout: a   # <-\n', 'steps[0].on_timeout',
+                                r'a duration step ends by itself; on_timeout'),
+    'duration zero': (HEAD + '  - name: a\n    skill: s\n    duration: 0   # <-\n',
+                      'steps[0].duration', r'positive number, got 0'),
+    'duration NaN': (HEAD + '  - name: a\n    skill: s\n    duration: .nan   # <-\n',
+                     'steps[0].duration', r'positive number, got nan'),
+    'duration text': (HEAD + '  - name: a\n    skill: s\n    duration: 2 s   # <-\n',
+                      'steps[0].duration', r"positive number, got '2 s'"),
+    'hold with tunables': (HEAD + '  - name: a\n    skill: hold\n    duration: 1\n'
+                           '    set: {goal_x: 1.0}   # <-\n', 'steps[0].set',
+                           r"'hold' is the controller's built-in hold: it has no tunables"),
     'timeout bool': (HEAD + STEP.replace('timeout: 5', 'timeout: true   # <-'),
                      'steps[0].timeout', r'positive number, got True'),
     'timeout NaN': (HEAD + STEP.replace('timeout: 5', 'timeout: .nan   # <-'),
@@ -244,7 +291,7 @@ PLAUSIBLE = (st.floats(min_value=0.01, max_value=100.0) | st.integers(1, 100)
              | st.sampled_from(['approach_shaft', 'retreat', 'seat_gear', 'abort', 'arrived']))
 KEYS = st.sampled_from(sorted({'plan', 'description', 'controller', 'watchdog_wait', 'steps',
                                'name', 'skill', 'set', 'done_when', 'next', 'timeout',
-                               'on_timeout', 'goal_x', 'bogus'}))
+                               'on_timeout', 'duration', 'goal_x', 'bogus'}))
 
 
 def containers(node: Any) -> list[Any]:
@@ -302,8 +349,12 @@ def test_mutated_plans_load_or_raise_plan_error(tmp_path: Path, data: dict[str, 
     assert len(set(names)) == len(names) and 'abort' not in names
     ros_token = re.compile(r'[A-Za-z_][A-Za-z0-9_]*')   # ROS 2 name token (from memory)
     for step in plan.steps:
-        assert all(ros_token.fullmatch(n) for n in (step.name, step.skill, step.done_when))
-        assert math.isfinite(step.timeout) and step.timeout > 0
+        assert all(ros_token.fullmatch(n) for n in (step.name, step.skill))
+        # exactly one way to end: an event with its timeout, or a duration
+        assert (step.done_when is None) == (step.timeout is None) != (step.duration is None)
+        assert step.done_when is None or ros_token.fullmatch(step.done_when)
+        for value in (step.timeout, step.duration):
+            assert value is None or (math.isfinite(value) and value > 0)
         assert all(math.isfinite(v) for v in step.set.values())
         assert step.next is None or step.next in names
         assert step.on_timeout == 'abort' or step.on_timeout in names
@@ -324,3 +375,17 @@ def test_edited_plan_text_loads_or_raises_plan_error(tmp_path: Path, cut: int, l
         load_plan(path)
     except PlanError as error:
         assert error.file == str(path) and error.message
+
+
+def test_readme_plan_example_loads(tmp_path: Path) -> None:
+    """The plan example in README.md ("Sequencer and plans") is a valid plan as written."""
+    readme = (Path(__file__).resolve().parents[2] / 'README.md').read_text(encoding='utf-8')
+    blocks = [b for b in re.findall(r'```yaml\n(.*?)```', readme, flags=re.S)
+              if b.startswith('plan:')]
+    assert len(blocks) == 1, 'README.md should hold exactly one plan example'
+    path = tmp_path / 'readme_plan.yaml'
+    path.write_text(blocks[0], encoding='utf-8')
+    plan = load_plan(path)
+    assert [(s.name, s.skill, s.done_when, s.duration) for s in plan.steps] == [
+        ('approach', 'move_to_point', 'arrived', None), ('press', 'seat_gear', None, 2.0),
+        ('settle', 'hold', None, 0.5)]

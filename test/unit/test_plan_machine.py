@@ -258,3 +258,55 @@ def test_done_event_received_before_the_switch_was_confirmed_is_ignored() -> Non
     assert runner.on_event('arrived', 1.02) is None               # sent before: ignored
     assert runner.step.name == 'b'
     assert runner.on_event('arrived', 2.0).outcome == 'done'
+
+
+# --- duration steps, interruption (issue 9 section 1) ---------------------------------------
+
+PRESS = Step(name='press', skill='seat_gear', done_when=None, timeout=None, duration=2.0)
+SETTLE = Step(name='settle', skill='hold', done_when=None, timeout=None, duration=0.5)
+
+
+def test_duration_step_is_done_after_its_moving_time() -> None:
+    runner = started(make_plan(PRESS, REACH))
+    assert runner.on_event('seated', T0 + 0.5) is None          # events do not end it
+    assert runner.on_event('arrived', T0 + 0.6) is None
+    assert runner.tick(T0 + 1.99) is None                        # 1.99 s < 2 s
+    assert runner.tick(T0 + 2.0) == Activate(REACH, 1)           # 2 s of motion: done
+    record = runner.records[0]
+    assert (record.outcome, record.duration) == ('done', pytest.approx(2.0))
+
+
+def test_duration_does_not_run_while_the_watchdog_holds_the_arm() -> None:
+    runner = started(make_plan(PRESS))
+    runner.on_event('watchdog_stopped', T0 + 1.0)
+    assert runner.tick(T0 + 30.0) is None and runner.state == 'paused'
+    runner.on_event('watchdog_normal', T0 + 31.0)                # paused 30 s
+    assert runner.tick(T0 + 31.9) is None                        # moved 1.0 + 0.9 s
+    assert runner.tick(T0 + 32.0) == Finish('done', 'all steps done')   # moved 1 + 1 s
+    record = runner.records[0]
+    assert (record.paused_s, record.duration) == (pytest.approx(30.0), pytest.approx(32.0))
+
+
+def test_duration_counts_only_once_the_activation_is_confirmed() -> None:
+    runner = PlanRunner(make_plan(SETTLE, REACH))
+    assert runner.start(T0) == Activate(SETTLE, 0)
+    assert runner.tick(T0 + 5.0) is None          # not confirmed: the step may not end yet
+    runner.activated(T0 + 5.0)
+    assert runner.tick(T0 + 5.0) == Activate(REACH, 1)   # started at T0: 5 s >= 0.5 s
+
+
+def test_interrupted_plan_records_the_running_step_and_ignores_what_follows() -> None:
+    runner = started(make_plan(REACH, SEAT))
+    finish = runner.interrupted('interrupted by SIGTERM', T0 + 1.5)
+    assert finish == Finish('interrupted', 'interrupted by SIGTERM')
+    assert runner.state == 'interrupted'
+    assert (runner.records[0].outcome, runner.records[0].ended) == ('interrupted', T0 + 1.5)
+    assert runner.on_event('arrived', T0 + 2.0) is None and runner.tick(T0 + 99.0) is None
+    assert runner.report(T0)['outcome'] == 'interrupted'
+
+
+def test_refused_plan_is_aborted_without_steps() -> None:
+    runner = PlanRunner(make_plan(REACH))
+    finish = runner.refused('the controller /c is not available', T0)
+    assert finish.outcome == 'aborted' and runner.records == []
+    assert runner.report(T0)['steps'] == [] and runner.on_event('arrived', T0) is None

@@ -233,3 +233,44 @@ def test_the_checks_catch_a_bad_figure() -> None:
     for expected in ('without a unit', 'share colour', 'on a log axis', 'numeric axis',
                      'negative times', 'overlap', 'no x label'):
         assert expected in problems, (expected, problems)
+
+
+def test_marker_figure_follows_the_rules(saved: list[Figure], tmp_path: Path) -> None:
+    """The demo's marker frame (markers.png) from a MarkerArray the node's builder made."""
+    import numpy as np
+    from constraint_ctrl.model.kinematics import RobotModel
+    from constraint_ctrl.nodes.markers import MarkerBuilder, MarkerJob, SkillShapes
+    from constraint_ctrl.runtime.watchdog_setup import build_watchdog
+    from constraint_ctrl.safety.watchdog import PersonSample, WatchdogInput
+    from constraint_ctrl.skill.compile import compile_skill
+    from constraint_ctrl.skill.loader import load_skill
+    from constraint_ctrl.solve.qp import SkillSolver
+    from constraint_ctrl.tools.demo_report import marker_views
+    from constraint_ctrl.tools.plots import marker_figure, save
+    from constraint_ctrl.transport.dds_types import types_for
+
+    class Port:
+        types = types_for('jazzy')
+
+    q = np.array([0.0, 0.0415, 0.6889, 0.0, 0.8404, 3.1416])
+    model = RobotModel.from_urdf(ROOT / 'config' / 'robots' / 'six_axis_arm.urdf')
+    wd = build_watchdog(model, 0.002, {}, {'cam': 1.0})
+    wd.step(WatchdogInput(now=1.0, q=q, joint_state_stamp=1.0, command=np.zeros(6),
+                          solver_ok=True, solver_status='ok', input_stamps={},
+                          input_timeouts={}, inputs_finite=True,
+                          people={'cam': PersonSample('cam', np.array([1.0, 0.4, 0.6]), 1.0)},
+                          person_sources=['cam'], joint_stamps=np.full(6, 1.0)))
+    compiled = compile_skill(load_skill(ROOT / 'config' / 'cookbook' / 'carry_tray.yaml'))
+    solver = SkillSolver(compiled)
+    solver.solve(q, compiled.start_unknowns(), np.zeros(0), 0.5, 0.002, np.zeros(6))
+    shapes = SkillShapes().shapes(compiled, solver.input_values())
+    msg = MarkerBuilder(Port, 'base_link', 0.2).build(MarkerJob(wd.geometry(), None, None, 0),
+                                                      shapes)
+    save(marker_figure(marker_views(msg), 'test frame'), tmp_path / 'markers.png')
+    (fig,) = saved
+    problems = check_figure(fig, 'marker figure')
+    assert not problems, '\n'.join(problems)
+    labels = [h.get_label() for h in fig.axes[0].get_legend().legend_handles]
+    assert 'monitored sphere (watchdog reduced)' in labels
+    assert any(label.startswith('protective separation distance S_p') for label in labels)
+    assert 'keep_in_box (box)' in labels and 'carry (line)' in labels

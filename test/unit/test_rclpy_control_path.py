@@ -17,7 +17,8 @@ import sys
 import threading
 import time
 import types
-from typing import Any, Callable
+from typing import Any
+from collections.abc import Callable
 
 import pytest
 

@@ -222,7 +222,7 @@ def test_a_world_without_sensors_or_fixtures_reads_only_noise(tmp_path: Path,
     assert set(world_signals(world)) == {'tool_force_x', 'tool_force_y', 'tool_force_z',
                                          'tool_torque_x', 'tool_torque_y', 'tool_torque_z'}
     with pytest.raises(SimError, match='no shaft'):
-        world.gear_state
+        _ = world.gear_state
     assert world.screw_state is None and world.panel_state is None
 
 
