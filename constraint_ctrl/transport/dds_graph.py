@@ -30,7 +30,7 @@ from cyclonedds.topic import Topic
 
 from constraint_ctrl.errors import TransportError
 from constraint_ctrl.transport.dds_discovery import DISCOVERY_TOPIC
-from constraint_ctrl.transport.dds_qos import reader_qos
+from constraint_ctrl.transport.dds_qos import reader_qos, type_hash_tag
 from constraint_ctrl.transport.qos import QosProfile
 from constraint_ctrl.transport.ros_args import ros_type_name
 
@@ -59,7 +59,7 @@ def _service_type(dds_type: str) -> str:
 class Graph:
     """Discovery state of one participant (see the module docstring)."""
 
-    def __init__(self, participant: Any, types: Any) -> None:
+    def __init__(self, participant: Any, types: Any, distro: str = 'jazzy') -> None:
         self._lock = threading.Lock()
         self._publications = BuiltinDataReader(participant, BuiltinTopicDcpsPublication)
         self._subscriptions = BuiltinDataReader(participant, BuiltinTopicDcpsSubscription)
@@ -69,7 +69,11 @@ class Graph:
                        for reader in (self._publications, self._subscriptions,
                                       self._participants)}
         topic = Topic(participant, DISCOVERY_TOPIC, types.ParticipantEntitiesInfo)
-        self._discovery = DataReader(participant, topic, reader_qos(_DISCOVERY_READER))
+        # tagged like every rmw_cyclonedds endpoint: a Jazzy peer logs a warning for each
+        # endpoint that arrives without USER_DATA (test_dds_endpoint_type_hash.py)
+        self._discovery = DataReader(participant, topic, reader_qos(
+            _DISCOVERY_READER, type_hash_tag('rmw_dds_common/msg/ParticipantEntitiesInfo',
+                                             distro)))
         self._records: dict[bytes, Any] = {}    # participant GUID -> its latest record
 
     def _endpoints(self, reader: BuiltinDataReader) -> list[Any]:

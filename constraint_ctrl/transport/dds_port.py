@@ -403,7 +403,7 @@ class DdsPort:
 
     def _graph_view(self) -> Graph:
         if self._graph is None:
-            self._graph = Graph(self._participant, self.types)
+            self._graph = Graph(self._participant, self.types, self.distro)
         return self._graph
 
     def get_topic_names_and_types(self) -> list[tuple[str, list[str]]]:

@@ -19,7 +19,7 @@ Checks (expected points from scipy.spatial.transform.Rotation, an outside refere
   the arm's base stops the arm (separation); moved away, the arm resumes;
 * /tf of the mount stopping for longer than people.transform_timeout is a fault of that source
   (a stop, one log line when it starts), /tf again clears it (one log line) and motion resumes;
-* the marker's z in base_link (transformed) is the skill's target, read back from ~/status.
+* the marker's z in base_link (transformed) is the skill's target, read back from ~/rows.
 Timing: only order and eventual outcomes are asserted (a busy machine delays, never reorders);
 the timeouts (joint states and persons 0.5-1 s, transform data 0.5 s) are far above the peer's
 periods (4 and 20 ms), because on a loaded 2-core machine its timer thread was seen to pause
@@ -143,6 +143,10 @@ class Cell:
                                       'default')
         self.port.create_subscription(t.DiagnosticArray, f'{NODE}/status', self._on_status,
                                       'default')
+        # the rows of the running skill, one status per row '<skill>: <row>' (issue 9.4)
+        self.port.create_subscription(t.DiagnosticArray, f'{NODE}/rows', self._on_rows,
+                                      'default')
+        self.rows: list[tuple[float, dict[str, str]]] = []
         self._n = 0
         self.port.create_timer(0.004, self._publish)
         threading.Thread(target=self.port.spin, daemon=True).start()
@@ -157,6 +161,16 @@ class Cell:
             values.update({kv.key: kv.value for kv in st.values})
         with self.lock:
             self.status.append((time.monotonic(), values))
+
+    def _on_rows(self, msg: Any) -> None:
+        values = {f'{st.name.partition(": ")[2]}.{kv.key}': kv.value
+                  for st in msg.status for kv in st.values}
+        with self.lock:
+            self.rows.append((time.monotonic(), values))
+
+    def rows_since(self, t0: float) -> list[dict[str, str]]:
+        with self.lock:
+            return [v for t, v in self.rows if t >= t0]
 
     def _point(self, frame: str, xyz: np.ndarray, ns: int) -> Any:
         t = self.t
@@ -310,14 +324,14 @@ def test_a_skill_naming_a_link_the_model_lacks_is_refused_with_file_and_line(
 
 
 def test_the_marker_input_is_read_in_base_link(cell: tuple[Cell, Controller]) -> None:
-    """tip_height's target is the marker's z in base_link: value - error on ~/status."""
+    """tip_height's target is the marker's z in base_link: value - error on ~/rows."""
     peer, _ = cell
     t0 = time.monotonic()
-    assert wait_until(lambda: any('tip_height.error' in v for v in peer.statuses_since(t0)),
+    assert wait_until(lambda: any('tip_height.error' in v for v in peer.rows_since(t0)),
                       20.0)
-    v = [v for v in peer.statuses_since(t0) if 'tip_height.error' in v][-1]
+    v = [v for v in peer.rows_since(t0) if 'tip_height.error' in v][-1]
     target = float(v['tip_height.value']) - float(v['tip_height.error'])
-    # ~/status prints 6 significant digits
+    # ~/rows prints 6 significant digits
     assert target == pytest.approx(MARKER_Z, abs=1e-5)
     assert abs(peer.marker[2] - MARKER_Z) > 0.1     # raw camera z would be another target
 
