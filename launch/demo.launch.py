@@ -2,7 +2,9 @@
 
 It starts the same three nodes as `constraint-ctrl demo` (cell_simulator, the controller through
 controller.launch.py, task_sequencer with the installed plans/gearbox_assembly.yaml) and stops
-all of them as soon as one exits, normally when the sequencer finishes the plan. Unlike
+all of them as soon as one exits, normally when the sequencer finishes the plan. The controller
+is a managed node: controller.launch.py configures and activates it with lifecycle events, and
+the sequencer starts once the controller's ~/transition_event says it is active. Unlike
 `constraint-ctrl demo` there is no evaluation step (no summary, criteria or plots) and no random
 ROS_DOMAIN_ID: the nodes use the caller's environment.
 
@@ -19,18 +21,15 @@ import os
 from ament_index_python.packages import get_package_share_directory
 from launch import LaunchDescription
 from launch.actions import (DeclareLaunchArgument, EmitEvent, IncludeLaunchDescription,
-                            LogInfo, RegisterEventHandler, TimerAction)
+                            LogInfo, RegisterEventHandler)
 from launch.event_handlers import OnProcessExit
 from launch.events import Shutdown
 from launch.launch_description_sources import PythonLaunchDescriptionSource
 from launch.substitutions import LaunchConfiguration
 from launch_ros.actions import Node
+from launch_ros.event_handlers import OnStateTransition
 
 PACKAGE = 'constraint_ctrl'
-
-#: The sequencer starts this long after the cell and the controller (s), as the demo command
-#: waits before it; the sequencer also waits up to 10 s for the controller's services itself.
-SEQUENCER_DELAY = 2.0
 
 
 def generate_launch_description() -> LaunchDescription:
@@ -46,8 +45,16 @@ def generate_launch_description() -> LaunchDescription:
     sequencer = Node(package=PACKAGE, executable='task_sequencer', name='task_sequencer',
                      arguments=[LaunchConfiguration('plan'), '--transport', transport],
                      output='screen')
+    # The controller (the demo's only managed node) became active: its skills can be
+    # activated now, so the plan can start.
+    start_plan = RegisterEventHandler(OnStateTransition(
+        goal_state='active', handle_once=True, entities=[
+            LogInfo(msg='demo: the controller is active; starting the task sequencer'),
+            sequencer]))
     # No target: whichever of the three processes exits first ends the demo.
-    stop_all = RegisterEventHandler(OnProcessExit(on_exit=[
+    # Only the first exit emits Shutdown: launch_ros' ROS adapter (running for the lifecycle
+    # events) shuts down on the first Shutdown event and raises on a second one.
+    stop_all = RegisterEventHandler(OnProcessExit(handle_once=True, on_exit=[
         LogInfo(msg='demo: a node exited (the plan ended or a node stopped); shutting down'),
         EmitEvent(event=Shutdown(reason='a demo node exited'))]))
     return LaunchDescription([
@@ -64,7 +71,7 @@ def generate_launch_description() -> LaunchDescription:
         DeclareLaunchArgument('record', default_value='',
                               description="new folder for a rosbag2 recording ('' = none)"),
         stop_all,
+        start_plan,
         simulator,
         controller,
-        TimerAction(period=SEQUENCER_DELAY, actions=[sequencer]),
     ])

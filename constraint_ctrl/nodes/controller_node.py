@@ -22,6 +22,15 @@ ControlLoop. Interface (names relative to the node, default node name constraint
 The node starts in the control loop's built-in hold (zero velocity, watchdog active; see
 runtime/loop.py) and returns to it on ~/hold or activate_skill = hold.
 
+A managed node (ROS 2 lifecycle, nodes/lifecycle.py; the standard services ~/change_state,
+~/get_state, ~/get_available_states, ~/get_available_transitions and ~/transition_event):
+unconfigured at start; configure reads the parameters, loads the robot model and the skills,
+declares the tunables and creates everything above; inactive, it ticks the watchdog but
+publishes only zero commands and ~/status; active, it controls (no skill runs until one is
+activated, or initial_skill once per configuration); deactivate holds, then inactive; cleanup
+releases all configure made; shutdown sends zero commands, then finalized. `run` configures
+and activates by itself unless --no-autostart.
+
 Joint states are judged per joint: a valid sample refreshes exactly the model joints it names,
 and every joint must be fresh for the watchdog to let the arm move; malformed samples are
 rejected whole, counted in ~/status and logged once (see _on_joint_states).
@@ -43,11 +52,14 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import os
 import sys
 import threading
 import time
 import traceback
+from dataclasses import dataclass, field
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
@@ -62,6 +74,7 @@ from ..safety.watchdog import PersonSample
 from ..solve.qp import QP_SOLVERS
 from ..transport.port import RECEIVE_THREADS
 from .common import config_dir, ros_arguments, serve, split_ros_args, transport_options
+from .lifecycle import serve_lifecycle
 from ..problem_log import ProblemLog
 from .inputs import MAX_JOINT_NAMES, TYPE_ATTRIBUTE, InputMapping, capture_time, check_field, \
     joint_sample_problem, parse_input_mappings
@@ -76,7 +89,7 @@ from .status import StatusWorker, build_rows, build_status
 
 NODE_NAME = 'constraint_controller'
 SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
-#: Parameters fixed at start-up (changing them needs a restart).
+#: Parameters read at configure: settable while the node is unconfigured, refused while configured.
 STARTUP_PARAMETERS = (*MODEL_PARAMETERS, 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
                       'people.sources', 'people.timeout', *FRAMES_PARAMETERS,
@@ -90,9 +103,20 @@ NODE_PARAMETER_GROUPS = tuple(sorted(
        'start_type_description_service'}))
 
 
+@dataclass
+class _Made:
+    """What configure created on the port, for cleanup to destroy."""
+
+    publishers: list[Any] = field(default_factory=list)
+    subscriptions: list[Any] = field(default_factory=list)
+    services: list[Any] = field(default_factory=list)
+
+
 class ControllerNode:
     def __init__(self, port: Any, record: Path | None = None,
                  realtime: RealtimeControl | None = None) -> None:
+        """A managed node in the unconfigured state: nothing loaded, nothing created but the
+        lifecycle services (see the lifecycle section below); configure() does the rest."""
         self.port = port
         self.realtime = realtime
         if realtime is not None:   # memory and the transport's receive threads now; the
@@ -100,15 +124,175 @@ class ControllerNode:
             port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
         self._lock = threading.Lock()
         self._tick_lock = threading.Lock()
+        # lifecycle: configured from configure() to cleanup(); active from activate() to
+        # deactivate(); ticks read both under the tick lock
+        self.configured = False
+        self.active = False
+        self._closing = False
+        self._made = _Made()
+        self.model: Any = None
+        self.watchdog: Any = None
+        self.library: Any = None
+        self.loop: Any = None
+        self.timer: Any = None
+        self._status: StatusWorker | None = None
+        self._markers: StatusWorker | None = None
+        self._node_parameters: set[str] = set()   # declared once, read at each configure
+        self._declaring: set[str] = set()      # parameters the node is (re)declaring now
+        self._user_set: set[str] = set()       # tunables set at launch or at run time
+        self._declared: dict[str, list[str]] = {}   # skill -> its declared tunables
+        self._switched_with: set[str] = set()  # applied with the last activate_skill switch
+        self._reload_values: dict[str, dict[str, float]] = {}
+        self._reload_notes: list[str] = []
+        self._param_problems = ProblemLog(port.log)
+        # statistics over the node's whole life (all configurations)
+        self._latency_ns = np.zeros(1 << 20, dtype=np.int64)
+        self._latency_count = 0
+        self._ticks = 0
+        self._errors = 0
+        self._switch_delays: list[float] = []
+        # the bag: opened by the first configure, closed with the node
+        self.recorder: Any = None
+        self._record_to = record
+        self._bag_topics: dict[str, tuple[str, str]] = {}  # name used -> (type, qos profile)
+        self._bag_added: set[str] = set()                   # names the recorder has
+        self._bag_names: dict[str, str] = {}               # publisher's topic -> name used
+        self._recorded_here: set[str] = set()  # recorded by a subscription of this config
+        self._record_errors = 0
+        port.set_parameter_validator(self._validate_parameters)
+        port.add_parameter_listener(self._apply_parameters)
+        self.lifecycle = serve_lifecycle(port, {
+            'configure': self.configure, 'activate': self.activate,
+            'deactivate': self.deactivate, 'cleanup': self.cleanup,
+            'shutdown': self.shutdown, 'error': self.on_error})
+        port.log('info', f'{NODE_NAME} unconfigured (a managed node: configure, then activate)')
+
+    # ------------------------------------------------------------ lifecycle
+    # Transitions run one at a time on the port's service thread (or from run() for
+    # --autostart and close()); ticks run on the timer thread. Each step returns None or the
+    # reason it failed (the transition fails and the state stays); an exception is a
+    # transition error, whose step (on_error) releases everything: back to unconfigured.
+    def configure(self) -> str | None:
+        """Read the parameters, load the robot model and skills, declare the tunables,
+        create subscriptions, publishers, services and the timer. Inactive afterwards: ticks
+        publish zero commands and status only. A problem the user can fix (a bad URDF, no
+        skills folder, a bad parameter) fails the transition with its reason."""
+        try:
+            self._configure()
+        except (ConstraintCtrlError, OSError) as exc:
+            self._release()
+            return str(exc)
+        except BaseException:
+            self._release()
+            raise
+        return None
+
+    def activate(self) -> str | None:
+        """Control ticks from the next tick on; no skill runs until one is activated (or
+        initial_skill, once per configuration, when joint states arrive)."""
+        with self._tick_lock:
+            self.active = True
+        self.port.log('info', f'{NODE_NAME} ready (active): {len(self.library.names())} '
+                      f'skills, {self.rate:g} Hz, tick on {self.tick_on}, transport '
+                      f'{type(self.port).__name__}')
+        return None
+
+    def deactivate(self) -> str | None:
+        """Hold (the running skill stops at a tick boundary), then inactive: zero commands."""
+        if not self.loop.holding:    # the hold's tick still publishes (its 'holding' event)
+            ok, message = self.loop.request_hold(self._switch_timeout)
+            if not ok:
+                self.port.log('warn', f'deactivate: {message}; going inactive anyway')
+        with self._tick_lock:
+            self._hold()
+            self.active = False
+            self._send_zero()
+        self.port.log('info', 'inactive: zero commands and status only')
+        return None
+
+    def cleanup(self) -> str | None:
+        """Back to unconfigured: release all that configure made."""
+        self._release()
+        self.port.log('info', 'unconfigured: model, skills, topics and services released')
+        return None
+
+    def shutdown(self) -> str | None:
+        """From any primary state: zero command (when configured), release, finalized."""
+        if self.configured:
+            with self._tick_lock:
+                self._hold()
+                self.active = False
+                for _ in range(3):
+                    self._send_zero()
+            self.port.log('info', 'shutting down: zero command sent')
+        # the publishers stay: the port flushes what they wrote when it closes
+        self._release(keep_publishers=True)
+        return None
+
+    def on_error(self) -> str | None:
+        """After a step raised: zero command where possible, release, back to unconfigured."""
+        if self.configured:
+            with self._tick_lock:
+                self.active = False
+                try:
+                    self._send_zero()
+                except Exception:  # noqa: BLE001 - releasing matters more now
+                    pass
+        self._release()
+        return None
+
+    def _hold(self) -> None:
+        """Queue the loop's built-in hold for the next tick without waiting (safe with the
+        tick lock held): zero velocity, watchdog still running."""
+        if self.loop is not None and not self.loop.holding:
+            self.loop.request_hold()
+
+    @staticmethod
+    def _read_at_configure(name: str) -> bool:
+        """A node parameter that configure reads: settable while unconfigured only."""
+        return name in STARTUP_PARAMETERS or (name.startswith('watchdog.')
+                                              and name != 'watchdog.reduced_mode')
+
+    def _param(self, name: str, default: Any, description: str,
+               read_only: bool = True) -> Any:
+        """Declare a node parameter at the first configure; later configures read the value
+        in force. Those read at configure stay settable, but the validator accepts a new value
+        only while unconfigured (after a failed configure or a cleanup); the rest are
+        read-only (inputs.*)."""
+        if name in self._node_parameters:
+            return self.port.get_parameter(name).value
+        if self._read_at_configure(name):
+            read_only = False
+            description += ' (read at configure; set it while unconfigured)'
+        self._declaring.add(name)
+        try:
+            value = self.port.declare_parameter(name, default, description,
+                                                read_only=read_only).value
+        finally:
+            self._declaring.discard(name)
+        self._node_parameters.add(name)
+        return value
+
+    def _declare_view(self, name: str, value: Any, description: str = '',
+                      read_only: bool = True) -> Any:
+        """_param as port.declare_parameter answers (an object with .value), for the helpers
+        that declare node parameters (robot_source, points_in_base, outputs)."""
+        return SimpleNamespace(name=name, value=self._param(name, value, description,
+                                                            read_only))
+
+    def _configure(self) -> None:
+        port = self.port
         cfg = config_dir()
-        declare = port.declare_parameter
-        self.model_source = declare_model_source(declare, cfg / 'robots' / 'six_axis_arm.urdf')
+        declare = self._param
+        self.model_source = declare_model_source(self._declare_view,
+                                                 cfg / 'robots' / 'six_axis_arm.urdf')
         self._load_model()
-        self._description_watch = watch_robot_description(port, self.model_source,
-                                                           self.loaded_model)
+        watch = watch_robot_description(port, self.model_source, self.loaded_model)
+        if watch is not None:
+            self._made.subscriptions.append(watch)
         robot = self.loaded_model.origin
         names = list(declare('joint_names', list(self.model.joint_names),
-                             'joint order of ~/command', read_only=True).value)
+                             'joint order of ~/command'))
         if sorted(names) != sorted(self.model.joint_names):
             msg = (f'parameter joint_names {names} must list exactly the movable joints of '
                    f'{robot}: {list(self.model.joint_names)}')
@@ -116,34 +300,35 @@ class ControllerNode:
         self.joint_names = names
         self._to_command = np.array([self.model.joint_names.index(j) for j in names])
         self._joint_index = {j: i for i, j in enumerate(self.model.joint_names)}
-        self.rate = float(declare('rate_hz', 500.0, 'control rate (Hz)', read_only=True).value)
+        self.rate = float(declare('rate_hz', 500.0, 'control rate (Hz)'))
         self.dt = 1.0 / self.rate
-        status_rate = float(declare('status_rate_hz', 10.0, '~/status rate (Hz)',
-                                    read_only=True).value)
+        status_rate = float(declare('status_rate_hz', 10.0, '~/status rate (Hz)'))
         self._status_every = max(1, round(self.rate / status_rate))
         self.tick_on = str(declare('tick_on', 'timer', 'timer, or joint_states (tick on each '
-                                   'sample, timer as fallback)', read_only=True).value)
+                                   'sample, timer as fallback)'))
         if self.tick_on not in ('timer', 'joint_states'):
             msg = f"parameter tick_on must be 'timer' or 'joint_states', got {self.tick_on!r}"
             raise ConstraintCtrlError(msg)
         self.base_frame = str(declare('base_frame', self.model.base_link, 'tf frame of the '
                                       "model's base link (default its root link): person "
-                                      'positions are put into it', read_only=True).value)
+                                      'positions are put into it'))
         sources = [str(s) for s in declare('people.sources', [''],
-                                           'PointStamped topics of person positions',
-                                           read_only=True).value if s]
-        person_timeout = float(declare('people.timeout', 0.2, 's', read_only=True).value)
+                                           'PointStamped topics of person positions') if s]
+        person_timeout = float(declare('people.timeout', 0.2, 's'))
         settings = {}
         for key, default in WATCHDOG_DEFAULTS.items():
             settings[key] = declare(f'watchdog.{key}', default, f'watchdog {key}',
-                                    read_only=key != 'reduced_mode').value
+                                    read_only=key != 'reduced_mode')
         self.watchdog = build_watchdog(self.model, self.dt, settings,
                                        {s: person_timeout for s in sources})
         folder = Path(str(declare('skills_folder', str(cfg / 'skills'),
-                                  'folder of skill files', read_only=True).value))
-        # qp_solver: the QP solver of every skill (solve/qp.py), fixed at start-up
+                                  'folder of skill files')))
+        if not folder.is_dir():
+            msg = f'skills folder {folder} does not exist (parameter skills_folder)'
+            raise ConstraintCtrlError(msg)
+        # qp_solver: the QP solver of every skill (solve/qp.py), read at configure
         qp_solver = str(declare('qp_solver', QP_SOLVERS[0], 'QP solver of every skill: '
-                                + ', '.join(QP_SOLVERS), read_only=True).value)
+                                + ', '.join(QP_SOLVERS)))
         if qp_solver not in QP_SOLVERS:
             msg = f'parameter qp_solver must be one of {", ".join(QP_SOLVERS)}, got {qp_solver!r}'
             raise ConstraintCtrlError(msg)
@@ -156,24 +341,17 @@ class ControllerNode:
         # how long a switch request waits for its first tick (below the 5 s our sequencer
         # allows for the reply); one not taken by then is withdrawn
         self._switch_timeout = max(3.0, 20 * self.dt)
-        self._initial = str(declare('initial_skill', '', 'skill to activate at start',
-                                    read_only=True).value)
+        self._initial = str(declare('initial_skill', '', 'skill to activate at start'))
         declare('activate_skill', '', 'write-only (reads back empty): setting it activates that '
                 'skill, together with its tunables set in the same (atomic) call, or the '
                 f'built-in hold ({HOLD}); the reply comes after the first tick of the new skill, '
-                'with its outcome')
+                'with its outcome', read_only=False)
         inputs = port.get_parameters_by_prefix('inputs')
         self.mappings = parse_input_mappings({k: v.value for k, v in inputs.items()})
-        for key, param in inputs.items():   # mapped at start-up only: read-only from now on
-            declare(f'inputs.{key}', param.value, 'skill input mapping (read at start-up)',
-                    read_only=True)
-        self._declaring: set[str] = set()      # parameters the node is (re)declaring now
-        self._user_set: set[str] = set()       # tunables set at launch or at run time
-        self._declared: dict[str, list[str]] = {}   # skill -> its declared tunables
-        self._switched_with: set[str] = set()  # applied with the last activate_skill switch
-        self._reload_values: dict[str, dict[str, float]] = {}
-        self._reload_notes: list[str] = []
-        self._param_problems = ProblemLog(port.log)
+        for key, param in inputs.items():   # mapped at configure only: read-only from now on
+            declare(f'inputs.{key}', param.value, 'skill input mapping (read at configure)')
+        self._user_set = set()
+        self._declared = {}
 
         # latest samples (guarded by self._lock)
         n = self.model.n_joints
@@ -190,27 +368,19 @@ class ControllerNode:
         self._inputs: dict[str, InputSample] = {}
         self._people: dict[str, PersonSample] = {}
         self._last_tick = 0.0
-        self._closing = False
         # arrival of a joint_states sample -> its command published (tick_on joint_states)
         self._arrived_ns = 0
         self._answered_arrival = 0   # arrival of the sample the current tick answers
         self._command_msgs: tuple[Any, Any] | None = None   # built on first use, then reused
-        self._latency_ns = np.zeros(1 << 20, dtype=np.int64)
-        self._latency_count = 0
-        self._ticks = 0
-        self._errors = 0
 
         t = port.types
-        self.recorder: Any = None      # opened at the end of __init__ (see _open_recorder)
-        self._record_to = record
-        self._bag_topics: dict[str, tuple[str, str]] = {}  # name used -> (type, qos profile)
-        self._bag_names: dict[str, str] = {}               # publisher's topic -> name used
-        self._record_errors = 0
+        self._recorded_here = set()
         self._setup_outputs(settings, status_rate)
         self._pub_events = self._publisher(t.String, '~/events', 'default')
         self._pub_status = self._publisher(t.DiagnosticArray, '~/status', 'default')
         # frames hook: /tf and /tf_static (DDS) or tf2_ros (rclpy); persons and point inputs
-        self.points = open_points_in_base(port, declare, self.base_frame, self._subscribe)
+        self.points = open_points_in_base(port, self._declare_view, self.base_frame,
+                                          self._subscribe)
         self._person_problems = self.points.person_faults
         self._subscribe(t.JointState, 'joint_states', self._on_joint_states)
         for mapping in self.mappings.values():
@@ -220,27 +390,57 @@ class ControllerNode:
         for source in sources:
             self._subscribe(t.PointStamped, source, self._person_callback(source))
         self._services: dict[str, object] = {}
-        port.create_service(t.Trigger, '~/reload_skills',
-                            self._guarded('~/reload_skills', self._on_reload))
-        port.create_service(t.Trigger, '~/hold', self._guarded('~/hold', self._on_hold))
+        self._made.services.append(port.create_service(
+            t.Trigger, '~/reload_skills', self._guarded('~/reload_skills', self._on_reload)))
+        self._made.services.append(port.create_service(
+            t.Trigger, '~/hold', self._guarded('~/hold', self._on_hold)))
         for name in self.library.names():
             self._add_skill(name)
-        port.set_parameter_validator(self._validate_parameters)
-        port.add_parameter_listener(self._apply_parameters)
         # with --realtime the status thread runs one step below the tick: a normal-priority
         # thread that holds the interpreter lock when the machine preempts it would hold up
         # the tick behind it
         self._status = StatusWorker(
             self._publish_status, port.log, name=f'{NODE_NAME}-status',
-            on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
+            on_start=None if self.realtime is None else lambda: self._enter_realtime(below=1))
         self._markers = StatusWorker(
             self._publish_markers, port.log, name=f'{NODE_NAME}-markers', what='~/markers',
-            on_start=None if realtime is None else lambda: self._enter_realtime(below=1))
+            on_start=None if self.realtime is None else lambda: self._enter_realtime(below=1))
+        self._add_bag_topics()
+        with self._tick_lock:
+            self.configured = True
         self.timer = port.create_timer(self.dt, self._on_timer, control=True)
-        self._open_recorder()
-        port.log('info', f'{NODE_NAME} ready: {len(self.library.names())} skills, '
-                 f'{self.rate:g} Hz, tick on {self.tick_on}, transport '
-                 f'{type(port).__name__}')
+        port.log('info', f'{NODE_NAME} configured (inactive: zero commands and status)')
+
+    def _release(self, keep_publishers: bool = False) -> None:
+        """Undo configure (also a partial one): stop ticking, destroy what it created,
+        undeclare the tunables. Node parameters stay declared (read again at configure)."""
+        with self._tick_lock:
+            self.configured = False
+            self.active = False
+            timer, self.timer = self.timer, None
+        port = self.port
+        if timer is not None:
+            port.destroy_timer(timer)
+        for worker in (self._status, self._markers):
+            if worker is not None:
+                worker.close()
+        self._status = self._markers = None
+        if self.loop is not None:
+            self._switch_delays.extend(self.loop.switch_delays)
+        made, self._made = self._made, _Made()
+        for sub in made.subscriptions:
+            port.destroy_subscription(sub)
+        for pub in [] if keep_publishers else made.publishers:
+            port.destroy_publisher(pub)
+        for handle in [*made.services, *getattr(self, '_services', {}).values()]:
+            port.destroy_service(handle)
+        self._services = {}
+        for skill, params in self._declared.items():
+            for param in params:
+                self._undeclare(f'{skill}.{param}')
+        self._declared = {}
+        self._user_set = set()
+        self.loop = self.library = self.watchdog = self.model = None
 
     def _load_model(self, receive: Any = None) -> None:
         """The robot model from robot_description_file or the robot_description topic (see
@@ -251,8 +451,8 @@ class ControllerNode:
     # ------------------------------------------------------------ outputs (issue 9.4)
     def _setup_outputs(self, settings: dict[str, Any], status_rate: float) -> None:
         """Command interfaces, ~/rows, /diagnostics and ~/markers (nodes/outputs.py,
-        status.py, markers.py); all read at start-up."""
-        declare, t = self.port.declare_parameter, self.port.types
+        status.py, markers.py); all read at configure."""
+        declare, t = self._declare_view, self.port.types
         self.command_interfaces = parse_command_interfaces(declare(
             'command_interfaces', DEFAULT_COMMAND_INTERFACES, 'velocity (~/command) and/or '
             'position (~/position_command)', read_only=True).value)
@@ -315,9 +515,10 @@ class ControllerNode:
     # DDS port mirrors). Two entities on one topic record it once.
     def _publisher(self, msg_type: Any, topic: str, qos: str) -> Any:
         pub = self.port.create_publisher(msg_type, topic, qos)
+        self._made.publishers.append(pub)
         name = str(pub.topic_name)
         self._bag_names[topic] = name
-        self._bag_topics.setdefault(name, (self.port.type_name(msg_type), qos))
+        self._bag_add(name, self.port.type_name(msg_type), qos)
         return pub
 
     def _subscribe(self, msg_type: Any, topic: str, callback: Any, qos: str = 'latest') -> Any:
@@ -325,8 +526,10 @@ class ControllerNode:
         # feed state the callbacks read, off the control path
         control = qos == 'latest'
         if self._record_to is None:
-            return self.port.create_subscription(msg_type, topic, callback, qos,
-                                                 control=control)
+            sub = self.port.create_subscription(msg_type, topic, callback, qos,
+                                                control=control)
+            self._made.subscriptions.append(sub)
+            return sub
         records_to: list[str] = []      # the bag topic, unless another subscription has it
 
         def recorded(msg: Any) -> None:
@@ -334,25 +537,42 @@ class ControllerNode:
                 self._record(records_to[0], msg)
             callback(msg)
         sub = self.port.create_subscription(msg_type, topic, recorded, qos, control=control)
+        self._made.subscriptions.append(sub)
         name = str(sub.topic_name)
-        if name not in self._bag_topics:
-            self._bag_topics[name] = (self.port.type_name(msg_type),
-                                      'sensor' if control else qos)
+        if name not in self._recorded_here:
+            self._recorded_here.add(name)
+            self._bag_add(name, self.port.type_name(msg_type), 'sensor' if control else qos)
             records_to.append(name)
         return sub
 
     def _open_recorder(self) -> None:
-        """Last step of start-up, so a node that fails to start leaves no bag folder behind."""
-        if self._record_to is None:
+        """At the end of the first configure, so the bag folder appears once the node is
+        configured (`constraint-ctrl demo` starts its sequencer then) and a node that never
+        configures leaves none behind; `run` checks the folder at start (record_folder_problem)."""
+        if self._record_to is None or self.recorder is not None:
             return
         from ..transport.bag import BagRecorder
         recorder = BagRecorder(self._record_to, distro=self.port.distro,
                                on_failure=lambda text: self.port.log('error', text))
         for name, (ros_type, qos) in self._bag_topics.items():
             recorder.add_topic(name, ros_type, qos)
+            self._bag_added.add(name)
         self.recorder = recorder
-        self.port.log('info', f'recording {len(self._bag_topics)} topics to {self._record_to} '
-                      f'(rosbag2 for ROS 2 {self.port.distro})')
+
+    def _bag_add(self, name: str, ros_type: str, qos: str) -> None:
+        """A topic of this configuration into the bag (once over all configurations), before
+        its first message can come."""
+        self._bag_topics.setdefault(name, (ros_type, qos))
+        if self.recorder is not None and name not in self._bag_added:
+            self.recorder.add_topic(name, ros_type, qos)
+            self._bag_added.add(name)
+
+    def _add_bag_topics(self) -> None:
+        """Last step of configure: open the bag (first time) and say what is recorded."""
+        self._open_recorder()
+        if self.recorder is not None:
+            self.port.log('info', f'recording {len(self._bag_added)} topics to '
+                          f'{self._record_to} (rosbag2 for ROS 2 {self.port.distro})')
 
     def _record(self, name: str, msg: Any) -> None:
         """Never lets recording disturb control: a failure here is counted and logged once."""
@@ -505,17 +725,23 @@ class ControllerNode:
         if self._closing or not self._tick_lock.acquire(blocking=wait):
             return
         try:
-            if self._closing:            # close() held the lock meanwhile
+            if self._closing or not self.configured:   # released meanwhile
                 return
             snap = self._snapshot()
             if self._position is not None:
                 self._position.take(snap)
             self._last_tick = snap.now
-            if self._initial and snap.q is not None:
+            if self.active and self._initial and snap.q is not None:
                 self.loop.request_activation(self._initial)
                 self._initial = ''
+            # inactive: no skill runs (hold), the watchdog still judges the inputs for the
+            # status, and what goes out is a zero command
             out = self.loop.step(snap)
-            self._send(out)
+            if self.active:
+                self._send(out)
+            else:
+                self._send_zero()
+                self._hold()       # a switch queued just before deactivate does not stay
             if self._answered_arrival:
                 self._latency_ns[self._latency_count % self._latency_ns.size] = \
                     time.perf_counter_ns() - self._answered_arrival
@@ -715,8 +941,12 @@ class ControllerNode:
         return response
 
     def _cannot_activate(self, name: str) -> str | None:
-        if name == HOLD:
+        if name == HOLD and self.configured:
             return None                  # the built-in hold is always available
+        if not self.active:
+            return (f'the controller is not active (lifecycle state: '
+                    f'{"inactive" if self.configured else "unconfigured"}); activate it '
+                    'first (ros2 lifecycle set <node> activate)')
         loaded = self.library.get(name)
         if loaded is None:
             return f'skill {name!r} is not loaded (loaded: {", ".join(self.library.names())})'
@@ -808,13 +1038,14 @@ class ControllerNode:
     def _tunable(self, name: str) -> tuple[str, Any, str] | None:
         """(skill, its LoadedSkill, tunable) for a parameter '<skill>.<tunable>', else None."""
         skill, _, rest = name.partition('.')
-        loaded = self.library.get(skill) if rest else None
+        library = self.library
+        loaded = library.get(skill) if rest and library is not None else None
         return (skill, loaded, rest) if loaded is not None else None
 
     def _not_settable(self, name: str) -> str:
         """Why a parameter that is not a run-time parameter of this node cannot be set."""
         if name in STARTUP_PARAMETERS or name.startswith('watchdog.'):
-            return f'{name} is read at start-up only; restart the node to change it'
+            return f'{name} is read at configure; set it while the node is unconfigured'
         if name.startswith('inputs.'):
             return (f'{name}: input topics are mapped at start-up only; restart the node to '
                     'change them')
@@ -845,6 +1076,12 @@ class ControllerNode:
                 if not isinstance(value, bool):
                     return False, f'{name} must be true or false, got {value!r}'
                 continue
+            if self._read_at_configure(name) and name in self._node_parameters:
+                if self.configured:
+                    return False, (f'{name} is read at configure: clean the node up first '
+                                   '(ros2 lifecycle set <node> cleanup), set it, then '
+                                   'configure again')
+                continue                  # read by the next configure
             found = self._tunable(name)
             if found is None:
                 return False, self._not_settable(name)
@@ -878,7 +1115,8 @@ class ControllerNode:
             if name in self._declaring or name == 'activate_skill':
                 continue
             if name == 'watchdog.reduced_mode':
-                self.watchdog.set_reduced_mode(bool(value))
+                if self.watchdog is not None:    # else read at the next configure
+                    self.watchdog.set_reduced_mode(bool(value))
                 continue
             found = self._tunable(name)
             if found is None:
@@ -888,8 +1126,10 @@ class ControllerNode:
                 continue                  # already applied with the switch, in its tick
             skill, _, param = found
             per_skill.setdefault(skill, {})[param] = float(value)
+        loop = self.loop
         for skill, changes in per_skill.items():
-            self.loop.set_parameters(skill, changes)
+            if loop is not None:
+                loop.set_parameters(skill, changes)
         if 'activate_skill' in switched and values.get('activate_skill'):
             # write-only: once the switch is done, reading it gives '' again
             ok, reason = self.port.set_parameter('activate_skill', '')
@@ -901,7 +1141,8 @@ class ControllerNode:
         (tick_on joint_states only), switch delays in ticks, ticks, missed timer periods."""
         n = min(self._latency_count, self._latency_ns.size)
         lat = self._latency_ns[:n] / 1000.0
-        delays = np.array(self.loop.switch_delays) / self.dt
+        current = self.loop.switch_delays if self.loop is not None else []
+        delays = np.array([*self._switch_delays, *current]) / getattr(self, 'dt', 1.0)
         pct = (lambda a, q: round(float(np.percentile(a, q)), 2)) if n else None
         return {
             'ticks': self._ticks, 'tick_errors': self._errors,
@@ -917,21 +1158,34 @@ class ControllerNode:
 
     # ------------------------------------------------------------ shutdown
     def close(self) -> None:
-        """After spin() returned (callbacks no longer run on either transport): zero, close."""
+        """After spin() returned (callbacks no longer run on either transport): the shutdown
+        transition (zero commands, transition events) unless finalized already; the bag."""
         self._closing = True
-        self._status.close()
-        self._markers.close()
-        with self._tick_lock:
-            for _ in range(3):
-                self._send_zero()
+        if self.configured:
+            self.lifecycle.trigger('shutdown')
         recorder = self.recorder
-        self.port.log('info', 'shutting down: zero command sent'
-                      + (', closing the bag' if recorder is not None else ''))
         if recorder is not None:
+            self.port.log('info', 'closing the bag')
             recorder.close()      # never raises: a failure is logged through on_failure
             if recorder.state == 'closed':
                 self.port.log('info', f'bag {recorder.path} closed: {recorder.written} '
                               f'messages, {recorder.dropped + self._record_errors} dropped')
+
+
+def record_folder_problem(path: Path) -> str | None:
+    """Why --record PATH cannot become a new bag folder, checked at start (the bag itself is
+    created by the first configure): it exists, or its nearest existing parent is not a
+    writable folder."""
+    if path.exists():
+        return f'--record {path}: it exists already; give a new folder for the bag'
+    parent = path.absolute().parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir():
+        return f'--record {path}: cannot create the bag folder there ({parent} is not a folder)'
+    if not os.access(parent, os.W_OK | os.X_OK):
+        return f'--record {path}: cannot create the bag folder there ({parent} is not writable)'
+    return None
 
 
 def build_arg_parser() -> argparse.ArgumentParser:
@@ -940,6 +1194,10 @@ def build_arg_parser() -> argparse.ArgumentParser:
     transport_options(parser)
     parser.add_argument('--record', type=Path, help='write a rosbag2 (MCAP) to this new folder')
     parser.add_argument('--stats', type=Path, help='write timing statistics (JSON) at exit')
+    parser.add_argument('--autostart', action=argparse.BooleanOptionalAction, default=True,
+                        help='configure and activate the node at start (default); with '
+                             '--no-autostart it waits unconfigured for a lifecycle manager '
+                             '(ros2 lifecycle set, a launch file\'s lifecycle events)')
     parser.add_argument('--realtime', type=int, metavar='PRIORITY',
                         help='run the control path (the threads that receive joint_states and '
                              'tick, and the transport receive threads) SCHED_FIFO at this '
@@ -974,9 +1232,21 @@ def run(argv: list[str]) -> int:
     if args.realtime is not None and check_priority(args.realtime):
         parser.error(check_priority(args.realtime))
     realtime = RealtimeControl(args.realtime) if args.realtime is not None else None
+    problem = record_folder_problem(args.record) if args.record is not None else None
+    if problem:
+        raise ConstraintCtrlError(problem)
     from ..transport.port import open_port
-    port = open_port(args.transport, NODE_NAME, ros, distro=args.distro)
-    node = serve(port, lambda: ControllerNode(port, record=args.record, realtime=realtime))
+    port = open_port(args.transport, NODE_NAME, ros, distro=args.distro, lifecycle=True)
+
+    def build() -> ControllerNode:
+        node = ControllerNode(port, record=args.record, realtime=realtime)
+        if args.autostart:
+            # a failed step leaves the node unconfigured (or inactive), serving the lifecycle
+            # services, with the reason in the log: fix it and configure by hand
+            if node.lifecycle.trigger('configure'):
+                node.lifecycle.trigger('activate')
+        return node
+    node = serve(port, build)
     if node is not None and args.stats:
         args.stats.write_text(json.dumps(node.stats(), indent=2) + '\n')
     return 0

@@ -80,6 +80,7 @@ _PARAMETER_SERVICES = (
     ('set_parameters_atomically', 'SetParametersAtomically', 'on_set_parameters_atomically'),
 )
 _ACK_WAIT_S = 0.5
+_DESTROY_ACK_WAIT_S = 0.2
 
 
 def delete_entity(entity: Any) -> None:
@@ -144,6 +145,7 @@ class DdsPort:
             msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTROS)}'
             raise TransportError(msg)
         self.distro = distro
+        self.native_lifecycle = False   # nodes/lifecycle.py serves the lifecycle services
         self.types = types_for(distro)
         args = parse_ros_args(list(argv))
         self.node_name, self.namespace = node_identity(args, validate_node_name(node_name))
@@ -324,6 +326,26 @@ class DdsPort:
         delete_entity(handle.reader)
         delete_entity(handle.writer)
 
+    def destroy_publisher(self, publisher: DdsPublisher) -> None:
+        if not isinstance(publisher, DdsPublisher) or publisher.writer not in self._writers:
+            msg = f'destroy_publisher: {publisher!r} is not a publisher of this port'
+            raise TransportError(msg)
+        self._writers.remove(publisher.writer)
+        try:   # readers get what it wrote last (a final zero command) before it goes
+            wait_for_acks(publisher.writer, _DESTROY_ACK_WAIT_S)
+        except DDSException:
+            pass
+        self._announcer.update(removed=(publisher.writer,))
+        delete_entity(publisher.writer)
+
+    def destroy_subscription(self, subscription: DdsSubscription) -> None:
+        if not isinstance(subscription, DdsSubscription):
+            msg = f'destroy_subscription: {subscription!r} is not a subscription of this port'
+            raise TransportError(msg)
+        self._topic_dispatch.remove(subscription.reader)
+        self._announcer.update(removed=(subscription.reader,))
+        delete_entity(subscription.reader)
+
     def create_client(self, srv_type: Any, name: str) -> ServiceClient:
         fqn = resolve_name(name, self.node_name, self.namespace, self._remaps)
         client = ServiceClient(self._participant, srv_type, fqn, PROFILES['services'])
@@ -342,6 +364,13 @@ class DdsPort:
         if self._spinning:
             timer.start()
         return timer
+
+    def destroy_timer(self, timer: FixedRateTimer) -> None:
+        if timer not in self._timers:
+            msg = f'destroy_timer: {timer!r} is not a timer of this port'
+            raise TransportError(msg)
+        timer.cancel()
+        self._timers.remove(timer)
 
     # --- parameters ------------------------------------------------------------------------
 

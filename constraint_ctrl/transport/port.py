@@ -120,6 +120,15 @@ class Port(Protocol):
 
     def destroy_service(self, handle: object) -> None: ...
 
+    def destroy_publisher(self, publisher: Publisher) -> None:
+        """rclpy Node.destroy_publisher: peers see the publisher go."""
+
+    def destroy_subscription(self, subscription: Subscription) -> None:
+        """rclpy Node.destroy_subscription: its callback is not called any more."""
+
+    def destroy_timer(self, timer: Timer) -> None:
+        """rclpy Node.destroy_timer: waits for a running call unless called from it."""
+
     def create_client(self, srv_type: Any, name: str) -> Client: ...
 
     def create_timer(self, period_s: float, callback: Callable[[], None], *,
@@ -183,6 +192,12 @@ class Port(Protocol):
     def faults(self) -> dict[str, SourceFaults]:
         """Dropped samples and callback exceptions per source ('subscription /joint_states',
         'service /ctrl/get_parameters', 'timer 0', ...) since the node started."""
+
+    #: True when the port's node is a managed node of the middleware itself (rclpy: an
+    #: rclpy.lifecycle.LifecycleNode, opened with open_port(..., lifecycle=True)); then
+    #: serve_lifecycle maps the steps onto it. Otherwise nodes/lifecycle.py serves the
+    #: lifecycle services over the port's own services and publishers.
+    native_lifecycle: bool
 
     def spin(self) -> None:
         """Run callbacks until shutdown() or SIGINT/SIGTERM; publishing still works after."""
@@ -250,9 +265,10 @@ def choose_distro(transport: str, requested: str = 'auto') -> str:
 
 
 def open_port(transport: str, node_name: str, argv: list[str], *,
-              distro: str = 'auto') -> Port:
+              distro: str = 'auto', lifecycle: bool = False) -> Port:
     """Create the node's port. 'auto' picks rclpy when it can be imported, else DDS; the
-    distro follows choose_distro."""
+    distro follows choose_distro. ``lifecycle``: the node is a managed node (on rclpy an
+    rclpy.lifecycle.LifecycleNode; see Port.native_lifecycle)."""
     if distro not in DISTRO_CHOICES:
         msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTRO_CHOICES)}'
         raise TransportError(msg)
@@ -275,7 +291,7 @@ def open_port(transport: str, node_name: str, argv: list[str], *,
             raise TransportError(msg)
         chosen, evidence = _choose('rclpy', distro)
         from constraint_ctrl.transport.rclpy_port import RclpyPort
-        port = RclpyPort(node_name, argv, distro=chosen)
+        port = RclpyPort(node_name, argv, distro=chosen, lifecycle=lifecycle)
         port.log('info', f'ROS 2 message layouts and bag format: {chosen} ({evidence})')
         return port
     if not _available('cyclonedds'):

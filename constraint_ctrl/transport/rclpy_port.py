@@ -6,7 +6,14 @@ project's CI (no ROS install); every call below is one rclpy documents:
 * rclpy.init(args=argv, signal_handler_options=SignalHandlerOptions.NO) - rclpy parses
   --ros-args itself; its own SIGINT handler is off so that spin() can return while the context
   is still valid and the node can publish a final command;
-* Node(name, automatically_declare_parameters_from_overrides=True);
+* Node(name, automatically_declare_parameters_from_overrides=True), or for a managed node
+  (open_port(..., lifecycle=True)) rclpy.lifecycle.LifecycleNode with the same arguments,
+  whose on_configure/on_activate/on_deactivate/on_cleanup/on_shutdown/on_error run the steps
+  given to serve_lifecycle (a step's reason -> TransitionCallbackReturn.FAILURE, an exception
+  -> ERROR, as rclpy itself turns one into ERROR; both logged here, since rclpy logs
+  neither); rcl_lifecycle serves ~/change_state, ~/get_state, ~/get_available_states,
+  ~/get_available_transitions, ~/get_transition_graph and publishes ~/transition_event, and
+  the node's own requests (autostart) are LifecycleNode.trigger_configure() and its siblings;
 * the control path (entities created with control=True: the controller's joint_states,
   input and person subscriptions and its control timer) lives on a second, hidden node of the
   same context, `_<name>_control` (a leading underscore hides a node from `ros2 node list`;
@@ -183,10 +190,83 @@ class RclpyClient:
         return future.result()
 
 
+_STEPS = ('configure', 'cleanup', 'shutdown', 'activate', 'deactivate', 'error')
+
+
+def _managed_node(node_name: str, log: Callable[[str, str], None]) -> Any:
+    """An rclpy.lifecycle.LifecycleNode whose transition callbacks run the node's steps."""
+    from rclpy.lifecycle import LifecycleNode, TransitionCallbackReturn
+
+    class ManagedNode(LifecycleNode):
+        def __init__(self) -> None:
+            self.lifecycle_steps: dict[str, Callable[[], str | None]] = {}
+            super().__init__(node_name, automatically_declare_parameters_from_overrides=True)
+
+        def _step(self, name: str) -> Any:
+            step = self.lifecycle_steps.get(name)
+            if step is None:
+                return TransitionCallbackReturn.SUCCESS
+            try:
+                reason = step()
+            except Exception:
+                import traceback
+                log('error', f'lifecycle: {name} raised (transition error):\n'
+                    + traceback.format_exc().rstrip())
+                raise            # rclpy turns it into TransitionCallbackReturn.ERROR
+            if reason is None:
+                return TransitionCallbackReturn.SUCCESS
+            log('warn', f'lifecycle: {name} failed: {reason}')
+            return TransitionCallbackReturn.FAILURE
+
+        def on_configure(self, state: Any) -> Any:
+            return self._step('configure')
+
+        def on_cleanup(self, state: Any) -> Any:
+            return self._step('cleanup')
+
+        def on_shutdown(self, state: Any) -> Any:
+            return self._step('shutdown')
+
+        def on_activate(self, state: Any) -> Any:
+            return self._step('activate')
+
+        def on_deactivate(self, state: Any) -> Any:
+            return self._step('deactivate')
+
+        def on_error(self, state: Any) -> Any:
+            return self._step('error')
+
+    return ManagedNode()
+
+
+class RclpyLifecycle:
+    """The node's own transition requests (autostart) on rclpy's LifecycleNode."""
+
+    def __init__(self, node: Any, log: Callable[[str, str], None]) -> None:
+        self.node = node
+        self._log = log
+
+    def trigger(self, label: str) -> bool:
+        """LifecycleNode.trigger_<label>(); False when the step failed or the transition is
+        not available from the current state."""
+        from rclpy.lifecycle import TransitionCallbackReturn
+        trigger = getattr(self.node, f'trigger_{label}', None)
+        if label not in _STEPS[:5] or trigger is None:
+            msg = f'no lifecycle transition {label!r}; use one of {", ".join(_STEPS[:5])}'
+            raise TransportError(msg)
+        try:
+            return trigger() == TransitionCallbackReturn.SUCCESS
+        except Exception as exc:  # noqa: BLE001 - rclpy raises RCLError for a transition
+            # that is not available from the current state
+            self._log('warn', f'lifecycle: {label} is not possible now ({exc})')
+            return False
+
+
 class RclpyPort:
     """See the module docstring; the methods are those of port.Port."""
 
-    def __init__(self, node_name: str, argv: list[str], *, distro: str = 'jazzy') -> None:
+    def __init__(self, node_name: str, argv: list[str], *, distro: str = 'jazzy',
+                 lifecycle: bool = False) -> None:
         if distro not in DISTROS:
             msg = f'distro {distro!r} is not supported; use one of {", ".join(DISTROS)}'
             raise TransportError(msg)
@@ -198,7 +278,9 @@ class RclpyPort:
         self._rclpy = rclpy
         self.distro = distro
         rclpy.init(args=list(argv), signal_handler_options=SignalHandlerOptions.NO)
-        self.node = Node(node_name, automatically_declare_parameters_from_overrides=True)
+        self.native_lifecycle = lifecycle
+        self.node = (_managed_node(node_name, self.log) if lifecycle else
+                     Node(node_name, automatically_declare_parameters_from_overrides=True))
         self.node_name = self.node.get_name()
         self.namespace = self.node.get_namespace()
         self.types = _types()
@@ -207,6 +289,8 @@ class RclpyPort:
         self.control_executor, self.control_executor_name = _control_executor(
             self.node.context)
         self._control_node: Any = None      # made with the first control-path entity
+        self._control_thread: threading.Thread | None = None
+        self._control_lock = threading.Lock()
         self._timer_group = MutuallyExclusiveCallbackGroup()
         self._topic_group = MutuallyExclusiveCallbackGroup()
         self._client_group = ReentrantCallbackGroup()
@@ -277,7 +361,17 @@ class RclpyPort:
             self.control_executor.add_node(self._control_node)
             self.log('info', f'control path: node {self._control_node.get_name()}, '
                      f'{self.control_executor_name}, its own thread')
+            if self.spinning:    # made while spinning (a managed node's configure)
+                self._start_control_thread()
         return self._control_node
+
+    def _start_control_thread(self) -> None:
+        with self._control_lock:
+            if self._control_thread is None:
+                self._control_thread = threading.Thread(
+                    target=self._spin_executor, args=(self.control_executor,),
+                    name=f'{self.node_name}-control', daemon=True)
+                self._control_thread.start()
 
     def create_subscription(self, msg_type: Any, topic: str, callback: Callable[[Any], None],
                             qos: str, *, control: bool = False) -> Any:
@@ -311,6 +405,33 @@ class RclpyPort:
 
     def destroy_service(self, handle: object) -> None:
         self.node.destroy_service(handle)
+
+    def destroy_publisher(self, publisher: Any) -> None:
+        self.node.destroy_publisher(publisher)
+
+    def destroy_subscription(self, subscription: Any) -> None:
+        # on the control path's node or on the main node (destroy_* is False for another's)
+        control = self._control_node
+        if control is None or not control.destroy_subscription(subscription):
+            self.node.destroy_subscription(subscription)
+
+    def destroy_timer(self, timer: Any) -> None:
+        control = self._control_node
+        if control is None or not control.destroy_timer(timer.timer):
+            self.node.destroy_timer(timer.timer)
+
+    def serve_lifecycle(self, steps: dict[str, Callable[[], str | None]]) -> RclpyLifecycle:
+        """Run ``steps`` (configure, cleanup, shutdown, activate, deactivate, error: each
+        returns None or the reason it failed) in the LifecycleNode's transition callbacks."""
+        if not self.native_lifecycle:
+            msg = 'serve_lifecycle needs a port opened with lifecycle=True'
+            raise TransportError(msg)
+        unknown = set(steps) - set(_STEPS)
+        if unknown:
+            msg = f'unknown lifecycle steps {sorted(unknown)}; known: {", ".join(_STEPS)}'
+            raise TransportError(msg)
+        self.node.lifecycle_steps.update(steps)
+        return RclpyLifecycle(self.node, self.log)
 
     def create_client(self, srv_type: Any, name: str) -> RclpyClient:
         client = self.node.create_client(srv_type, name, qos_profile=_qos('services'),
@@ -477,15 +598,14 @@ class RclpyPort:
     def spin(self) -> None:
         self._signals.catch()
         self.spinning = True
-        control = None
         if self._control_node is not None:
-            control = threading.Thread(target=self._spin_executor, args=(self.control_executor,),
-                                       name=f'{self.node_name}-control', daemon=True)
-            control.start()
+            self._start_control_thread()
         try:
             self._spin_executor(self.executor)
         finally:
             self._stop.set()
+            with self._control_lock:
+                control, self._control_thread = self._control_thread, None
             if control is not None:
                 control.join()
             self.spinning = False

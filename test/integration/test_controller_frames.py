@@ -302,7 +302,7 @@ def test_the_model_came_from_the_latched_robot_description(
     """It moves on joints that only the topic's URDF has, although its file does not exist."""
     peer, node = cell
     assert peer.moving_since(0.0)
-    assert node.log('ready: 1 skills')
+    assert node.log('ready (active): 1 skills')
     # robot_state_publisher publishes again after a parameter change: the running node keeps
     # its model and says so once, however often it comes
     for i in range(3):

@@ -7,7 +7,10 @@ test_launch_ros.py`; launch_testing's pytest plugin collects the module through 
 the whole module is skipped at collection.
 
 Checks, with launch_testing's documented fixtures (ros2/launch launch_testing README):
-the controller logs its 'ready' line, publishes ~/status (diagnostic_msgs/DiagnosticArray),
+the controller logs its 'ready' line (it is logged when the node becomes active: the launch
+file drives the managed node through configure and activate with launch_ros' lifecycle
+events), answers lifecycle_msgs/srv/GetState with active [3] (lifecycle_msgs/msg/State
+constants), publishes ~/status (diagnostic_msgs/DiagnosticArray),
 exits with code 0 when launch shuts it down (SIGINT), and the `record` launch argument reaches
 the node (a rosbag2 folder with metadata.yaml is left behind).
 """
@@ -56,6 +59,23 @@ class TestControllerRunning(unittest.TestCase):
 
     def test_logs_ready(self, proc_output) -> None:  # noqa: ANN001 - injected fixture
         proc_output.assertWaitFor('ready', timeout=START_TIMEOUT)
+
+    def test_launch_made_it_active(self, proc_output) -> None:  # noqa: ANN001
+        import rclpy
+        from lifecycle_msgs.srv import GetState
+        proc_output.assertWaitFor('ready', timeout=START_TIMEOUT)
+        rclpy.init()
+        node = rclpy.create_node('lifecycle_probe')
+        try:
+            client = node.create_client(GetState, '/constraint_controller/get_state')
+            self.assertTrue(client.wait_for_service(timeout_sec=10.0))
+            future = client.call_async(GetState.Request())
+            rclpy.spin_until_future_complete(node, future, timeout_sec=10.0)
+            state = future.result().current_state
+            self.assertEqual((state.id, state.label), (3, 'active'))
+        finally:
+            node.destroy_node()
+            rclpy.try_shutdown()
 
     def test_publishes_status(self, proc_output) -> None:  # noqa: ANN001
         proc_output.assertWaitFor('ready', timeout=START_TIMEOUT)

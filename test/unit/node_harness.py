@@ -64,6 +64,12 @@ class NodeHarness:
             log(level, text)
         self.port.log = recording_log            # type: ignore[method-assign]
         self.node = ControllerNode(self.port)
+        if not self.node.lifecycle.trigger('configure'):   # the reason is in the log
+            from constraint_ctrl.errors import ConstraintCtrlError
+            self.port.shutdown()
+            raise ConstraintCtrlError(next(text for level, text in reversed(self.logs)
+                                           if 'configure failed' in text))
+        assert self.node.lifecycle.trigger('activate')
         self.t = self.port.types
         self.q = np.array(START, dtype=float)     # the robot: integrates the commands
         # a person far away on every configured source (a stale source stops the arm)

@@ -183,8 +183,8 @@ def test_a_reload_that_changes_the_unknowns_restarts_the_running_skill_and_says_
 @pytest.mark.parametrize(('name', 'value', 'reason'), [
     ('inputs.range_left.topic', '/elsewhere', 'read-only'),
     ('use_sim_time', True, 'use_sim_time cannot change at run time'),
-    ('rate_hz', 100.0, 'read-only'),
-    ('watchdog.resume_after', 0.1, 'read-only'),
+    ('rate_hz', 100.0, 'read at configure'),      # settable while unconfigured only
+    ('watchdog.resume_after', 0.1, 'read at configure'),
     ('keep_tool_vertical.limits.joint_speed', 1.6, 'out of range'),
     ('keep_tool_vertical.limits.joint_acceleration', 20.0, 'out of range'),
 ])

@@ -15,7 +15,6 @@ import pytest
 pytest.importorskip('cyclonedds')
 pytest.importorskip('daqp')
 
-from constraint_ctrl.errors import ConstraintCtrlError  # noqa: E402
 from constraint_ctrl.nodes.controller_node import STARTUP_PARAMETERS, ControllerNode  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
 
@@ -43,10 +42,10 @@ def test_every_skill_runs_with_the_solver_given_at_start_up(tmp_path: Path,
         assert _solvers(h) == {expected}
         outs = h.run(150)
         assert moving(outs[-1])
-        # refused at run time like every start-up parameter, and nothing changed
+        # refused while configured like every parameter read at configure; nothing changed
         other = 'quadprog' if expected == 'daqp' else 'daqp'
         ok, why = h.set_parameters({'qp_solver': other})
-        assert not ok and 'read-only' in why, why
+        assert not ok and 'read at configure' in why, why
         assert h.get('qp_solver') == expected and _solvers(h) == {expected}
         assert 'qp_solver' in STARTUP_PARAMETERS
     finally:
@@ -67,8 +66,11 @@ def test_an_unknown_solver_stops_the_start_with_the_choices(tmp_path: Path) -> N
         else:
             os.environ['ROS_DOMAIN_ID'] = old
     try:
-        with pytest.raises(ConstraintCtrlError, match="qp_solver must be one of quadprog, daqp, "
-                                                      "got 'osqp'"):
-            ControllerNode(port)
+        # the configure step fails with the reason (the node stays unconfigured)
+        node = ControllerNode(port)
+        reason = node.configure()
+        assert reason is not None and \
+            "qp_solver must be one of quadprog, daqp, got 'osqp'" in reason, reason
+        assert not node.configured
     finally:
         port.shutdown()

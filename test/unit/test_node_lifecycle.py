@@ -1,0 +1,69 @@
+"""The controller's lifecycle steps in this process (node_harness: a DDS port that never spins).
+
+The managed-node design (design.ros2.org "Managed nodes", from memory): an inactive node holds
+its configuration but processes no data; here that means zero commands only, the loop held.
+What leaves the node is captured at the ~/command publisher.
+"""
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from node_harness import NodeHarness, copy_skills, moving
+
+
+def capture_commands(h: NodeHarness) -> list[np.ndarray]:
+    sent: list[np.ndarray] = []
+    pub: Any = h.node._pub_command
+    original = pub.publish
+
+    def publish(msg: Any) -> None:
+        sent.append(np.array(list(msg.data)))
+        original(msg)
+    pub.publish = publish
+    return sent
+
+
+def test_deactivate_holds_then_publishes_only_zeros(tmp_path: Path) -> None:
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
+    try:
+        reply = h.activate('move_to_point')
+        assert reply.success, reply.message
+        assert moving(h.run(20)[-1])
+        assert h.while_ticking(lambda: h.node.lifecycle.trigger('deactivate'))
+        assert h.node.loop.holding and not h.node.active
+        sent = capture_commands(h)
+        for _ in range(30):
+            h.feed()
+            h.node._tick()
+        assert len(sent) == 30 and not any(c.any() for c in sent)
+        # activation is refused while inactive, with the way out
+        refused = h.node._cannot_activate('move_to_point')
+        assert refused is not None and 'not active' in refused
+        # active again: still holding until a skill is asked for
+        assert h.node.lifecycle.trigger('activate')
+        assert not moving(h.run(10)[-1]) and h.node.loop.holding
+    finally:
+        h.close()
+
+
+def test_cleanup_releases_and_configure_again(tmp_path: Path) -> None:
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
+    try:
+        assert h.while_ticking(lambda: h.node.lifecycle.trigger('deactivate'))
+        assert h.node.lifecycle.trigger('cleanup')
+        assert not h.node.configured and h.node.loop is None and h.node.timer is None
+        assert h.node._services == {}
+        # tunables are undeclared with the skills
+        assert 'move_to_point.goal_z' not in h.port.get_parameters_by_prefix('')
+        # set while unconfigured, read by the next configure
+        ok, why = h.set_parameters({'status_rate_hz': 5.0})
+        assert ok, why
+        assert h.node.lifecycle.trigger('configure')
+        assert h.node._status_every == round(h.node.rate / 5.0)
+        assert 'move_to_point.goal_z' in h.port.get_parameters_by_prefix('')
+        ok, why = h.set_parameters({'status_rate_hz': 10.0})
+        assert not ok and 'read at configure' in why
+    finally:
+        h.close()
