@@ -589,10 +589,10 @@ class _Translator:
             return model.pose(node.id)
         if kind == 'frame' and isinstance(node, ast.Name) and node.id not in self.scope.names:
             close = difflib.get_close_matches(node.id, model.link_names, n=3)
-            hint = f'did you mean {", ".join(close)}? ' if close else ''
+            hint = f'; did you mean {", ".join(close)}?' if close else ''
             shown = ', '.join(model.link_names[:10]) + (
                 ', ...' if len(model.link_names) > 10 else '')
-            raise self.fail(f'{function}(): unknown link {node.id!r}; {hint}(links: {shown})',
+            raise self.fail(f'{function}(): unknown link {node.id!r}{hint} (links: {shown})',
                             node)
         value = self.value(node)
         if kind == 'any':

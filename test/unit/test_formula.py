@@ -337,6 +337,7 @@ def test_conditions_give_booleans(text: str, expected: float) -> None:
     ('position(x)', "position(): argument 'link' must be a link name or a frame, got a scalar"),
     ('distance_to_plane(p, a)', "argument 'plane' must be a plane, got a vector"),
     ('position(tool)', "position(): unknown link 'tool'; did you mean tool_tip?"),
+    ('position(zzzz)', "position(): unknown link 'zzzz' (links: "),
     ('joint(joint_9)', "joint() needs a movable joint name, got 'joint_9'"),
     ('joint(tool_mount)', "got 'tool_mount'"),
     ('speed + 1', "unknown name 'speed'"),
