@@ -369,7 +369,7 @@ def echo(args: argparse.Namespace) -> int:
               + ('Ctrl-C to stop' if args.count is None else f'{args.count} message(s)'),
               file=sys.stderr, flush=True)
         printed = 0
-        restore = _sigterm_ends_echo()
+        restore = _stop_signals_end_echo()
         try:
             while args.count is None or printed < args.count:
                 try:
@@ -388,10 +388,13 @@ def echo(args: argparse.Namespace) -> int:
         return 0
 
 
-def _sigterm_ends_echo() -> Any:
-    """SIGTERM ends an echo like Ctrl-C, so the node is withdrawn and its reader unmatched
-    (a reader killed without that stays matched at the publisher until its lease ends).
-    Returns the function that puts the previous handler back."""
+def _stop_signals_end_echo() -> Any:
+    """SIGINT and SIGTERM end an echo, so the node is withdrawn and its reader unmatched (a
+    reader killed without that stays matched at the publisher until its lease ends). SIGINT
+    gets our handler even when the process inherited it ignored (started from a script or a
+    test harness that ignores it): an endless echo has no other way to end cleanly, as the
+    ros2 command line's echo installs its own handler too. Returns the function that puts the
+    previous handlers back."""
     import signal
     if threading.current_thread() is not threading.main_thread():
         return lambda: None
@@ -399,8 +402,12 @@ def _sigterm_ends_echo() -> Any:
     def stop(signum: int, frame: object) -> None:
         raise KeyboardInterrupt
 
-    previous = signal.signal(signal.SIGTERM, stop)
-    return lambda: signal.signal(signal.SIGTERM, previous)
+    previous = {sig: signal.signal(sig, stop) for sig in (signal.SIGINT, signal.SIGTERM)}
+
+    def restore() -> None:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+    return restore
 
 
 def _tilde_hint(text: str) -> str:
