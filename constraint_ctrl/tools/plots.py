@@ -333,6 +333,7 @@ def marker_figure(markers: Sequence[dict[str, Any]], title: str) -> Figure:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
     from matplotlib.patches import Patch
+    from matplotlib.colors import to_rgb
     sphere_t, cube_t, line_list_t = 2, 1, 5
     fig = Figure(figsize=(10.0, 8.0), layout='constrained')
     FigureCanvasAgg(fig)
@@ -342,11 +343,32 @@ def marker_figure(markers: Sequence[dict[str, Any]], title: str) -> Figure:
     named: set[str] = set()
     lines = [m for m in markers if m['type'] == line_list_t]
     line_styles = iter(styles(len(lines)))
+    # a constraint's points, planes and boxes share one colour of their own (one legend entry
+    # per constraint, naming its shapes): no colour twice in the panel; the watchdog's spheres
+    # and the people keep the colours ~/markers gives them (red/orange/yellow/green, blue)
+    own = ('tab:purple', 'tab:brown', 'tab:pink', 'tab:olive', 'tab:cyan', 'tab:gray',
+           'black', 'gold', 'teal', 'navy')
+    constraint_colour: dict[str, tuple[float, ...]] = {}
+    constraint_kinds: dict[str, list[str]] = {}
+    fixed = ('monitored_spheres', 'people', 'protective_distance')
     for m in markers:
         if m.get('action', 0) == 3:
             continue
         centre = np.asarray(m['position'], dtype=float)
         colour = tuple(m['colour'])
+        if m['ns'] == 'protective_distance':   # the person is blue too: a lighter blue
+            colour = (*to_rgb('lightskyblue'), colour[3] if len(colour) > 3 else 1.0)
+        if m['type'] in (sphere_t, cube_t) and m['ns'] not in fixed:
+            name = m['text']
+            if name not in constraint_colour:
+                rgb = to_rgb(own[len(constraint_colour) % len(own)])
+                constraint_colour[name] = (*rgb, colour[3] if len(colour) > 3 else 1.0)
+                constraint_kinds[name] = []
+            colour = constraint_colour[name]
+            kind = ('point' if m['type'] == sphere_t
+                    else 'plane' if min(m['scale']) < 0.01 else 'box')
+            if kind not in constraint_kinds[name]:
+                constraint_kinds[name].append(kind)
         if m['type'] == sphere_t:
             radius = float(m['scale'][0]) / 2.0
             wire = m['ns'] == 'protective_distance'
@@ -355,9 +377,8 @@ def marker_figure(markers: Sequence[dict[str, Any]], title: str) -> Figure:
             label = {'monitored_spheres': f'monitored sphere (watchdog {m["text"]})',
                      'people': 'person',
                      'protective_distance': f'protective separation distance S_p '
-                                            f'(radius {radius:.3f} m)'}.get(
-                m['ns'], f'{m["text"]} (point)')
-            if label not in named:
+                                            f'(radius {radius:.3f} m)'}.get(m['ns'], '')
+            if label and label not in named:
                 named.add(label)
                 handles.append(Patch(facecolor=colour[:3], alpha=0.6 if not wire else 0.3,
                                      label=label))
@@ -365,10 +386,6 @@ def marker_figure(markers: Sequence[dict[str, Any]], title: str) -> Figure:
             rotation = _quaternion_matrix(*m['orientation'])
             corners = _cube(ax, centre, rotation, np.asarray(m['scale'], dtype=float), colour)
             extent += [corners.min(axis=0), corners.max(axis=0)]
-            label = f'{m["text"]} ({"plane" if min(m["scale"]) < 0.01 else "box"})'
-            if label not in named:
-                named.add(label)
-                handles.append(Patch(facecolor=colour[:3], alpha=0.3, label=label))
         elif m['type'] == line_list_t:
             pts = np.asarray(m['points'], dtype=float).reshape(-1, 3)
             style = next(line_styles)
@@ -376,6 +393,9 @@ def marker_figure(markers: Sequence[dict[str, Any]], title: str) -> Figure:
                               label=f'{m["text"]} (line)', **style)
             handles.append(line)
             extent += [pts.min(axis=0), pts.max(axis=0)]
+    for name, rgba in constraint_colour.items():
+        handles.append(Patch(facecolor=rgba[:3], alpha=0.5,
+                             label=f'{name} ({", ".join(constraint_kinds[name])})'))
     if extent:
         lo, hi = np.min(extent, axis=0), np.max(extent, axis=0)
         middle, half = (lo + hi) / 2.0, max(float((hi - lo).max()) / 2.0, 0.1)

@@ -273,4 +273,11 @@ def test_marker_figure_follows_the_rules(saved: list[Figure], tmp_path: Path) ->
     labels = [h.get_label() for h in fig.axes[0].get_legend().legend_handles]
     assert 'monitored sphere (watchdog reduced)' in labels
     assert any(label.startswith('protective separation distance S_p') for label in labels)
-    assert 'keep_in_box (box)' in labels and 'carry (line)' in labels
+    assert 'keep_in_box (box, point)' in labels and 'carry (line)' in labels
+    # the plot rule "no colour twice in one panel" for the filled shapes too: each legend patch
+    # (a state, the people, the S_p sphere, one constraint's geometry) has its own colour
+    from matplotlib.colors import to_hex
+    from matplotlib.patches import Patch
+    fills = [to_hex(h.get_facecolor(), keep_alpha=False)
+             for h in fig.axes[0].get_legend().legend_handles if isinstance(h, Patch)]
+    assert len(fills) == len(set(fills)), labels
