@@ -147,6 +147,13 @@ class FixedRateTimer:
         self._thread: threading.Thread | None = None
         self._cancelled = False
         self._due = 0                      # monotonic ns of the next call (monotonic timers)
+        # ROS-time timers count their first period from their creation, as rcl_timer_init
+        # does, not from when their thread first runs (which a busy machine can delay past the
+        # next /clock sample and so shift the whole schedule)
+        self._anchor: tuple[int, int] | None = None
+        if clock is not None:
+            with clock.condition:
+                self._anchor = (clock.generation, clock.now_ns())
 
     def start(self) -> None:
         if self._cancelled or self._thread is not None:
@@ -205,8 +212,10 @@ class FixedRateTimer:
         period = self.period_ns
         cond = clock.condition
         with cond:
-            generation = clock.generation
-            due = clock.now_ns() + period
+            anchor, self._anchor = self._anchor, None   # the creation time, first start only
+            generation, start = anchor if anchor is not None else (clock.generation,
+                                                                   clock.now_ns())
+            due = start + period
         while True:
             with cond:
                 while True:
