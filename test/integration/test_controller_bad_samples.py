@@ -16,7 +16,7 @@ import subprocess
 import sys
 import threading
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -32,6 +32,7 @@ from constraint_ctrl.transport import dds_raw  # noqa: E402
 from constraint_ctrl.transport.dds_qos import writer_qos  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
 from constraint_ctrl.transport.qos import PROFILES  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -41,13 +42,6 @@ JOINTS = [f'joint_{i}' for i in range(1, 7)]
 START = [0.0, 0.0415, 0.6889, 0.0, 0.8404, 3.1416]
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return predicate()
 
 
 class Driver:

@@ -46,6 +46,7 @@ pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.frames.messages import make_edge, tf_message  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -236,13 +237,6 @@ class Controller:
         return [x for x in list(self.lines) if text in x]
 
 
-def wait_until(condition: Any, timeout: float) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if condition():
-            return True
-        time.sleep(0.02)
-    return bool(condition())
 
 
 @pytest.fixture(scope='module')

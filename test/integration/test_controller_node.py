@@ -14,10 +14,9 @@ import signal
 import subprocess
 import sys
 import threading
-import time
 from pathlib import Path
 from typing import Any
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 
 import numpy as np
 import pytest
@@ -25,6 +24,7 @@ import pytest
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -33,13 +33,6 @@ JOINTS = [f'joint_{i}' for i in range(1, 7)]
 START = np.array([0.0, 0.0415, 0.6889, 0.0, 0.8404, 3.1416])
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return predicate()
 
 
 class Robot:

@@ -14,10 +14,9 @@ import signal
 import subprocess
 import sys
 import threading
-import time
 from pathlib import Path
 from typing import Any
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 
 import numpy as np
 import pytest
@@ -26,6 +25,7 @@ pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.dds_parameters import from_msg  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -35,13 +35,6 @@ START = np.array([0.0, 0.3156, 0.6775, 0.0, 0.5777, 0.0])
 RATE = 250.0
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return predicate()
 
 
 class Peer:

@@ -13,8 +13,7 @@ from __future__ import annotations
 import os
 import random
 import threading
-import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from typing import Any
 
 import pytest
@@ -31,18 +30,12 @@ from constraint_ctrl.transport import dds_raw  # noqa: E402
 from constraint_ctrl.transport.dds_port import DdsPort  # noqa: E402
 from constraint_ctrl.transport.dds_qos import writer_qos  # noqa: E402
 from constraint_ctrl.transport.qos import PROFILES  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 NS = f'/bad{os.getpid()}'
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return predicate()
 
 
 def corrupt(data: bytes, marker: bytes) -> bytes:

@@ -10,25 +10,17 @@ lists, and a participant that leaves takes its nodes with it. rclpy returns list
 from __future__ import annotations
 
 import random
-import time
-from collections.abc import Callable
 
 import pytest
 
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float = 30.0) -> bool:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.05)
-    return predicate()
 
 
 def test_topics_publishers_nodes_and_services(monkeypatch: pytest.MonkeyPatch) -> None:

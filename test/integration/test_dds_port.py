@@ -27,19 +27,13 @@ DOMAIN = str(random.randint(150, 230))
 os.environ['ROS_DOMAIN_ID'] = DOMAIN    # before the first participant of this process
 
 from constraint_ctrl.transport.dds_port import DdsPort  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 NS = f'/it{os.getpid()}'   # unique per run, in case another run picked the same domain
 PEER = f'{NS}/peer'
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return predicate()
 
 
 class Node:

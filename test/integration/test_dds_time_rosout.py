@@ -36,19 +36,13 @@ from constraint_ctrl.transport import dds_raw  # noqa: E402
 from constraint_ctrl.transport.dds_port import DdsPort  # noqa: E402
 from constraint_ctrl.transport.dds_qos import reader_qos  # noqa: E402
 from constraint_ctrl.transport.qos import ROSOUT  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
 NS = f'/time{os.getpid()}'
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    deadline = time.monotonic() + timeout_s
-    while time.monotonic() < deadline:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return predicate()
 
 
 class Spinning:

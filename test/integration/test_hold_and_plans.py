@@ -22,10 +22,9 @@ import signal
 import subprocess
 import sys
 import threading
-import time
 from pathlib import Path
 from typing import Any
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 
 import numpy as np
 import pytest
@@ -33,6 +32,7 @@ import pytest
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -74,14 +74,6 @@ limits:
 """
 
 
-def wait_until(predicate: Callable[[], Any], timeout_s: float = PATIENCE) -> Any:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        result = predicate()
-        if result:
-            return result
-        time.sleep(0.02)
-    return predicate()
 
 
 class Robot:

@@ -20,7 +20,7 @@ import subprocess
 import sys
 import threading
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -30,6 +30,7 @@ import pytest
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -39,13 +40,6 @@ START = np.array([0.0, 0.0415, 0.6889, 0.0, 0.8404, 3.1416])
 CALL_S = 180.0        # configure compiles the skills: minutes on a busy machine, not seconds
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        if predicate():
-            return True
-        time.sleep(0.05)
-    return predicate()
 
 
 class Manager:

@@ -21,8 +21,7 @@ import signal
 import subprocess
 import sys
 import threading
-import time
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -34,6 +33,7 @@ pytest.importorskip('cyclonedds')
 from constraint_ctrl.nodes.markers import STATE_COLOURS  # noqa: E402
 from constraint_ctrl.safety.states import State  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -45,13 +45,6 @@ FAR = (3.0, 3.0, 1.0)        # beyond the 1.5 m reduced zone
 NEAR = (1.1, 0.0, 0.6)       # inside the reduced zone, outside S_p
 
 
-def wait_until(predicate: Callable[[], bool], timeout_s: float) -> bool:
-    end = time.monotonic() + timeout_s
-    while time.monotonic() < end:
-        if predicate():
-            return True
-        time.sleep(0.02)
-    return predicate()
 
 
 class Cell:

@@ -41,6 +41,7 @@ pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.model.kinematics import RobotModel  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
 ROOT = Path(__file__).resolve().parents[2]
@@ -233,13 +234,6 @@ def _resumed_after(commands: list[tuple[float, np.ndarray]], t0: float) -> float
     return None
 
 
-def wait_until(condition: Any, timeout: float) -> bool:
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if condition():
-            return True
-        time.sleep(0.02)
-    return bool(condition())
 
 
 def _inject(peer: Peer, fault: str, seconds: float) -> tuple[float, float, float, float]:
