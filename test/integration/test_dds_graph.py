@@ -35,7 +35,7 @@ def test_topics_publishers_nodes_and_services(monkeypatch: pytest.MonkeyPatch) -
         other.create_subscription(t.Float64MultiArray, 'command', lambda m: None, 'default')
         other.create_service(t.Trigger, '~/hold', lambda q, r: r)
 
-        assert wait_until(lambda: asker.count_publishers('/joint_states') == 2)
+        assert wait_until(lambda: asker.count_publishers('/joint_states') == 2, 30.0)
         topics = dict(asker.get_topic_names_and_types())
         assert topics['/cell1/other/events'] == ['std_msgs/msg/String']
         assert topics['/joint_states'] == ['sensor_msgs/msg/JointState']
@@ -51,7 +51,8 @@ def test_topics_publishers_nodes_and_services(monkeypatch: pytest.MonkeyPatch) -
         assert asker.publisher_qos('/cell1/other/events') == [('std_msgs/msg/String', True,
                                                                  False)]
 
-        assert wait_until(lambda: ('other', '/cell1') in asker.get_node_names_and_namespaces())
+        assert wait_until(lambda: ('other', '/cell1') in asker.get_node_names_and_namespaces(),
+                          30.0)
         assert ('asker', '/') in asker.get_node_names_and_namespaces()
         services = dict(asker.get_service_names_and_types_by_node('other', '/cell1'))
         assert services['/cell1/other/hold'] == ['std_srvs/srv/Trigger']
@@ -65,7 +66,7 @@ def test_topics_publishers_nodes_and_services(monkeypatch: pytest.MonkeyPatch) -
         other.shutdown()
     try:
         assert wait_until(lambda: ('other', '/cell1') not in
-                          asker.get_node_names_and_namespaces())
-        assert wait_until(lambda: asker.count_publishers('/joint_states') == 0)
+                          asker.get_node_names_and_namespaces(), 30.0)
+        assert wait_until(lambda: asker.count_publishers('/joint_states') == 0, 30.0)
     finally:
         asker.shutdown()

@@ -239,7 +239,8 @@ def assert_holds(cell: Cell, since: int, max_motion: float | None = None) -> Non
     arm did not move meanwhile; the controller says it holds. ``max_motion``: the most the arm
     may have moved from command ``since`` to then (rad)."""
     robot = cell.robot
-    first = wait_until(lambda: robot.holding() if robot.count() > since + ZERO_RUN else None)
+    first = wait_until(lambda: robot.holding() if robot.count() > since + ZERO_RUN else None,
+                       PATIENCE)
     tail = robot.commands_since(since)[-20:]
     with robot.lock:
         moved = (float(np.abs(robot.q - robot.positions[since]).max())
@@ -253,7 +254,7 @@ def assert_holds(cell: Cell, since: int, max_motion: float | None = None) -> Non
     assert np.ptp(still, axis=0).max() == 0.0, 'the arm moved while holding'
     if max_motion is not None:
         assert moved <= max_motion, f'the arm moved {moved:.4f} rad after the plan ended'
-    assert wait_until(lambda: robot.controller_status().get('skill') == 'hold'), \
+    assert wait_until(lambda: robot.controller_status().get('skill') == 'hold', PATIENCE), \
         robot.controller_status()
     assert robot.controller_status()['message'].startswith('holding')
 
@@ -261,10 +262,11 @@ def assert_holds(cell: Cell, since: int, max_motion: float | None = None) -> Non
 def test_the_node_starts_in_hold(cell: Cell) -> None:
     robot = cell.robot
     # joint_states flow, no initial_skill: zero commands, the watchdog reports its state
-    assert wait_until(lambda: robot.count() > 2 * ZERO_RUN and robot.status), \
+    assert wait_until(lambda: robot.count() > 2 * ZERO_RUN and robot.status, PATIENCE), \
         cell.controller_log()[-3000:]
     assert not robot.commands_since(0).any()
-    assert wait_until(lambda: robot.controller_status()['watchdog'].startswith('normal')), \
+    assert wait_until(lambda: robot.controller_status()['watchdog'].startswith('normal'),
+                      PATIENCE), \
         robot.controller_status()
     status = robot.controller_status()
     assert status['skill'] == 'hold', status
@@ -275,7 +277,7 @@ def test_the_node_starts_in_hold(cell: Cell) -> None:
 def test_hold_service_stops_a_moving_skill(cell: Cell) -> None:
     robot = cell.robot
     assert robot.trigger(f'{NODE}/skills/turn_base/activate').success
-    assert wait_until(robot.moving), 'no motion after activation'
+    assert wait_until(robot.moving, PATIENCE), 'no motion after activation'
     events, since = len(robot.events), robot.count()
     reply = robot.trigger(f'{NODE}/hold')
     assert reply.success and reply.message.startswith('holding'), reply.message
@@ -367,8 +369,9 @@ def test_interrupted_plan_ends_in_hold(cell: Cell, sig: signal.Signals, code: in
     reader = threading.Thread(target=lambda: lines.extend(proc.stdout), daemon=True)
     reader.start()
     try:
-        assert wait_until(lambda: 'activated_turn_base' in robot.events_since(events)), lines
-        assert wait_until(robot.moving)
+        assert wait_until(lambda: 'activated_turn_base' in robot.events_since(events),
+                          PATIENCE), lines
+        assert wait_until(robot.moving, PATIENCE)
         proc.send_signal(sig)
         assert proc.wait(120) == code, ''.join(lines)
     finally:
