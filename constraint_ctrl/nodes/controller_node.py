@@ -749,7 +749,9 @@ class ControllerNode:
             self._ticks += 1
             if self._ticks % self._status_every == 0:
                 self._send_status(out)
-            if self._markers_every and self._ticks % self._markers_every == 0:
+            # inactive: zero commands and status only; the rows and markers are the
+            # control's output and stop with it
+            if self.active and self._markers_every and self._ticks % self._markers_every == 0:
                 self._markers.post(self._marker_job())
         except Exception:  # noqa: BLE001 - any failure in a tick must end in a zero command
             self._errors += 1
@@ -815,14 +817,16 @@ class ControllerNode:
         """On the tick: take the rows of this solve; the worker builds and publishes."""
         self._status.post(*self._status_job(out))
 
-    def _status_job(self, out: LoopOutput) -> tuple[LoopOutput, Any, list[str]]:
-        """What only the tick can read consistently: its output and the rows of its solve."""
+    def _status_job(self, out: LoopOutput) -> tuple[LoopOutput, Any, list[str], bool]:
+        """What only the tick can read consistently: its output, the rows of its solve and
+        whether the node is active (inactive sends no ~/rows)."""
         runner = self.loop.active
         rows = runner.diagnostics() if runner is not None and out.tick is not None else None
         names = [r.name for r in runner.skill.rows] if runner is not None else []
-        return out, rows, names
+        return out, rows, names, self.active
 
-    def _publish_status(self, out: LoopOutput, rows: Any, names: list[str]) -> None:
+    def _publish_status(self, out: LoopOutput, rows: Any, names: list[str],
+                        active: bool = True) -> None:
         """On the status thread (StatusWorker)."""
         recorder = self.recorder
         faults = self.port.faults().values()
@@ -842,8 +846,9 @@ class ControllerNode:
         stamp = self.port.now_ns()
         msg = build_status(self.port, self.port.node_name, out, stamp, extra, self.hardware_id)
         self._publish(self._pub_status, '~/status', msg)
-        self._publish(self._pub_rows, '~/rows',
-                      build_rows(self.port, out.skill, rows, names, stamp, self.hardware_id))
+        if active:
+            self._publish(self._pub_rows, '~/rows',
+                          build_rows(self.port, out.skill, rows, names, stamp, self.hardware_id))
         if self._status_count % self._diagnostics_every == 0:
             self._publish(self._pub_diagnostics, '/diagnostics', msg)
         self._status_count += 1

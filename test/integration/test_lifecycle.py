@@ -58,6 +58,12 @@ class Manager:
                                       'default')
         self.port.create_subscription(t.DiagnosticArray, f'{NODE}/status', self._on_status,
                                       'default')
+        self.rows = 0
+        self.markers = 0
+        self.port.create_subscription(t.DiagnosticArray, f'{NODE}/rows', self._on_rows,
+                                      'default')
+        self.port.create_subscription(t.MarkerArray, f'{NODE}/markers', self._on_markers,
+                                      'default')
         self.port.create_subscription(t.TransitionEvent, f'{NODE}/transition_event',
                                       self._on_event, 'default')
         self.js = self.port.create_publisher(t.JointState, '/joint_states', 'sensor')
@@ -72,6 +78,19 @@ class Manager:
     def _on_status(self, msg: Any) -> None:
         with self.lock:
             self.status += 1
+
+    def _on_rows(self, msg: Any) -> None:
+        with self.lock:
+            self.rows += 1
+
+    def _on_markers(self, msg: Any) -> None:
+        with self.lock:
+            self.markers += 1
+
+    def output_counts(self) -> tuple[int, int]:
+        """~/rows and ~/markers received so far."""
+        with self.lock:
+            return self.rows, self.markers
 
     def _on_event(self, msg: Any) -> None:
         with self.lock:
@@ -208,6 +227,7 @@ def test_managed_node_over_dds(domain: str, skills: Path) -> None:
         assert wait_until(lambda: peer.command_count() >= mark + 50, 60.0)
         assert all(not c.any() for c in peer.commands_since(mark))
         assert wait_until(lambda: peer.status > 0, 30.0), 'no ~/status while inactive'
+        assert peer.output_counts() == (0, 0), 'inactive sent ~/rows or ~/markers'
         refused = peer.call('Trigger', f'{NODE}/skills/move_to_point/activate',
                             peer.t.Trigger.Request())
         assert not refused.success and 'not active' in refused.message
@@ -219,6 +239,8 @@ def test_managed_node_over_dds(domain: str, skills: Path) -> None:
                           peer.t.Trigger.Request(), timeout=60.0)
         assert reply.success, reply.message
         assert wait_until(lambda: any(c.any() for c in peer.commands_since(-5)), 60.0)
+        assert wait_until(lambda: min(peer.output_counts()) > 0, 30.0), \
+            'active: no ~/rows or ~/markers'
 
         # deactivate -> inactive: from the first zero after the reply on, only zeros
         assert peer.set('deactivate')
@@ -229,6 +251,11 @@ def test_managed_node_over_dds(domain: str, skills: Path) -> None:
         first_zero = next(i for i, c in enumerate(after) if not c.any())
         assert all(not c.any() for c in after[first_zero:])
         assert len(after) - first_zero >= 40
+        # what was in flight at the deactivation has arrived by now; from here on, nothing
+        counts = peer.output_counts()
+        mark = peer.command_count()
+        assert wait_until(lambda: peer.command_count() >= mark + 50, 60.0)
+        assert peer.output_counts() == counts, 'inactive sent ~/rows or ~/markers'
         # activating again starts without a skill (hold): zero commands until one is asked for
         assert peer.set('activate')
         mark = peer.command_count()

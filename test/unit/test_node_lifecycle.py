@@ -67,3 +67,34 @@ def test_cleanup_releases_and_configure_again(tmp_path: Path) -> None:
         assert not ok and 'read at configure' in why
     finally:
         h.close()
+
+
+def test_inactive_publishes_no_rows_and_no_markers(tmp_path: Path) -> None:
+    """Inactive publishes nothing but zero commands and status (~/status, /diagnostics):
+    ~/rows and ~/markers are the control's output, so they stop with it."""
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
+    try:
+        posted: list[Any] = []
+        h.node._markers.post = posted.append     # type: ignore[method-assign]
+        rows: list[Any] = []
+        status: list[Any] = []
+        h.node._pub_rows.publish = rows.append   # type: ignore[method-assign]
+        h.node._pub_status.publish = status.append   # type: ignore[method-assign]
+        every = h.node._markers_every
+        assert every > 0
+        reply = h.activate('move_to_point')
+        assert reply.success, reply.message
+        h.run(2 * every)
+        h.node._publish_status(*h.node._status_job(h.outputs[-1]))
+        assert posted and rows and status, 'active: markers, rows and status all go out'
+        assert h.while_ticking(lambda: h.node.lifecycle.trigger('deactivate'))
+        assert not h.node.active
+        del posted[:], rows[:], status[:]
+        for _ in range(2 * every):
+            h.feed()
+            h.node._tick()
+        h.node._publish_status(*h.node._status_job(h.outputs[-1]))
+        assert status, 'inactive: ~/status still goes out'
+        assert posted == [] and rows == [], 'inactive: ~/markers or ~/rows went out'
+    finally:
+        h.close()
