@@ -368,9 +368,13 @@ class TransformBuffer:
         return None
 
     def clear(self) -> None:
-        """Forget every transform (e.g. when ROS time jumps back, as tf2_ros.Buffer does)."""
+        """Forget every timed transform; static ones stay (when ROS time jumps back or
+        changes source, as tf2_ros.Buffer does: tf2's static cache ignores a clear, from
+        memory, and /tf_static is not sent again)."""
         with self._lock:
-            self._edges.clear()
+            timed = [child for child, edge in self._edges.items() if not edge.static]
+            for child in timed:
+                del self._edges[child]
             self._paths.clear()
 
     def frames(self) -> list[str]:

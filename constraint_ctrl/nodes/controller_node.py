@@ -427,6 +427,9 @@ class ControllerNode:
         self._status = self._markers = None
         if self.loop is not None:
             self._switch_delays.extend(self.loop.switch_delays)
+        points = getattr(self, 'points', None)
+        if points is not None:     # tf2_ros on rclpy made subscriptions and a service itself
+            points.close()
         made, self._made = self._made, _Made()
         for sub in made.subscriptions:
             port.destroy_subscription(sub)

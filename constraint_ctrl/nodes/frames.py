@@ -77,6 +77,8 @@ class Frames(Protocol):
 
     def new_problems(self) -> list[str]: ...
 
+    def close(self) -> None: ...
+
 
 class _Problems:
     """Counts failures and rejections per kind; reports each kind once."""
@@ -111,6 +113,11 @@ class TopicFrames(_Problems):
     `subscribe` defaults to port.create_subscription; the node may pass its own wrapper (for
     example one that also records the messages in its bag). Callbacks run on the port's
     subscription thread; the buffer has its own lock.
+
+    When ROS time jumps back or changes source (the port's `time_generation()` moves: a
+    simulation restarted, use_sim_time switched), the timed transforms are cleared, as
+    tf2_ros.Buffer's time-jump callback does; otherwise the restarted simulation's
+    transforms would be older than the kept history and refused. Counted as 'time_jump'.
     """
 
     def __init__(self, port: Any, *, cache_time_s: float = DEFAULT_CACHE_TIME_S,
@@ -120,10 +127,21 @@ class TopicFrames(_Problems):
         self._port = port
         self.max_age_s = max_age_s
         self.buffer = TransformBuffer(cache_time_s, capacity, max_age_s)
+        self._time_generation: Callable[[], int] | None = getattr(port, 'time_generation',
+                                                                  None)
+        self._generation = self._time_generation() if self._time_generation else 0
         sub = subscribe if subscribe is not None else port.create_subscription
         message = port.types.TFMessage
         self.subscriptions = [sub(message, '/tf', self._on_tf, 'tf'),
                               sub(message, '/tf_static', self._on_tf_static, 'tf_static')]
+        self._own_subscriptions = subscribe is None   # else the lender destroys them
+
+    def close(self) -> None:
+        """Destroy the /tf and /tf_static subscriptions made here (not lent ones)."""
+        subscriptions, self.subscriptions = self.subscriptions, []
+        if self._own_subscriptions:
+            for subscription in subscriptions:
+                self._port.destroy_subscription(subscription)
 
     def _on_tf(self, msg: Any) -> None:
         self._feed(msg, static=False)
@@ -131,7 +149,19 @@ class TopicFrames(_Problems):
     def _on_tf_static(self, msg: Any) -> None:
         self._feed(msg, static=True)
 
+    def _follow_time(self) -> None:
+        """Clear the timed transforms once per jump of ROS time (see the class docstring)."""
+        if self._time_generation is None:
+            return
+        generation = self._time_generation()
+        if generation != self._generation:
+            self._generation = generation
+            self.buffer.clear()
+            self._note('time_jump', 'ROS time jumped back or changed source: timed '
+                       'transforms cleared (static ones kept), as tf2_ros does')
+
     def _feed(self, msg: Any, static: bool) -> None:
+        self._follow_time()
         rejected: list[Rejection] = add_tf_message(self.buffer, msg, static)
         for r in rejected:
             self._note(f'rejected_{r.kind}', r.message)
@@ -139,6 +169,7 @@ class TopicFrames(_Problems):
     def transform_point(self, xyz: Sequence[float], from_frame: str, to_frame: str,
                         stamp_ns: int | None, max_age_s: float | None = None
                         ) -> PointInFrame | LookupFailure:
+        self._follow_time()
         if not stamp_ns:
             stamp_ns = int(self._port.now_ns())
         limit = self.max_age_s if max_age_s is None else max_age_s
@@ -190,6 +221,23 @@ class Tf2Frames(_Problems):
                      max_age_s=max_age_s)
         frames.listener = tf2_ros.TransformListener(buffer, port.node)
         return frames
+
+    def close(self) -> None:
+        """Release what tf2_ros made on the node (at cleanup; the node lives on): the
+        listener's /tf and /tf_static subscriptions (TransformListener.unregister), the
+        buffer's 'tf2_frames' service and its clock jump callback."""
+        listener, self.listener = self.listener, None
+        if listener is not None:
+            listener.unregister()
+        buffer = self.buffer
+        service = getattr(buffer, 'srv', None)
+        if service is not None:
+            self._port.node.destroy_service(service)
+            buffer.srv = None
+        jump = getattr(buffer, 'jump_handle', None)
+        if jump is not None:
+            jump.unregister()
+            buffer.jump_handle = None
 
     def _kind(self, exc: Exception) -> str:
         e = self._errors

@@ -98,6 +98,10 @@ class PointsInBase:
         self.input_faults.ok(source, f'usable in {mapping.frame!r} again')
         return mapping.scale * float(got.xyz[_AXIS[mapping.field[-1]]])
 
+    def close(self) -> None:
+        """Release the frames adapter (its subscriptions and services), at cleanup."""
+        self.frames.close()
+
     def report(self) -> dict[str, str]:
         """Log rejected /tf samples (each kind once); counts for ~/status."""
         for text in self.frames.new_problems():

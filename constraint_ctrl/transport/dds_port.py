@@ -441,6 +441,11 @@ class DdsPort:
                 self.types.Clock, '/clock', self._on_clock, CLOCK)
         self._clock.use_sim_time(active)
 
+    def time_generation(self) -> int:
+        """Changes whenever ROS time jumps back or changes source (dds_time.RosClock); the
+        frames buffer clears its timed transforms then, as tf2_ros.Buffer does."""
+        return self._clock.generation
+
     def _on_clock(self, msg: Any) -> None:
         self._clock.on_clock(msg.clock.sec * 1_000_000_000 + msg.clock.nanosec)
 

@@ -314,3 +314,96 @@ def test_both_paths_agree_on_the_same_data() -> None:
             np.testing.assert_allclose(a.xyz, b.xyz, atol=1e-4)
         else:
             assert a.kind == b.kind
+
+
+class ClockedPort(FakePort):
+    """FakePort with the DDS port's time_generation(): it changes when ROS time jumps back
+    or changes source (transport/dds_time.RosClock)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.generation = 0
+
+    def time_generation(self) -> int:
+        return self.generation
+
+
+def test_a_jump_back_in_ros_time_clears_the_timed_transforms() -> None:
+    """A simulation restarted (/clock back from 2 s to 0.1 s): tf2_ros.Buffer clears on a
+    backward jump or a clock change (ros2/geometry2 tf2_ros_py buffer.py, jump callback with
+    on_clock_change; rclcpp's Buffer onTimeJump likewise, from memory) and keeps the static
+    transforms (tf2 StaticCache::clearList does nothing, from memory). Without the clear the
+    restarted simulation's transforms are older than the kept history and are refused."""
+    port = ClockedPort()
+    frames = open_frames(port, max_age_s=0.1)
+    port.deliver('/tf_static', tf_message(TYPES, [make_edge('world', 'camera', 0, CAMERA_T,
+                                                            CAMERA_Q)]))
+    for k in range(11):
+        stamp = SEC + k * 100_000_000
+        port.deliver('/tf', tf_message(TYPES, [make_edge('world', 'base', stamp,
+                                                         *rail_pose(stamp))]))
+    assert isinstance(frames.transform_point((0, 0, 1), 'camera', 'base', 2 * SEC),
+                      PointInFrame)
+    port.generation += 1                                   # /clock went back
+    restart = 100_000_000
+    port.deliver('/tf', tf_message(TYPES, [make_edge('world', 'base', restart,
+                                                     *rail_pose(restart))]))
+    point = np.array([0.3, -0.2, 1.8])
+    got = frames.transform_point(point, 'camera', 'base', restart)
+    assert isinstance(got, PointInFrame), got
+    np.testing.assert_allclose(got.xyz, expected_in_base(point, *rail_pose(restart)),
+                               atol=1e-9)
+    # the old future is gone: a point stamped at 2 s is now later than the history
+    later = frames.transform_point(point, 'camera', 'base', 2 * SEC)
+    assert isinstance(later, LookupFailure) and later.kind == fb.STALE_TRANSFORM
+    assert frames.counts.get('time_jump') == 1
+    assert any(text.startswith('time_jump:') for text in frames.new_problems())
+
+
+def test_the_dds_port_clock_drives_the_clear() -> None:
+    """The real DDS port: a /clock sample earlier than the last one moves time_generation."""
+    pytest.importorskip('cyclonedds')
+    from constraint_ctrl.transport.port import open_port
+    port = open_port('dds', 'frames_clock_check', ['--ros-args', '-p', 'use_sim_time:=true'])
+    try:
+        t = port.types
+        port._on_clock(t.Clock(clock=t.Time(sec=5, nanosec=0)))
+        before = port.time_generation()
+        port._on_clock(t.Clock(clock=t.Time(sec=6, nanosec=0)))
+        assert port.time_generation() == before
+        port._on_clock(t.Clock(clock=t.Time(sec=1, nanosec=0)))
+        assert port.time_generation() == before + 1
+    finally:
+        port.shutdown()
+
+
+def test_tf2_frames_close_releases_what_tf2_ros_made_on_the_node() -> None:
+    """Cleanup must leave the rclpy node without tf's subscriptions and service:
+    tf2_ros.TransformListener.unregister() destroys /tf and /tf_static subscriptions,
+    tf2_ros.Buffer(node=...) made the 'tf2_frames' service (buffer.srv) and a clock jump
+    callback (buffer.jump_handle) (ros2/geometry2 tf2_ros_py transform_listener.py and
+    buffer.py)."""
+    port, buffer, frames = tf2_frames()
+    calls: list[str] = []
+    buffer.srv = 'tf2_frames service'
+    buffer.jump_handle = SimpleNamespace(unregister=lambda: calls.append('jump_handle'))
+    port.node = SimpleNamespace(destroy_service=lambda srv: calls.append(f'destroy {srv}'))
+    frames.listener = SimpleNamespace(unregister=lambda: calls.append('listener'))
+    frames.close()
+    assert sorted(calls) == ['destroy tf2_frames service', 'jump_handle', 'listener']
+    frames.close()                                  # a second close does nothing more
+    assert len(calls) == 3
+
+
+def test_topic_frames_close_destroys_its_own_subscriptions_only() -> None:
+    port = FakePort()
+    destroyed: list[str] = []
+    port.destroy_subscription = destroyed.append       # type: ignore[attr-defined]
+    own = open_frames(port, max_age_s=0.1)
+    own.close()
+    assert sorted(destroyed) == ['/tf', '/tf_static']
+    # with the node's subscribe wrapper, the node owns (and destroys) them
+    del destroyed[:]
+    lent = TopicFrames(port, subscribe=lambda _t, topic, _cb, _q: topic)
+    lent.close()
+    assert destroyed == []

@@ -98,3 +98,19 @@ def test_inactive_publishes_no_rows_and_no_markers(tmp_path: Path) -> None:
         assert posted == [] and rows == [], 'inactive: ~/markers or ~/rows went out'
     finally:
         h.close()
+
+
+def test_cleanup_closes_the_frames_adapter(tmp_path: Path) -> None:
+    """On rclpy the frames adapter (tf2_ros listener and buffer) made subscriptions and a
+    service on the node itself; cleanup must release them with the rest."""
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
+    try:
+        closed: list[bool] = []
+        frames = h.node.points.frames
+        close = frames.close
+        frames.close = lambda: (closed.append(True), close())[1]   # type: ignore[method-assign]
+        assert h.while_ticking(lambda: h.node.lifecycle.trigger('deactivate'))
+        assert h.node.lifecycle.trigger('cleanup')
+        assert closed == [True]
+    finally:
+        h.close()
