@@ -5,8 +5,9 @@ Launch arguments:
   transport    rclpy (default), dds (direct Cyclone DDS) or auto
   record       folder for a rosbag2 recording; '' (default) records nothing
   autostart    true (default): launch configures the node, and activates it once it is
-               inactive, with launch_ros' lifecycle events; false: it stays unconfigured for
-               another lifecycle manager (ros2 lifecycle set ...)
+               inactive, with launch_ros' lifecycle events, at start-up only (a later
+               configure leaves it inactive); false: it stays unconfigured for another
+               lifecycle manager (ros2 lifecycle set ...)
 
 The node itself always starts with --no-autostart: launch_ros' LifecycleNode action follows
 its ~/transition_event and calls its ~/change_state (ChangeState events, OnStateTransition
@@ -53,8 +54,12 @@ def controller_node(context: LaunchContext) -> list:
     def change(transition_id: int) -> EmitEvent:
         return EmitEvent(event=ChangeState(lifecycle_node_matcher=matches_action(node),
                                            transition_id=transition_id))
+    # once: only the start-up's configure is followed by an activation; a later configure
+    # (an operator's, after a cleanup) leaves the node inactive, as the managed-node design
+    # says, instead of starting initial_skill without anyone asking
     activate_once_inactive = RegisterEventHandler(OnStateTransition(
         target_lifecycle_node=node, start_state='configuring', goal_state='inactive',
+        handle_once=True,
         entities=[LogInfo(msg=f'{NODE_NAME} is inactive (configured): activating it'),
                   change(Transition.TRANSITION_ACTIVATE)]))
     return [activate_once_inactive, node, change(Transition.TRANSITION_CONFIGURE)]
