@@ -262,6 +262,16 @@ class RclpyLifecycle:
             return False
 
 
+def _rcl_error() -> type[Exception]:
+    """rclpy's RCLError (what rcl's failures raise: a RuntimeError), or RuntimeError where
+    this rclpy does not expose it."""
+    try:
+        from rclpy.impl.implementation_singleton import rclpy_implementation
+        return rclpy_implementation.RCLError
+    except (ImportError, AttributeError):
+        return RuntimeError
+
+
 class RclpyPort:
     """See the module docstring; the methods are those of port.Port."""
 
@@ -277,7 +287,13 @@ class RclpyPort:
         from rclpy.signals import SignalHandlerOptions
         self._rclpy = rclpy
         self.distro = distro
-        rclpy.init(args=list(argv), signal_handler_options=SignalHandlerOptions.NO)
+        try:
+            rclpy.init(args=list(argv), signal_handler_options=SignalHandlerOptions.NO)
+        except _rcl_error() as exc:
+            # rcl refused the --ros-args (a missing or bad --params-file, a bad remap): the
+            # user's input, reported in rcl's words, not a bug
+            msg = f'rclpy could not start with these --ros-args: {" ".join(str(exc).split())}'
+            raise TransportError(msg) from exc
         self.native_lifecycle = lifecycle
         self.node = (_managed_node(node_name, self.log) if lifecycle else
                      Node(node_name, automatically_declare_parameters_from_overrides=True))

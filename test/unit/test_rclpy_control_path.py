@@ -370,3 +370,30 @@ def test_timer_reset_maps_to_rclpy_timer_reset(rclpy_fake: str) -> None:
     timer.reset()
     timer.reset()
     assert timer.timer.resets == 2
+
+
+def test_rcl_refusing_the_ros_args_is_a_user_error(rclpy_fake: str,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    """rclpy.init raises rclpy's RCLError (a RuntimeError; rclpy.impl.implementation_singleton
+    .rclpy_implementation.RCLError on Jazzy, seen by hand on a Jazzy core) when rcl cannot
+    parse the --ros-args, e.g. a --params-file that does not exist. That is the user's input,
+    not a bug: a TransportError (exit 2) with rcl's words, as the DDS transport reports its own
+    reading of the same arguments."""
+    from constraint_ctrl.cli import report_errors
+    from constraint_ctrl.errors import TransportError
+    rcl_error = type('RCLError', (RuntimeError,), {})
+    impl = _module('rclpy.impl')
+    impl.__path__ = []
+    monkeypatch.setitem(sys.modules, 'rclpy.impl', impl)
+    monkeypatch.setitem(sys.modules, 'rclpy.impl.implementation_singleton', _module(
+        'rclpy.impl.implementation_singleton',
+        rclpy_implementation=types.SimpleNamespace(RCLError=rcl_error)))
+    text = ("failed to initialize rcl: Couldn't parse params file: '--params-file /no.yaml'. "
+            'Error: Error opening YAML file, at parser.c:271')
+
+    def refuse(**_kwargs: Any) -> None:
+        raise rcl_error(text)
+    monkeypatch.setattr(sys.modules['rclpy'], 'init', refuse)
+    with pytest.raises(TransportError, match='Error opening YAML file'):
+        _port()
+    assert report_errors(_port) == 2
