@@ -85,6 +85,7 @@ from .robot_source import declare_model_source, load_robot_model, watch_robot_de
 from .markers import MarkerBuilder, MarkerJob, SkillShapes
 from .outputs import DEFAULT_COMMAND_INTERFACES, PositionTarget, parse_command_interfaces, \
     position_message
+from .parameter_types import checked_value
 from .status import StatusWorker, build_rows, build_status
 
 NODE_NAME = 'constraint_controller'
@@ -260,7 +261,7 @@ class ControllerNode:
         only while unconfigured (after a failed configure or a cleanup); the rest are
         read-only (inputs.*)."""
         if name in self._node_parameters:
-            return self.port.get_parameter(name).value
+            return checked_value(name, default, self.port.get_parameter(name).value)
         if self._read_at_configure(name):
             read_only = False
             description += ' (read at configure; set it while unconfigured)'
@@ -271,7 +272,7 @@ class ControllerNode:
         finally:
             self._declaring.discard(name)
         self._node_parameters.add(name)
-        return value
+        return checked_value(name, default, value)
 
     def _declare_view(self, name: str, value: Any, description: str = '',
                       read_only: bool = True) -> Any:

@@ -321,3 +321,31 @@ def test_a_misspelt_launch_parameter_cannot_be_set_later(tmp_path: Path) -> None
         assert h.get('keep_tool_vertcal.height') == 0.3
     finally:
         h.close()
+
+
+@pytest.mark.parametrize(('name', 'value', 'expected'), [
+    ('rate_hz', 'abc', "rate_hz: expected a number (double), got the string 'abc'"),
+    ('people.sources', '5', 'people.sources: expected a list of strings, got the integer 5'),
+    ('base_frame', '[1, 2]', 'base_frame: expected a string, got the list [1, 2]'),
+    ('status_rate_hz', 'true', 'status_rate_hz: expected a number (double), got the bool True'),
+])
+def test_a_node_parameter_of_the_wrong_type_fails_configure_naming_it(
+        tmp_path: Path, name: str, value: str, expected: str) -> None:
+    """A launch value whose type does not fit (rclpy's declare_parameter refuses such an
+    override with InvalidParameterTypeException, ros2/rclpy rclpy/node.py) fails configure
+    with the parameter's name, the type it needs and the value given, not with a Python
+    conversion error from deep inside configure."""
+    from constraint_ctrl.errors import ConstraintCtrlError
+    with pytest.raises(ConstraintCtrlError) as caught:
+        NodeHarness(copy_skills(tmp_path / 'skills', SKILLS), {name: value})
+    assert expected in str(caught.value)
+
+
+def test_an_integer_for_a_double_parameter_is_taken(tmp_path: Path) -> None:
+    """`-p rate_hz:=250` is an integer in ROS 2's YAML reading of `-p` values (rcl's
+    parameter parser, from memory); our double parameters take a whole number."""
+    h = NodeHarness(copy_skills(tmp_path / 'skills', SKILLS), {'rate_hz': '250'})
+    try:
+        assert h.node.rate == 250.0
+    finally:
+        h.close()
