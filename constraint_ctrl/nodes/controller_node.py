@@ -90,6 +90,8 @@ from .status import StatusWorker, build_rows, build_status
 
 NODE_NAME = 'constraint_controller'
 SWITCH_INTERVAL_S = 0.0005   # interpreter lock hand-over between threads (Python's default 5 ms)
+#: Longest wait at shutdown for the hold's ramp to zero (SIGINT/SIGTERM should end promptly).
+SHUTDOWN_RAMP_S = 1.0
 #: Parameters read at configure: settable while the node is unconfigured, refused while configured.
 STARTUP_PARAMETERS = (*MODEL_PARAMETERS, 'skills_folder', 'joint_names', 'rate_hz',
                       'status_rate_hz', 'initial_skill', 'tick_on', 'base_frame',
@@ -125,6 +127,10 @@ class ControllerNode:
             port.log('info', f'realtime: {realtime.start(threads_named(RECEIVE_THREADS))}')
         self._lock = threading.Lock()
         self._tick_lock = threading.Lock()
+        # set while the last command sent was all zeros: leaving active waits for it, so the
+        # hold's ramp (within the acceleration limit) is not cut short by a zero command
+        self._at_rest = threading.Event()
+        self._at_rest.set()
         # lifecycle: configured from configure() to cleanup(); active from activate() to
         # deactivate(); ticks read both under the tick lock
         self.configured = False
@@ -199,11 +205,13 @@ class ControllerNode:
         return None
 
     def deactivate(self) -> str | None:
-        """Hold (the running skill stops at a tick boundary), then inactive: zero commands."""
+        """Hold (the running skill stops at a tick boundary), let the hold ramp the joint
+        speeds down to zero, then inactive: zero commands."""
         if not self.loop.holding:    # the hold's tick still publishes (its 'holding' event)
             ok, message = self.loop.request_hold(self._switch_timeout)
             if not ok:
                 self.port.log('warn', f'deactivate: {message}; going inactive anyway')
+        self._come_to_rest('deactivate', self._switch_timeout)
         with self._tick_lock:
             self._hold()
             self.active = False
@@ -220,6 +228,12 @@ class ControllerNode:
     def shutdown(self) -> str | None:
         """From any primary state: zero command (when configured), release, finalized."""
         if self.configured:
+            # asked for while ticking (ros2 lifecycle set ... shutdown): the hold ramps down
+            # first; from close() (SIGINT/SIGTERM, ticks already over) zero at once
+            if self.active and not self._closing:
+                with self._tick_lock:
+                    self._hold()
+                self._come_to_rest('shutdown', SHUTDOWN_RAMP_S)
             with self._tick_lock:
                 self._hold()
                 self.active = False
@@ -241,6 +255,13 @@ class ControllerNode:
                     pass
         self._release()
         return None
+
+    def _come_to_rest(self, why: str, timeout: float) -> None:
+        """Wait (ticks go on) until the hold has brought the command to zero within the
+        acceleration limit, at most ``timeout`` s; what comes after sends zero in any case."""
+        if not self._at_rest.wait(timeout):
+            self.port.log('warn', f'{why}: the arm did not come to rest within {timeout:g} s '
+                          '(no ticks?); sending zero now')
 
     def _hold(self) -> None:
         """Queue the loop's built-in hold for the next tick without waiting (safe with the
@@ -792,6 +813,10 @@ class ControllerNode:
         return array, joint
 
     def _send(self, out: LoopOutput) -> None:
+        if out.command.any():
+            self._at_rest.clear()
+        else:
+            self._at_rest.set()
         array, joint = self._command_messages(out.command)
         if self._position is not None:
             self._send_position(self._position.target(out.command), joint)
@@ -810,6 +835,7 @@ class ControllerNode:
             self.port.log('info' if tr.to_state.value == 'normal' else 'warn', text)
 
     def _send_zero(self) -> None:
+        self._at_rest.set()
         array, joint = self._command_messages(np.zeros(self.model.n_joints))
         if self._position is not None:
             self._send_position(self._position.hold(), joint)

@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import pytest
 from node_harness import NodeHarness, copy_skills, moving
 
 
@@ -112,5 +113,37 @@ def test_cleanup_closes_the_frames_adapter(tmp_path: Path) -> None:
         assert h.while_ticking(lambda: h.node.lifecycle.trigger('deactivate'))
         assert h.node.lifecycle.trigger('cleanup')
         assert closed == [True]
+    finally:
+        h.close()
+
+
+@pytest.mark.parametrize('transition', ['deactivate', 'shutdown'])
+def test_leaving_active_ramps_down_within_the_acceleration_limit(tmp_path: Path,
+                                                                transition: str) -> None:
+    """Deactivate is "hold, then inactive" (shutdown too ends in zero), and the hold ramps
+    joint speeds down within the acceleration limit (watchdog.joint_acceleration). Leaving
+    active must not cut that ramp short with a zero command: between any two commands sent,
+    no joint's velocity may change by more than a_max * dt (the rate limit the watchdog
+    applies to every command)."""
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
+    try:
+        reply = h.activate('move_to_point')
+        assert reply.success, reply.message
+        outs = h.run(200)             # move_to_point ramps its speed up: about 0.2 rad/s
+        assert moving(outs[-1])
+        a_max = np.asarray(h.node.watchdog.config.acceleration_limits, dtype=float)
+        step = a_max * h.node.dt
+        assert (np.abs(outs[-1].command) > 3 * step).any(), 'too slow to show a cut ramp'
+        sent = capture_commands(h)
+        assert h.while_ticking(lambda: h.node.lifecycle.trigger(transition))
+        if transition == 'deactivate':
+            for _ in range(5):
+                h.feed()
+                h.node._tick()
+        series = [outs[-1].command, *sent]
+        jumps = [np.abs(b - a) - step for a, b in zip(series, series[1:])]
+        worst = max(float(j.max()) for j in jumps)
+        assert worst <= 1e-9, f'a command changed by {worst:.4g} rad/s more than a_max*dt'
+        assert not sent[-1].any() and not h.node.active
     finally:
         h.close()
