@@ -229,13 +229,16 @@ class ControllerNode:
         """From any primary state: zero command (when configured), release, finalized."""
         if self.configured:
             # asked for while ticking (ros2 lifecycle set ... shutdown): the hold ramps down
-            # first; from close() (SIGINT/SIGTERM, ticks already over) zero at once
+            # first; from close() (SIGINT/SIGTERM, ticks already over) the same ramp without
+            # ticks (_ramp_down_after_ticks)
             if self.active and not self._closing:
                 with self._tick_lock:
                     self._hold()
                 self._come_to_rest('shutdown', SHUTDOWN_RAMP_S)
             with self._tick_lock:
                 self._hold()
+                if self.active and self._closing:
+                    self._ramp_down_after_ticks()
                 self.active = False
                 for _ in range(3):
                     self._send_zero()
@@ -377,6 +380,7 @@ class ControllerNode:
 
         # latest samples (guarded by self._lock)
         n = self.model.n_joints
+        self._last_sent = np.zeros(n)     # the last velocity command sent (model order)
         # per model joint (plain lists: a sample writes a few items, a tick copies them once)
         self._q = [math.nan] * n
         self._seen = [False] * n
@@ -817,6 +821,7 @@ class ControllerNode:
             self._at_rest.clear()
         else:
             self._at_rest.set()
+        np.copyto(self._last_sent, out.command)
         array, joint = self._command_messages(out.command)
         if self._position is not None:
             self._send_position(self._position.target(out.command), joint)
@@ -836,12 +841,32 @@ class ControllerNode:
 
     def _send_zero(self) -> None:
         self._at_rest.set()
+        self._last_sent[:] = 0.0
         array, joint = self._command_messages(np.zeros(self.model.n_joints))
         if self._position is not None:
             self._send_position(self._position.hold(), joint)
         if self._pub_command is not None:
             self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
+
+    def _ramp_down_after_ticks(self) -> None:
+        """Once the ticks have ended (close(): SIGINT/SIGTERM), bring the velocity commands
+        from the last one sent to zero as the hold would: every joint at most a_max * dt
+        closer to zero per period, never faster than before, within SHUTDOWN_RAMP_S. The
+        position stream pauses meanwhile (its targets would need fresh joint states); the
+        zero that follows latches its hold target."""
+        step = np.asarray(self.watchdog.config.acceleration_limits, dtype=float) * self.dt
+        command = self._last_sent.copy()
+        for _ in range(max(1, round(SHUTDOWN_RAMP_S / self.dt))):
+            if not command.any():
+                return
+            command = np.sign(command) * np.maximum(np.abs(command) - step, 0.0)
+            array, joint = self._command_messages(command)
+            if self._pub_command is not None:
+                self._publish(self._pub_command, '~/command', array)
+            self._publish(self._pub_joint_command, '~/joint_command', joint)
+            np.copyto(self._last_sent, command)
+            time.sleep(self.dt)
 
     def _send_status(self, out: LoopOutput) -> None:
         """On the tick: take the rows of this solve; the worker builds and publishes."""

@@ -147,3 +147,29 @@ def test_leaving_active_ramps_down_within_the_acceleration_limit(tmp_path: Path,
         assert not sent[-1].any() and not h.node.active
     finally:
         h.close()
+
+
+def test_stopping_the_process_while_moving_ramps_down_within_the_acceleration_limit(
+        tmp_path: Path) -> None:
+    """SIGINT/SIGTERM: serve() ends spin() (no more ticks), then close() runs the shutdown.
+    The velocity commands from the last one sent down to zero must still change by at most
+    a_max * dt per command (the watchdog's rate limit), as the hold would ramp; never faster
+    than the last command."""
+    h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
+    try:
+        reply = h.activate('move_to_point')
+        assert reply.success, reply.message
+        outs = h.run(200)
+        a_max = np.asarray(h.node.watchdog.config.acceleration_limits, dtype=float)
+        step = a_max * h.node.dt
+        assert (np.abs(outs[-1].command) > 3 * step).any(), 'too slow to show a cut ramp'
+        sent = capture_commands(h)
+        h.node.close()                       # what serve() calls once spin() has returned
+        series = [outs[-1].command, *sent]
+        jumps = [np.abs(b - a) - step for a, b in zip(series, series[1:])]
+        worst = max(float(j.max()) for j in jumps)
+        assert worst <= 1e-9, f'a command changed by {worst:.4g} rad/s more than a_max*dt'
+        assert all((np.abs(b) <= np.abs(a) + 1e-12).all() for a, b in zip(series, series[1:]))
+        assert not sent[-1].any()
+    finally:
+        h.close()
