@@ -46,6 +46,7 @@ pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.frames.messages import make_edge, tf_message  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
@@ -268,15 +269,8 @@ def cell(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Cell, Contr
 """)
     domain = str(random.randint(1, 100))
     env = dict(os.environ, PYTHONPATH=str(ROOT), ROS_DOMAIN_ID=domain)
-    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
-    os.environ['ROS_DOMAIN_ID'] = domain
-    try:
+    with in_domain(domain):
         peer = Cell()
-    finally:
-        if saved is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = saved
     time.sleep(0.5)                       # latched samples written before the node exists
     node = Controller(env, params, work / 'bag')
     node.urdf = work / 'renamed.urdf'

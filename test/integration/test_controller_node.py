@@ -24,6 +24,7 @@ import pytest
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
@@ -119,15 +120,8 @@ def setup(tmp_path_factory: pytest.TempPathFactory
          '--params-file', str(ROOT / 'config' / 'controller.yaml'),
          '-p', f'skills_folder:={skills}', '-p', 'rate_hz:=250.0'],
         cwd=work, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
-    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
-    os.environ['ROS_DOMAIN_ID'] = domain
-    try:
+    with in_domain(domain):
         robot = Robot()
-    finally:
-        if saved is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = saved
     try:
         yield robot, proc, bag
     finally:

@@ -25,6 +25,7 @@ pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.dds_parameters import from_msg  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
@@ -147,15 +148,8 @@ def setup(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Peer, subp
          '-p', f'skills_folder:={skills}', '-p', f'rate_hz:={RATE}',
          '-p', 'follow_flange.standoff:=0.5'],
         env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
-    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
-    os.environ['ROS_DOMAIN_ID'] = domain
-    try:
+    with in_domain(domain):
         peer = Peer()
-    finally:
-        if saved is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = saved
     try:
         # the node is up and has joint positions once an activation gets past that check
         assert wait_until(lambda: 'no joint positions' not in

@@ -5,7 +5,6 @@ would. The server must answer with an error, log it, and go on serving.
 """
 from __future__ import annotations
 
-import os
 import random
 import threading
 from typing import Any
@@ -16,22 +15,16 @@ import pytest
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 
 pytestmark = pytest.mark.integration
 
 
 @pytest.fixture()
 def ports() -> Iterator[tuple[Any, Any, list[str], threading.Thread]]:
-    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
-    os.environ['ROS_DOMAIN_ID'] = str(random.randint(101, 200))
-    try:
+    with in_domain(str(random.randint(101, 200))):
         server = open_port('dds', 'fragile', ['--ros-args'])
         client = open_port('dds', 'caller', ['--ros-args'])
-    finally:
-        if saved is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = saved
     logs: list[str] = []
     log = server.log
     server.log = lambda level, text: (logs.append(f'{level}: {text}'), log(level, text))

@@ -32,6 +32,7 @@ import pytest
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
@@ -221,17 +222,12 @@ class Cell:
 
 @pytest.fixture(scope='module')
 def cell(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Cell]:
-    old = os.environ.get('ROS_DOMAIN_ID')
-    os.environ['ROS_DOMAIN_ID'] = str(random.randint(100, 230))
-    c = Cell(tmp_path_factory.mktemp('hold'))
-    try:
-        yield c
-    finally:
-        c.stop()
-        if old is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = old
+    with in_domain(str(random.randint(100, 230))):
+        c = Cell(tmp_path_factory.mktemp('hold'))
+        try:
+            yield c
+        finally:
+            c.stop()
 
 
 def assert_holds(cell: Cell, since: int, max_motion: float | None = None) -> None:

@@ -30,6 +30,7 @@ import pytest
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
@@ -175,15 +176,8 @@ def stop(proc: subprocess.Popen) -> str:
 
 @pytest.fixture(scope='module')
 def domain() -> Iterator[str]:
-    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
-    os.environ['ROS_DOMAIN_ID'] = value = str(random.randint(101, 230))
-    try:
+    with in_domain(str(random.randint(101, 230))) as value:
         yield value
-    finally:
-        if saved is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = saved
 
 
 @pytest.fixture(scope='module')

@@ -33,6 +33,7 @@ pytest.importorskip('cyclonedds')
 from constraint_ctrl.nodes.markers import STATE_COLOURS  # noqa: E402
 from constraint_ctrl.safety.states import State  # noqa: E402
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
@@ -151,15 +152,8 @@ def cell(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Cell, subpr
          '-p', 'watchdog.resume_after:=0.2', '-p', 'markers_rate_hz:=5.0',
          '-p', 'diagnostics_rate_hz:=1.0', '-p', 'status_rate_hz:=10.0'],
         cwd=work, env=env, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
-    saved = os.environ.get('ROS_DOMAIN_ID')     # other modules set theirs at import
-    os.environ['ROS_DOMAIN_ID'] = domain
-    try:
+    with in_domain(domain):
         cell = Cell()
-    finally:
-        if saved is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = saved
     try:
         yield cell, proc
     finally:

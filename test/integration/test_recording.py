@@ -32,6 +32,7 @@ import yaml
 pytest.importorskip('cyclonedds')
 
 from constraint_ctrl.transport.port import open_port  # noqa: E402
+from domains import in_domain  # noqa: E402
 from waiting import wait_until  # noqa: E402
 
 pytestmark = pytest.mark.integration
@@ -179,15 +180,8 @@ def cell(tmp_path_factory: pytest.TempPathFactory) -> Iterator[tuple[Peer, Path,
     (work / 'skills' / 'circle_tool.yaml').write_text(
         SKILL.format(robot=ROOT / 'config' / 'robots' / 'six_axis_arm.urdf'))
     domain = str(random.randint(101, 200))
-    before = os.environ.get('ROS_DOMAIN_ID')
-    os.environ['ROS_DOMAIN_ID'] = domain       # the peer's participant joins this domain
-    try:
+    with in_domain(domain):       # the peer's participant joins this domain
         peer = Peer()
-    finally:
-        if before is None:
-            os.environ.pop('ROS_DOMAIN_ID', None)
-        else:
-            os.environ['ROS_DOMAIN_ID'] = before
     yield peer, work, domain
     peer.port.shutdown()
 
