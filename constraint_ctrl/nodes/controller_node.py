@@ -816,18 +816,27 @@ class ControllerNode:
         stamp.sec, stamp.nanosec = int(sec), int(nanosec)
         return array, joint
 
-    def _send(self, out: LoopOutput) -> None:
-        if out.command.any():
-            self._at_rest.clear()
-        else:
-            self._at_rest.set()
-        np.copyto(self._last_sent, out.command)
-        array, joint = self._command_messages(out.command)
+    def _publish_commands(self, command: np.ndarray, target: list[float] | None) -> None:
+        """One velocity command on ~/command and ~/joint_command, and with the position
+        interface the position ``target`` (None: no ~/position_command this time); it becomes
+        the last command sent (what leaving active ramps down from and waits on)."""
+        np.copyto(self._last_sent, command)
+        moving = bool(command.any())
+        if moving == self._at_rest.is_set():      # only a change takes the event's lock
+            if moving:
+                self._at_rest.clear()
+            else:
+                self._at_rest.set()
+        array, joint = self._command_messages(command)
         if self._position is not None:
-            self._send_position(self._position.target(out.command), joint)
+            self._send_position(target, joint)
         if self._pub_command is not None:
             self._publish(self._pub_command, '~/command', array)
         self._publish(self._pub_joint_command, '~/joint_command', joint)
+
+    def _send(self, out: LoopOutput) -> None:
+        self._publish_commands(out.command, None if self._position is None
+                               else self._position.target(out.command))
         for name in out.events:
             self._publish(self._pub_events, '~/events', self.port.types.String(data=name))
         if out.activated:
@@ -840,14 +849,8 @@ class ControllerNode:
             self.port.log('info' if tr.to_state.value == 'normal' else 'warn', text)
 
     def _send_zero(self) -> None:
-        self._at_rest.set()
-        self._last_sent[:] = 0.0
-        array, joint = self._command_messages(np.zeros(self.model.n_joints))
-        if self._position is not None:
-            self._send_position(self._position.hold(), joint)
-        if self._pub_command is not None:
-            self._publish(self._pub_command, '~/command', array)
-        self._publish(self._pub_joint_command, '~/joint_command', joint)
+        self._publish_commands(np.zeros(self.model.n_joints),
+                               None if self._position is None else self._position.hold())
 
     def _ramp_down_after_ticks(self) -> None:
         """Once the ticks have ended (close(): SIGINT/SIGTERM), bring the velocity commands
@@ -861,11 +864,7 @@ class ControllerNode:
             if not command.any():
                 return
             command = np.sign(command) * np.maximum(np.abs(command) - step, 0.0)
-            array, joint = self._command_messages(command)
-            if self._pub_command is not None:
-                self._publish(self._pub_command, '~/command', array)
-            self._publish(self._pub_joint_command, '~/joint_command', joint)
-            np.copyto(self._last_sent, command)
+            self._publish_commands(command, None)
             time.sleep(self.dt)
 
     def _send_status(self, out: LoopOutput) -> None:

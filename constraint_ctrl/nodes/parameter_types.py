@@ -14,6 +14,7 @@ from typing import Any
 from ..errors import ConstraintCtrlError
 
 _NAMES = {bool: 'bool', int: 'integer', float: 'number (double)', str: 'string'}
+_LIST_NAMES = {bool: 'bools', int: 'integers', float: 'numbers (doubles)', str: 'strings'}
 _GIVEN = {bool: 'bool', int: 'integer', float: 'double', str: 'string', list: 'list',
           tuple: 'list', bytes: 'byte array'}
 
@@ -47,9 +48,7 @@ def checked_value(name: str, default: Any, value: Any) -> Any:
         if isinstance(value, (list, tuple)) and all(
                 _fits(element, v) if element else _kind(v) is not None for v in value):
             return [float(v) for v in value] if element is float else list(value)
-        need = f'a list of {_NAMES[element]}s' if element else 'a list'
-        if element is float:
-            need = 'a list of numbers (doubles)'
+        need = f'a list of {_LIST_NAMES[element]}' if element else 'a list'
         raise ConstraintCtrlError(f'parameter {name}: expected {need}, got {_given(value)}')
     kind = _kind(default)
     if kind is None or _fits(kind, value):

@@ -117,6 +117,23 @@ def test_cleanup_closes_the_frames_adapter(tmp_path: Path) -> None:
         h.close()
 
 
+def moving_fast(h: NodeHarness) -> tuple[np.ndarray, np.ndarray]:
+    """move_to_point for 200 ticks (it ramps its speed up: about 0.2 rad/s); the last command
+    and the watchdog's largest change per command, a_max * dt, per joint."""
+    reply = h.activate('move_to_point')
+    assert reply.success, reply.message
+    last = h.run(200)[-1].command
+    a_max = np.asarray(h.node.watchdog.config.acceleration_limits, dtype=float)
+    step = a_max * h.node.dt
+    assert (np.abs(last) > 3 * step).any(), 'too slow to show a cut ramp'
+    return last, step
+
+
+def worst_excess(series: list[np.ndarray], step: np.ndarray) -> float:
+    """By how much the largest change between consecutive commands exceeds ``step``."""
+    return max(float((np.abs(b - a) - step).max()) for a, b in zip(series, series[1:]))
+
+
 @pytest.mark.parametrize('transition', ['deactivate', 'shutdown'])
 def test_leaving_active_ramps_down_within_the_acceleration_limit(tmp_path: Path,
                                                                 transition: str) -> None:
@@ -127,22 +144,16 @@ def test_leaving_active_ramps_down_within_the_acceleration_limit(tmp_path: Path,
     applies to every command)."""
     h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
     try:
-        reply = h.activate('move_to_point')
-        assert reply.success, reply.message
-        outs = h.run(200)             # move_to_point ramps its speed up: about 0.2 rad/s
-        assert moving(outs[-1])
-        a_max = np.asarray(h.node.watchdog.config.acceleration_limits, dtype=float)
-        step = a_max * h.node.dt
-        assert (np.abs(outs[-1].command) > 3 * step).any(), 'too slow to show a cut ramp'
+        last, step = moving_fast(h)
+        assert moving(h.outputs[-1])
         sent = capture_commands(h)
         assert h.while_ticking(lambda: h.node.lifecycle.trigger(transition))
         if transition == 'deactivate':
             for _ in range(5):
                 h.feed()
                 h.node._tick()
-        series = [outs[-1].command, *sent]
-        jumps = [np.abs(b - a) - step for a, b in zip(series, series[1:])]
-        worst = max(float(j.max()) for j in jumps)
+        series = [last, *sent]
+        worst = worst_excess(series, step)
         assert worst <= 1e-9, f'a command changed by {worst:.4g} rad/s more than a_max*dt'
         assert not sent[-1].any() and not h.node.active
     finally:
@@ -157,17 +168,11 @@ def test_stopping_the_process_while_moving_ramps_down_within_the_acceleration_li
     than the last command."""
     h = NodeHarness(copy_skills(tmp_path / 'skills', ('move_to_point',)))
     try:
-        reply = h.activate('move_to_point')
-        assert reply.success, reply.message
-        outs = h.run(200)
-        a_max = np.asarray(h.node.watchdog.config.acceleration_limits, dtype=float)
-        step = a_max * h.node.dt
-        assert (np.abs(outs[-1].command) > 3 * step).any(), 'too slow to show a cut ramp'
+        last, step = moving_fast(h)
         sent = capture_commands(h)
         h.node.close()                       # what serve() calls once spin() has returned
-        series = [outs[-1].command, *sent]
-        jumps = [np.abs(b - a) - step for a, b in zip(series, series[1:])]
-        worst = max(float(j.max()) for j in jumps)
+        series = [last, *sent]
+        worst = worst_excess(series, step)
         assert worst <= 1e-9, f'a command changed by {worst:.4g} rad/s more than a_max*dt'
         assert all((np.abs(b) <= np.abs(a) + 1e-12).all() for a, b in zip(series, series[1:]))
         assert not sent[-1].any()
